@@ -1,0 +1,32 @@
+"""reduce: shrink big event tables into browser-sized payloads that fit a byte budget.
+
+Library entry points (the command line calls the same functions):
+
+- :func:`load_recipe` reads and validates a recipe file;
+- :func:`fit` computes the finest partial once and picks the finest level whose payload fits
+  the budget, returning the payload and the frontier of evaluated levels as a DataFrame;
+- :func:`ladder` does the same with raw, gzip and brotli sizes measured for every candidate;
+- :func:`run` fits and publishes the payload and its manifest atomically.
+"""
+
+from __future__ import annotations
+
+__version__ = "0.1.0"
+
+from reduce.errors import (  # noqa: E402
+    AuditError,
+    BudgetError,
+    DenominatorError,
+    OutputError,
+    RecipeError,
+    ReduceError,
+    SourceError,
+)
+from reduce.pipeline import FitResult, RunResult, fit, ladder, run  # noqa: E402
+from reduce.recipe import Recipe, load_recipe  # noqa: E402
+
+__all__ = [
+    "AuditError", "BudgetError", "DenominatorError", "FitResult", "OutputError", "Recipe",
+    "RecipeError", "ReduceError", "RunResult", "SourceError", "__version__", "fit", "ladder",
+    "load_recipe", "run",
+]

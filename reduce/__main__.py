@@ -1,0 +1,5 @@
+"""``python -m reduce`` runs the command line."""
+
+from reduce.cli import main
+
+main()

@@ -1,0 +1,267 @@
+"""The finest partial aggregate: one scan of the source, then exact roll-ups and finalize.
+
+This module owns the *mergeable partial*: a table keyed by the finest level of every key
+(hex cell, time bin, region, categories) holding, per group, the row count and the partial
+state of every measure (sums and non-null counts, minima, maxima), plus, for each distinct
+measure, the set of (finest key, value) pairs. Partials of the same recipe merge by summing
+counts and sums, taking minima of minima and maxima of maxima, and taking the union of pairs;
+the same operation rolls a partial up to a coarser level, so every measure stays exact at
+every level, distinct counts included (a parent's distinct count is the number of distinct
+values in the union of its children's pairs, never the sum of their counts).
+
+The source is scanned once, with polars' streaming engine: the scan groups by the finest keys,
+the invalid-reason code, and the distinct columns; the main table and the pair tables are
+derived from that (much smaller) result without touching the source again.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field, replace
+
+import polars as pl
+
+from reduce.errors import SourceError
+from reduce.keys import HEX, INVALID, INVALID_REASONS, TIME, coarsen, scan_keys
+from reduce.recipe import MeasureSpec, Recipe, TimeBin
+from reduce.source import OpenSource
+
+N = "__n"  # rows represented by a group
+
+
+def _sum(m: MeasureSpec) -> str:
+    return f"__sum_{m.name}"
+
+
+def _cnt(m: MeasureSpec) -> str:
+    return f"__cnt_{m.name}"
+
+
+def _min(m: MeasureSpec) -> str:
+    return f"__min_{m.name}"
+
+
+def _max(m: MeasureSpec) -> str:
+    return f"__max_{m.name}"
+
+
+PAIR = "__v"
+
+
+@dataclass(frozen=True)
+class Accounting:
+    """Where every input row went (before pruning, which adds suppressed rows)."""
+
+    input_rows: int
+    filtered_rows: int
+    invalid_rows: int
+    invalid_by_reason: dict[str, int] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class Partial:
+    """A mergeable partial aggregate at one level (see the module docstring)."""
+
+    keys: tuple[str, ...]
+    table: pl.DataFrame
+    pairs: dict[str, pl.DataFrame]  # distinct measure name -> keys + __v, unique rows
+    hex_res: int | None
+    time_bin: TimeBin | None
+    accounting: Accounting
+
+    @property
+    def valid_rows(self) -> int:
+        return int(self.table.get_column(N).sum()) if self.table.height else 0
+
+
+def _scan_aggs(measures: Sequence[MeasureSpec], floats: set[str]) -> list[pl.Expr]:
+    """Partial aggregations over source rows; ``floats`` names the float measure inputs."""
+    aggs = [pl.len().cast(pl.Int64).alias(N)]
+    for m in measures:
+        if m.column is None:
+            continue
+        c = pl.col(m.column)
+        if m.kind in ("sum", "mean"):
+            aggs.append(c.cast(pl.Float64 if m.column in floats else pl.Int64).sum()
+                        .alias(_sum(m)))
+            aggs.append(c.count().cast(pl.Int64).alias(_cnt(m)))
+        elif m.kind == "min":
+            aggs.append(c.min().alias(_min(m)))
+        elif m.kind == "max":
+            aggs.append(c.max().alias(_max(m)))
+    return aggs
+
+
+def _merge_aggs(measures: Sequence[MeasureSpec], present: Sequence[str]) -> list[pl.Expr]:
+    """Aggregations that merge partial columns (used for roll-ups and merges)."""
+    aggs = [pl.col(N).sum()]
+    for m in measures:
+        if m.kind in ("sum", "mean"):
+            aggs += [pl.col(_sum(m)).sum(), pl.col(_cnt(m)).sum()]
+        elif m.kind == "min":
+            aggs.append(pl.col(_min(m)).min())
+        elif m.kind == "max":
+            aggs.append(pl.col(_max(m)).max())
+    return [a for a in aggs if a.meta.output_name() in present]
+
+
+def scan_partial(recipe: Recipe, src: OpenSource, *,
+                 progress: Callable[[str], None] | None = None) -> Partial:
+    """Compute the finest partial with one streaming scan of the source."""
+    label = _label(src)
+    lf = src.frame
+    schema = lf.collect_schema()
+    key_exprs, reason = scan_keys(recipe, lf, label)
+    keys = tuple(e.meta.output_name() for e in key_exprs)
+    distinct = [m for m in recipe.measures if m.kind == "distinct"]
+    dcols: list[str] = []
+    for m in distinct:
+        assert m.column is not None
+        if m.column not in dcols:
+            dcols.append(m.column)
+    dnames = [f"__d{i}" for i in range(len(dcols))]
+    # Measure columns are renamed so that a measure column may share a name with a key.
+    renamed: list[MeasureSpec] = [replace(m, column=f"__in_{m.name}")
+                                  if m.column is not None and m.kind != "distinct" else m
+                                  for m in recipe.measures]
+    floats = {f"__in_{o.name}" for o in recipe.measures
+              if o.column is not None and o.kind != "distinct" and schema[o.column].is_float()}
+    select = [*key_exprs, reason,
+              *[pl.col(c).alias(n) for c, n in zip(dcols, dnames)],
+              *[pl.col(o.column).alias(f"__in_{o.name}") for o in recipe.measures
+                if o.column is not None and o.kind != "distinct"]]
+    if progress:
+        progress("scanning the source")
+    grouped_lf = lf.select(select).group_by([*keys, INVALID, *dnames]).agg(
+        _scan_aggs(renamed, floats))
+    try:
+        grouped = grouped_lf.collect(engine="streaming")
+    except pl.exceptions.ComputeError as e:
+        raise SourceError(f"{label}: cannot compute the keys ({_first(e)}); check the column "
+                          "types named in the recipe") from None
+    except pl.exceptions.PolarsError as e:
+        raise SourceError(f"{label}: cannot read the source ({_first(e)}); check that the "
+                          "files are complete and share one schema") from None
+    if progress:
+        progress("building the finest partial")
+    inv = grouped.filter(pl.col(INVALID) != 0).group_by(INVALID).agg(pl.col(N).sum())
+    by_reason = {INVALID_REASONS[int(r)]: int(n) for r, n in sorted(inv.iter_rows())}
+    valid = grouped.filter(pl.col(INVALID) == 0).drop(INVALID)
+    present = [c for c in valid.columns if c.startswith("__") and c not in dnames]
+    renamed_keys = list(keys)
+    if dnames:
+        table = valid.group_by(renamed_keys).agg(_merge_aggs(renamed, present))
+    else:
+        table = valid
+    table = table.sort(renamed_keys) if renamed_keys else table
+    pairs: dict[str, pl.DataFrame] = {}
+    for m in distinct:
+        dn = dnames[dcols.index(str(m.column))]
+        pairs[m.name] = (valid.select([*renamed_keys, pl.col(dn).alias(PAIR)])
+                         .drop_nulls(PAIR).unique().sort([*renamed_keys, PAIR]))
+    input_rows = src.count_rows()
+    kept = int(grouped.get_column(N).sum()) if grouped.height else 0
+    acc = Accounting(input_rows=input_rows, filtered_rows=input_rows - kept,
+                     invalid_rows=sum(by_reason.values()), invalid_by_reason=by_reason)
+    return Partial(keys=keys, table=table, pairs=pairs,
+                   hex_res=recipe.hex.levels[0] if recipe.hex else None,
+                   time_bin=recipe.time.levels[0] if recipe.time else None, accounting=acc)
+
+
+def _first(e: BaseException) -> str:
+    lines = str(e).strip().splitlines()
+    return lines[0] if lines else type(e).__name__
+
+
+def _label(src: OpenSource) -> str:
+    from reduce.source import _files_label
+
+    return _files_label(src.files)
+
+
+def regroup(recipe: Recipe, p: Partial, mapping: Sequence[pl.Expr],
+            keys: Sequence[str] | None = None) -> Partial:
+    """Apply key mappings (e.g. coarser levels or relabelled categories) and merge groups.
+
+    ``keys`` selects the key columns to keep (default: all); dropping a key merges across it.
+    """
+    keep = list(p.keys if keys is None else keys)
+    present = [c for c in p.table.columns if c.startswith("__")]
+    table = p.table.with_columns(mapping) if mapping else p.table
+    table = (table.group_by(keep).agg(_merge_aggs(recipe.measures, present)).sort(keep)
+             if keep else table.select(_merge_aggs(recipe.measures, present)))
+    pairs = {}
+    for name, pt in p.pairs.items():
+        pt2 = pt.with_columns(mapping) if mapping else pt
+        pairs[name] = pt2.select([*keep, PAIR]).unique()
+    return Partial(keys=tuple(keep), table=table, pairs=pairs, hex_res=p.hex_res,
+                   time_bin=p.time_bin, accounting=p.accounting)
+
+
+def rollup(recipe: Recipe, p: Partial, *, hex_res: int | None,
+           time_bin: TimeBin | None) -> Partial:
+    """The partial at a coarser hex resolution and/or time bin, from a finer partial."""
+    mapping = coarsen(recipe, hex_res=hex_res, time_bin=time_bin, from_hex=p.hex_res,
+                      from_time=p.time_bin)
+    if not mapping:
+        return p
+    out = regroup(recipe, p, mapping)
+    return replace(out, hex_res=hex_res if recipe.hex else None,
+                   time_bin=time_bin if recipe.time else None)
+
+
+def merge(recipe: Recipe, a: Partial, b: Partial) -> Partial:
+    """Merge two partials of the same recipe and level (e.g. two input files or two nights)."""
+    if a.keys != b.keys or a.hex_res != b.hex_res or a.time_bin != b.time_bin:
+        raise ValueError("partials of different levels cannot be merged; roll up first")
+    both = Partial(keys=a.keys, table=pl.concat([a.table, b.table], how="vertical_relaxed"),
+                   pairs={k: pl.concat([a.pairs[k], b.pairs[k]], how="vertical_relaxed")
+                          for k in a.pairs},
+                   hex_res=a.hex_res, time_bin=a.time_bin,
+                   accounting=Accounting(
+                       a.accounting.input_rows + b.accounting.input_rows,
+                       a.accounting.filtered_rows + b.accounting.filtered_rows,
+                       a.accounting.invalid_rows + b.accounting.invalid_rows,
+                       {k: a.accounting.invalid_by_reason.get(k, 0)
+                        + b.accounting.invalid_by_reason.get(k, 0)
+                        for k in sorted({*a.accounting.invalid_by_reason,
+                                         *b.accounting.invalid_by_reason})}))
+    return regroup(recipe, both, [])
+
+
+def finalize(recipe: Recipe, p: Partial) -> pl.DataFrame:
+    """Key columns, ``__n`` and one column per measure (in recipe order)."""
+    keys = list(p.keys)
+    t = p.table
+    cols: list[pl.Expr] = [pl.col(k) for k in keys] + [pl.col(N)]
+    for m in recipe.measures:
+        if m.kind == "count":
+            cols.append(pl.col(N).alias(m.name))
+        elif m.kind == "sum":
+            cols.append(pl.when(pl.col(_cnt(m)) > 0).then(pl.col(_sum(m))).alias(m.name))
+        elif m.kind == "mean":
+            cols.append(pl.when(pl.col(_cnt(m)) > 0)
+                        .then(pl.col(_sum(m)).cast(pl.Float64) / pl.col(_cnt(m)))
+                        .alias(m.name))
+        elif m.kind == "min":
+            cols.append(pl.col(_min(m)).alias(m.name))
+        elif m.kind == "max":
+            cols.append(pl.col(_max(m)).alias(m.name))
+        else:
+            cols.append(pl.lit(0, dtype=pl.Int64).alias(m.name))
+    out = t.select(cols)
+    for m in recipe.measures:
+        if m.kind != "distinct":
+            continue
+        pt = p.pairs[m.name]
+        if keys:
+            counts = pt.group_by(keys).agg(pl.len().cast(pl.Int64).alias("__dc"))
+            out = (out.join(counts, on=keys, how="left", nulls_equal=True)
+                   .with_columns(pl.col("__dc").fill_null(0).alias(m.name)).drop("__dc"))
+        else:
+            out = out.with_columns(pl.lit(pt.height, dtype=pl.Int64).alias(m.name))
+    return out.sort(keys) if keys else out
+
+
+__all__ = ["HEX", "TIME", "N", "Accounting", "Partial", "finalize", "merge", "regroup",
+           "rollup", "scan_partial"]

@@ -1,0 +1,235 @@
+"""The command line: a thin click layer over the library.
+
+Each command parses its options, calls one library function, and prints. Every
+:class:`~reduce.errors.ReduceError` becomes one line on stderr and its exit code, here and
+nowhere else (``--debug`` shows the traceback instead). Exit codes: 0 ok; 1 a budget cannot
+be met (or an audit finds a file over budget or inconsistent); 2 bad recipe or input;
+3 an internal error (a bug: rerun with --debug and report it).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import sys
+from collections.abc import Callable, Iterator
+from pathlib import Path
+from typing import Any
+
+import click
+import orjson
+
+from reduce import __version__
+from reduce.errors import RecipeError, ReduceError
+from reduce.sizes import MEASURES, parse_size
+
+
+class _SizeType(click.ParamType):
+    """A byte size: 300KB, 1.5MB (decimal), 200KiB (IEC 80000-13), or plain bytes."""
+
+    name = "size"
+
+    def convert(self, value: Any, param: click.Parameter | None,
+                ctx: click.Context | None) -> int:
+        if isinstance(value, int):
+            return value
+        try:
+            return parse_size(value)
+        except ValueError as e:
+            self.fail(str(e), param, ctx)
+
+
+SIZE = _SizeType()
+
+
+class _Group(click.Group):
+    def invoke(self, ctx: click.Context) -> Any:
+        try:
+            return super().invoke(ctx)
+        except ReduceError as e:
+            if ctx.obj and ctx.obj.get("debug"):
+                raise
+            click.echo(f"error: {e.message}", err=True)
+            ctx.exit(e.exit_code)
+        except KeyboardInterrupt:
+            click.echo("error: interrupted; nothing was published by the unfinished step",
+                       err=True)
+            ctx.exit(130)
+        except (click.exceptions.Exit, click.ClickException, click.Abort):
+            raise
+        except Exception as e:  # a bug: say so in one line
+            if ctx.obj and ctx.obj.get("debug"):
+                raise
+            first = (str(e).strip().splitlines() or [""])[0]
+            click.echo(f"error: internal error ({type(e).__name__}: {first}); rerun with "
+                       "--debug and report it", err=True)
+            ctx.exit(3)
+
+
+@click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="reduce")
+@click.option("--debug", is_flag=True, help="Show tracebacks instead of one-line errors.")
+@click.pass_context
+def main(ctx: click.Context, debug: bool) -> None:
+    """Shrink big event tables into browser-sized payloads that fit a byte budget."""
+    ctx.ensure_object(dict)
+    ctx.obj["debug"] = debug
+
+
+@contextlib.contextmanager
+def _progress(quiet: bool) -> Iterator[Callable[[str], None]]:
+    """A status line on a terminal (stderr); silent with --quiet or when not a terminal."""
+    if quiet or not sys.stderr.isatty() or os.environ.get("CI"):
+        yield lambda _msg: None
+        return
+    from rich.console import Console
+
+    console = Console(stderr=True)
+    with console.status("starting") as status:
+        yield lambda msg: status.update(msg)
+
+
+def _overrides(sets: tuple[str, ...]) -> dict[str, str]:
+    from reduce.recipe import parse_override
+
+    return dict(parse_override(s) for s in sets)
+
+
+_BUDGET_OPTS = [
+    click.option("--budget", "budget_max", type=SIZE, default=None,
+                 help="Byte budget, e.g. 300KB, 1.5MB, 200KiB (overrides budget.max)."),
+    click.option("--on", type=click.Choice(MEASURES), default=None,
+                 help="Measure the budget applies to (overrides budget.on)."),
+    click.option("--set", "sets", multiple=True, metavar="KEY=VALUE",
+                 help="Override any recipe key, e.g. --set prune.top.k=[10,5]. Repeatable."),
+    click.option("--no-cache", is_flag=True,
+                 help="Neither read nor write the cached finest partial."),
+    click.option("--quiet", "-q", is_flag=True, help="No progress output."),
+]
+
+
+def _budget_opts(f: Callable[..., Any]) -> Callable[..., Any]:
+    for opt in reversed(_BUDGET_OPTS):
+        f = opt(f)
+    return f
+
+
+@main.command("run")
+@click.argument("recipes", nargs=-1, required=True, type=click.Path(path_type=Path))
+@click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path),
+              default=None, help="Write payloads into this folder (default: output.path).")
+@click.option("--write-anyway", is_flag=True,
+              help="When nothing fits, write the smallest payload anyway (still exit 1).")
+@click.option("--json", "as_json", is_flag=True, help="Print a JSON summary.")
+@_budget_opts
+def run_cmd(recipes: tuple[Path, ...], out_dir: Path | None, write_anyway: bool,
+            as_json: bool, budget_max: int | None, on: str | None, sets: tuple[str, ...],
+            no_cache: bool, quiet: bool) -> None:
+    """Run recipes: fit each to its budget and write payload and manifest."""
+    from reduce import report
+    from reduce.pipeline import run
+    from reduce.recipe import load_recipe
+
+    over = _overrides(sets)
+    loaded = [load_recipe(r, overrides=over) for r in recipes]  # validate all first
+    summaries = []
+    with _progress(quiet or as_json) as progress:
+        for rec in loaded:
+            res = run(rec, out_dir=out_dir, budget_max=budget_max, on=on,
+                      write_anyway=write_anyway, use_cache=not no_cache, progress=progress)
+            if as_json:
+                summaries.append(report.run_json(res))
+            elif not quiet:
+                click.echo(report.run_line(res))
+                for line in report.run_notes(res):
+                    click.echo(line)
+            if res.over_budget:
+                from reduce.pipeline import smallest_message
+
+                click.echo(f"error: {smallest_message(res.fit)}", err=True)
+    if as_json:
+        click.echo(orjson.dumps(summaries, option=orjson.OPT_INDENT_2).decode())
+    if any(s.get("over_budget") for s in summaries):
+        sys.exit(1)
+
+
+@main.command("ladder")
+@click.argument("recipe", type=click.Path(path_type=Path))
+@click.option("--order", default=None, metavar="AXES",
+              help="Comma-separated axes, first gives up detail first (overrides "
+                   "budget.order).")
+@click.option("--all", "every", is_flag=True, help="Evaluate every combination of levels.")
+@click.option("--json", "as_json", is_flag=True, help="Print the frontier as JSON.")
+@_budget_opts
+def ladder_cmd(recipe: Path, order: str | None, every: bool, as_json: bool,
+               budget_max: int | None, on: str | None, sets: tuple[str, ...], no_cache: bool,
+               quiet: bool) -> None:
+    """Show every candidate level evaluated: rows, drawn elements, bytes, fits or not."""
+    from reduce import report
+    from reduce.pipeline import ladder
+
+    order_list = [a.strip() for a in order.split(",") if a.strip()] if order else None
+    if order is not None and not order_list:
+        raise RecipeError("--order: list axes separated by commas, e.g. --order top,time,hex")
+    with _progress(quiet or as_json) as progress:
+        res = ladder(recipe, budget_max=budget_max, on=on, order=order_list,
+                     overrides=_overrides(sets), use_cache=not no_cache, every_level=every,
+                     progress=progress)
+    if as_json:
+        click.echo(report.ladder_json(res).decode())
+    else:
+        click.echo(report.ladder_table(res))
+    if res.level is None:
+        from reduce.pipeline import smallest_message
+
+        click.echo(f"note: {smallest_message(res)}", err=True)
+
+
+@main.command("check")
+@click.argument("recipes", nargs=-1, required=True, type=click.Path(path_type=Path))
+@click.option("--set", "sets", multiple=True, metavar="KEY=VALUE",
+              help="Override any recipe key before checking.")
+def check_cmd(recipes: tuple[Path, ...], sets: tuple[str, ...]) -> None:
+    """Validate recipes and their sources' schemas without scanning the data."""
+    from reduce import report
+    from reduce.normalize import load_denominators
+    from reduce.recipe import load_recipe
+    from reduce.source import needed_columns, open_source
+
+    over = _overrides(sets)
+    for r in recipes:
+        rec = load_recipe(r, overrides=over)
+        src = open_source(rec)
+        if rec.normalize and rec.normalize.denominators:
+            load_denominators(rec.normalize.denominators)
+        click.echo(report.check_line(r, rec.name, len(src.files), needed_columns(rec)))
+
+
+@main.command("demo")
+@click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path),
+              default=Path("out"), show_default=True, help="Folder for the demo payloads.")
+@click.option("--rows", type=click.IntRange(1000, 50_000_000), default=None,
+              help="Rows of demo events to generate (default 2,000,000).")
+@click.option("--regenerate", is_flag=True, help="Generate the demo data again.")
+@click.option("--quiet", "-q", is_flag=True, help="No progress output.")
+def demo_cmd(out_dir: Path, rows: int | None, regenerate: bool, quiet: bool) -> None:
+    """Generate the demo scenario (if absent) and run every demo recipe."""
+    from reduce import demo, report
+
+    with _progress(quiet) as progress:
+        results, seconds = demo.run_demo(out_dir=out_dir, rows=rows, regenerate=regenerate,
+                                         progress=progress, echo=click.echo)
+    for res in results:
+        click.echo(report.run_line(res))
+    click.echo(f"demo: {len(results)} recipes in {seconds:.1f} s; payloads in {out_dir}")
+
+
+def _register_audit() -> None:
+    try:
+        from reduce._audit_cli import audit
+    except ImportError:  # pragma: no cover - the audit module ships with the package
+        return
+    main.add_command(audit)
+
+
+_register_audit()

@@ -1,0 +1,384 @@
+"""The pipeline: one scan, then every candidate level from the finest partial.
+
+This module wires the stages together for one recipe:
+
+    source -> finest partial (one scan, or the partial cache)
+           -> per level: roll-up -> top-k -> min-count -> finalize -> normalize -> sort
+           -> encode (digits) -> sizes -> budget search -> payload + manifest
+
+and exposes the library API used by the command line and by Python sessions:
+:func:`fit` (choose a level under a budget), :func:`ladder` (measure candidates exactly),
+and :func:`run` (fit and publish). Every intermediate result is cached per level within a
+:class:`Reducer`, so a search that visits the same roll-up twice computes it once.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+from typing import Any
+
+import polars as pl
+
+from reduce import aggregate, budget, cache, encode, normalize, prune
+from reduce.aggregate import Partial
+from reduce.errors import BudgetError, RecipeError
+from reduce.normalize import NormalizeReport
+from reduce.publish import manifest_path, publish, resolve_output, sha256
+from reduce.recipe import Budget, Recipe, load_recipe, parse_time_bin
+from reduce.sizes import MEASURES, Measure, fits_on, measure_all, parse_size
+from reduce.source import OpenSource, open_source
+
+Progress = Callable[[str], None]
+
+
+@dataclass
+class LevelRows:
+    """Finalized, normalized, sorted rows of one level (before encoding)."""
+
+    frame: pl.DataFrame
+    suppressed_rows: int
+    suppressed_cells: int
+    report: NormalizeReport
+
+
+@dataclass
+class FitResult:
+    """What :func:`fit` and :func:`ladder` return."""
+
+    recipe: Recipe
+    level: dict[str, Any] | None  # None when nothing fits
+    payload: bytes | None
+    candidates: list[budget.Candidate]
+    frontier: pl.DataFrame
+    chosen: budget.Candidate | None
+    budget: Budget | None
+    rows: LevelRows | None = None
+    source: OpenSource | None = None
+    partial_from_cache: bool = False
+    accounting: dict[str, int] = field(default_factory=dict)
+    reducer: Reducer | None = field(default=None, repr=False)
+
+
+class Reducer:
+    """All levels of one recipe, computed lazily from one finest partial."""
+
+    def __init__(self, recipe: Recipe, *, use_cache: bool = True,
+                 progress: Progress | None = None) -> None:
+        self.recipe = recipe
+        self.use_cache = use_cache
+        self.progress = progress or (lambda _msg: None)
+        self.source: OpenSource | None = None
+        self.partial_from_cache = False
+        self._partial: Partial | None = None
+        self._rollups: dict[tuple[Any, Any], Partial] = {}
+        self._rows: dict[tuple[Any, ...], LevelRows] = {}
+        self._payloads: dict[tuple[Any, ...], bytes] = {}
+        self._den: pl.DataFrame | None = None
+        n = recipe.normalize
+        if n is not None and n.denominators is not None:
+            self._den = normalize.load_denominators(n.denominators)
+
+    # -- the finest partial -----------------------------------------------------------------
+    def partial(self) -> Partial:
+        if self._partial is None:
+            self.progress("checking the source")
+            self.source = open_source(self.recipe)
+            key = cache.cache_key(self.recipe, self.source.fingerprint)
+            p = cache.load(key) if self.use_cache else None
+            if p is not None:
+                self.partial_from_cache = True
+                self.progress("using the cached finest partial")
+            else:
+                p = aggregate.scan_partial(self.recipe, self.source, progress=self.progress)
+                if self.use_cache:
+                    cache.store(key, p)
+            prune.check_rest_label(self.recipe, p)
+            self._partial = p
+        return self._partial
+
+    # -- levels -----------------------------------------------------------------------------
+    def _rollup(self, hex_res: int | None, time_text: str | None) -> Partial:
+        k = (hex_res, time_text)
+        if k not in self._rollups:
+            tb = parse_time_bin(time_text) if time_text else None
+            self._rollups[k] = aggregate.rollup(self.recipe, self.partial(), hex_res=hex_res,
+                                                time_bin=tb)
+        return self._rollups[k]
+
+    def rows(self, level: Mapping[str, Any]) -> LevelRows:
+        """Rows of a level (digits do not matter here)."""
+        r = self.recipe
+        k = (level.get("hex"), level.get("time"), level.get("top"))
+        if k not in self._rows:
+            p = self._rollup(level.get("hex"), level.get("time"))
+            if r.top is not None:
+                p = prune.top_k(r, p, int(level["top"]))
+            p, sup_rows, sup_cells = prune.suppress(r, p)
+            final = aggregate.finalize(r, p)
+            final, report = normalize.apply(r, final, den=self._den, hex_res=level.get("hex"))
+            final = encode.sort_rows(r, final)
+            self._rows[k] = LevelRows(final, sup_rows, sup_cells, report)
+        return self._rows[k]
+
+    def accounting(self, level: Mapping[str, Any]) -> dict[str, int]:
+        acc = self.partial().accounting
+        lr = self.rows(level)
+        return encode.accounting_block(
+            input_rows=acc.input_rows, filtered_rows=acc.filtered_rows,
+            invalid_rows=acc.invalid_rows, suppressed_rows=lr.suppressed_rows,
+            represented_rows=encode.represented(lr.frame))
+
+    def payload(self, level: Mapping[str, Any]) -> bytes:
+        k = budget.level_key(level)
+        if k not in self._payloads:
+            r = self.recipe
+            lr = self.rows(level)
+            meta: dict[str, Any] = {}
+            if r.time:
+                meta["time_zone"] = r.time.zone
+            if r.top:
+                meta["rest"] = r.top.rest
+            if r.normalize and r.normalize.rate_measures:
+                meta["per"] = r.normalize.per
+            self._payloads[k] = encode.encode(r, lr.frame, level=level,
+                                              accounting=self.accounting(level),
+                                              digits=int(level["digits"]), meta=meta)
+        return self._payloads[k]
+
+    def candidate(self, level: Mapping[str, Any], *, exact: bool, on: Measure | None = None,
+                  limit: int | None = None) -> budget.Candidate:
+        data = self.payload(level)
+        lr = self.rows(level)
+        c = budget.Candidate(level=dict(level), rows=lr.frame.height,
+                             elements=encode.elements(lr.frame), raw=len(data))
+        if exact or on is None or limit is None:
+            s = measure_all(data)
+            c.gzip, c.brotli = s.gzip, s.brotli
+            if on is not None and limit is not None:
+                c.fits = s.on(on) <= limit
+        else:
+            ok, size = fits_on(data, on, limit)
+            c.fits = ok
+            if on != "raw":
+                setattr(c, on, size)
+            if size is None:
+                c.note = f"> {limit} {on} (stopped early)"
+        return c
+
+
+def _as_recipe(recipe: Recipe | str | Path, overrides: Mapping[str, str] | None) -> Recipe:
+    if isinstance(recipe, Recipe):
+        if overrides:
+            return load_recipe(recipe.file, overrides=overrides)
+        return recipe
+    return load_recipe(recipe, overrides=overrides)
+
+
+def _with_budget(recipe: Recipe, max_: str | int | None, on: str | None,
+                 order: Sequence[str] | None) -> Recipe:
+    """Apply budget overrides given as arguments (validated like the file)."""
+    if max_ is None and on is None and order is None:
+        return recipe
+    over: dict[str, str] = {}
+    if max_ is not None:
+        try:
+            over["budget.max"] = str(parse_size(max_))
+        except ValueError as e:
+            raise RecipeError(f"--budget: {e}") from None
+    elif recipe.budget is None:
+        raise RecipeError(f"{recipe.file.name}: budget.max: --on and --order need a budget; "
+                          "add --budget or a [budget] table")
+    if on is not None:
+        if on not in MEASURES:
+            raise RecipeError(f"--on: {on!r} is not a measure; use raw, gzip or brotli")
+        over["budget.on"] = f'"{on}"'
+    if order is not None:
+        over["budget.order"] = "[" + ", ".join(f'"{a}"' for a in order) + "]"
+    return load_recipe(recipe.file, overrides={**_overrides_of(recipe), **over})
+
+
+def _overrides_of(recipe: Recipe) -> dict[str, str]:
+    return dict(recipe.overrides)
+
+
+def fit(recipe: Recipe | str | Path, *, budget_max: str | int | None = None,
+        on: str | None = None, order: Sequence[str] | None = None,
+        overrides: Mapping[str, str] | None = None, use_cache: bool = True,
+        exact: bool = False, every_level: bool = False, progress: Progress | None = None,
+        reducer: Reducer | None = None) -> FitResult:
+    """Choose the finest level that fits the budget; measure every candidate evaluated.
+
+    With no budget (none in the recipe, none given), the finest level is chosen. ``exact``
+    measures raw, gzip and brotli bytes of every candidate (as ``reduce ladder`` shows);
+    otherwise only the budget's measure is computed, stopping early once over the limit.
+    ``every_level`` evaluates every combination of levels instead of searching.
+    """
+    r = _with_budget(_as_recipe(recipe, overrides), budget_max, on, order)
+    red = reducer if reducer is not None and reducer.recipe == r else Reducer(
+        r, use_cache=use_cache, progress=progress)
+    ladder_axes = r.ladder()
+    axes = list(ladder_axes)
+    b = r.budget
+    cands: dict[tuple[Any, ...], budget.Candidate] = {}
+
+    def evaluate(level: dict[str, Any], *, force_exact: bool = False) -> budget.Candidate:
+        k = budget.level_key(level)
+        c = cands.get(k)
+        if c is None or (force_exact and c.gzip is None or force_exact and c.brotli is None):
+            red.progress(f"measuring {budget.describe_level(level)}")
+            c = red.candidate(level, exact=exact or force_exact,
+                              on=b.on if b else None, limit=b.max if b else None)
+            cands[k] = c
+        return c
+
+    chosen_level: dict[str, Any] | None
+    if every_level:
+        for lv in budget.all_levels(ladder_axes):
+            evaluate(lv)
+    if b is None:
+        chosen_level = r.finest_level()
+        evaluate(chosen_level, force_exact=True)
+        if every_level:
+            pass
+    else:
+        res = budget.search(ladder_axes, b.order, lambda lv: bool(evaluate(lv).fits))
+        chosen_level = res.chosen
+        if chosen_level is None:
+            evaluate(res.coarsest, force_exact=True)
+    chosen = None
+    if chosen_level is not None:
+        chosen = evaluate(chosen_level, force_exact=True)
+        chosen.chosen = True
+    candidates = list(cands.values())
+    frontier = budget.frontier_frame(candidates, axes)
+    result = FitResult(recipe=r, level=chosen_level, candidates=candidates, frontier=frontier,
+                       chosen=chosen, budget=b,
+                       payload=red.payload(chosen_level) if chosen_level else None,
+                       rows=red.rows(chosen_level) if chosen_level else None,
+                       source=red.source, partial_from_cache=red.partial_from_cache,
+                       accounting=red.accounting(chosen_level) if chosen_level else {},
+                       reducer=red)
+    return result
+
+
+def ladder(recipe: Recipe | str | Path, **kw: Any) -> FitResult:
+    """Like :func:`fit`, measuring raw, gzip and brotli bytes of every candidate."""
+    kw.setdefault("exact", True)
+    return fit(recipe, **kw)
+
+
+def smallest_message(result: FitResult) -> str:
+    """The one-line 'nothing fits' message for a result without a chosen level."""
+    b = result.budget
+    assert b is not None
+    coarsest = {a: lv[-1] for a, lv in result.recipe.ladder().items()}
+    smallest = next(c for c in result.candidates
+                    if budget.level_key(c.level) == budget.level_key(coarsest))
+    return budget.nothing_fits_message(_recipe_label(result.recipe), b.max, b.on, smallest,
+                                       list(result.recipe.ladder()))
+
+
+def _recipe_label(recipe: Recipe) -> str:
+    from reduce.recipe import _display
+
+    return _display(recipe.file)
+
+
+@dataclass
+class RunResult:
+    fit: FitResult
+    path: Path | None  # None when nothing was written
+    manifest: dict[str, Any] | None
+    over_budget: bool = False
+
+
+def output_path(recipe: Recipe, out_dir: Path | None) -> Path:
+    """Where a recipe's payload goes: ``--out DIR`` wins over ``output.path``."""
+    ext = {"columns": ".json", "rows": ".json", "csv": ".csv"}[recipe.output.layout]
+    if out_dir is not None:
+        name = recipe.output.path.name if recipe.output.path else f"{recipe.name}{ext}"
+        return resolve_output(Path(out_dir), name)
+    if recipe.output.path is not None:
+        p = recipe.output.path
+        return resolve_output(p.parent, p.name)
+    return resolve_output(Path("out"), f"{recipe.name}{ext}")
+
+
+def build_manifest(result: FitResult, path: Path) -> dict[str, Any]:
+    r = result.recipe
+    assert result.payload is not None and result.chosen is not None
+    data = result.payload
+    sizes = measure_all(data)
+    red = result.reducer
+    assert result.level is not None and red is not None
+    lr = red.rows(result.level)
+    acc = red.partial().accounting
+    src = result.source
+    m: dict[str, Any] = {
+        "format": "reduce.manifest/1",
+        "payload": path.name,
+        "layout": r.output.layout,
+        "sha256": sha256(data),
+        "bytes": sizes.as_dict(),
+        "rows": result.chosen.rows,
+        "elements": result.chosen.elements,
+        "recipe": {"name": r.name, "file": r.file.name, "sha256": r.content_hash},
+        "level": dict(result.level),
+        "budget": ({"max": result.budget.max, "on": result.budget.on,
+                    "order": list(result.budget.order),
+                    "fits": sizes.on(result.budget.on) <= result.budget.max}
+                   if result.budget else None),
+        "frontier": [
+            {"level": c.level, "rows": c.rows, "raw": c.raw, "gzip": c.gzip,
+             "brotli": c.brotli, "fits": c.fits, "chosen": c.chosen}
+            for c in result.candidates],
+        "accounting": {**result.accounting, "invalid_by_reason": acc.invalid_by_reason,
+                       "suppressed_cells": lr.suppressed_cells},
+        "source": {"fingerprint": src.fingerprint if src else None,
+                   "files": len(src.files) if src else None,
+                   "format": src.format if src else None},
+    }
+    if r.normalize is not None and r.normalize.rate_measures:
+        m["denominators"] = lr.report.as_dict()
+    return m
+
+
+def run(recipe: Recipe | str | Path, *, out_dir: Path | None = None,
+        budget_max: str | int | None = None, on: str | None = None,
+        overrides: Mapping[str, str] | None = None, write_anyway: bool = False,
+        use_cache: bool = True, progress: Progress | None = None) -> RunResult:
+    """Fit a recipe and publish its payload and manifest (see :func:`fit`).
+
+    Raises :class:`~reduce.errors.BudgetError` when nothing fits, after writing the smallest
+    payload only if ``write_anyway``.
+    """
+    r = _as_recipe(recipe, overrides)
+    path = output_path(r, out_dir)
+    from reduce.publish import check_target
+
+    check_target(path)  # fail before the scan, not after it
+    result = fit(r, budget_max=budget_max, on=on, use_cache=use_cache, progress=progress)
+    if result.level is None:
+        msg = smallest_message(result)
+        if not write_anyway:
+            raise BudgetError(msg)
+        coarsest = {a: lv[-1] for a, lv in result.recipe.ladder().items()}
+        red = result.reducer
+        assert red is not None
+        forced = next(c for c in result.candidates
+                      if budget.level_key(c.level) == budget.level_key(coarsest))
+        forced.chosen = True
+        result = replace(result, level=coarsest, chosen=forced, payload=red.payload(coarsest),
+                         rows=red.rows(coarsest), accounting=red.accounting(coarsest))
+        manifest = build_manifest(result, path)
+        publish(path, result.payload or b"", manifest)
+        return RunResult(result, path, manifest, over_budget=True)
+    manifest = build_manifest(result, path)
+    assert result.payload is not None
+    publish(path, result.payload, manifest)
+    return RunResult(result, path, manifest)
+
+
+__all__ = ["FitResult", "Reducer", "RunResult", "fit", "ladder", "manifest_path", "run"]

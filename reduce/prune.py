@@ -1,0 +1,120 @@
+"""Pruning: top-k categories with a remainder row, and minimum-count suppression.
+
+This module owns both ways a payload gives up rows:
+
+- **top-k**: within each group (``prune.top.within``, default every non-category key), the
+  categories are ranked by a measure (descending, ties broken by the category label so the
+  result is deterministic); categories outside the top k are relabelled to the ``rest`` label
+  and merged into one remainder row per group. Relabelling happens on the *partial*, so every
+  measure of the remainder row is exact (its distinct count is the size of the union of the
+  folded categories' values) and every group's total is conserved.
+- **minimum count**: cells whose count (or distinct-contributor count, as disclosure control
+  usually asks: common practice) is below the threshold are suppressed and their rows counted
+  in ``suppressed_rows``, or, with ``fold = true``, first folded into their group's remainder
+  row; a remainder row still below the threshold is suppressed too.
+"""
+
+from __future__ import annotations
+
+import polars as pl
+
+from reduce.aggregate import N, Partial, finalize, regroup
+from reduce.errors import SourceError
+from reduce.keys import HEX, TIME
+from reduce.recipe import Recipe
+
+_AXIS_COL = {"time": TIME, "hex": HEX}
+
+
+def within_columns(recipe: Recipe, within: tuple[str, ...]) -> list[str]:
+    """Map ``within`` axis names to the partial's key column names."""
+    cols = []
+    for a in within:
+        if a == "region":
+            assert recipe.region is not None
+            cols.append(recipe.region.column)
+        else:
+            cols.append(_AXIS_COL[a])
+    return cols
+
+
+def _relabel(recipe: Recipe, p: Partial, fold: pl.DataFrame, on: list[str]) -> Partial:
+    """Relabel the categories of the rows of ``p`` that match ``fold`` (on ``on``) to rest."""
+    assert recipe.top is not None
+    rest = recipe.top.rest
+    cats = list(recipe.categories)
+    marker = fold.select(on).unique().with_columns(pl.lit(True).alias("__fold"))
+
+    def apply(df: pl.DataFrame) -> pl.DataFrame:
+        j = df.join(marker, on=on, how="left", nulls_equal=True)
+        return j.with_columns([
+            pl.when(pl.col("__fold")).then(pl.lit(rest)).otherwise(pl.col(c)).alias(c)
+            for c in cats]).drop("__fold")
+
+    moved = Partial(keys=p.keys, table=apply(p.table),
+                    pairs={k: apply(v) for k, v in p.pairs.items()}, hex_res=p.hex_res,
+                    time_bin=p.time_bin, accounting=p.accounting)
+    return regroup(recipe, moved, [])
+
+
+def check_rest_label(recipe: Recipe, p: Partial) -> None:
+    """The rest label must not also be a real category (the two would merge silently)."""
+    if recipe.top is None or not p.table.height:
+        return
+    rest = recipe.top.rest
+    clash = p.table.filter(pl.all_horizontal([pl.col(c) == rest for c in recipe.categories]))
+    if clash.height:
+        raise SourceError(f"{recipe.file.name}: prune.top.rest: the label {rest!r} is also a "
+                          f"value of column {recipe.categories[0]!r} in the data; choose "
+                          "another rest label")
+
+
+def top_k(recipe: Recipe, p: Partial, k: int) -> Partial:
+    """Keep the top ``k`` categories per group; fold the rest into one row per group."""
+    top = recipe.top
+    assert top is not None
+    within = within_columns(recipe, top.within)
+    cats = list(recipe.categories)
+    ranked_keys = [*within, *cats]
+    rank_src = p if list(p.keys) == ranked_keys else regroup(recipe, p, [], ranked_keys)
+    scores = finalize(recipe, rank_src).select([*ranked_keys, pl.col(top.by).alias("__by")])
+    order = scores.sort(["__by", *cats], descending=[True] + [False] * len(cats),
+                        nulls_last=True)
+    ranked = order.with_columns(
+        (pl.int_range(pl.len()).over(within) if within else pl.int_range(pl.len()))
+        .alias("__rank"))
+    fold = ranked.filter(pl.col("__rank") >= k)
+    if not fold.height:
+        return p
+    return _relabel(recipe, p, fold, ranked_keys)
+
+
+def suppress(recipe: Recipe, p: Partial) -> tuple[Partial, int, int]:
+    """Apply ``prune.min_count``; returns the partial, suppressed rows and suppressed cells."""
+    mc = recipe.min_count
+    if mc is None or not p.table.height:
+        return p, 0, 0
+    col = mc.by or N
+    final = finalize(recipe, p)
+    keys = list(p.keys)
+    small = final.filter(pl.col(col) < mc.threshold).select(keys)
+    if not small.height:
+        return p, 0, 0
+    if mc.fold and recipe.top is not None:
+        p = _relabel(recipe, p, small, keys)
+        final = finalize(recipe, p)
+        small = final.filter(pl.col(col) < mc.threshold).select(keys)
+        if not small.height:
+            return p, 0, 0
+    drop = small.with_columns(pl.lit(True).alias("__drop"))
+
+    def keep(df: pl.DataFrame) -> pl.DataFrame:
+        return (df.join(drop, on=keys, how="left", nulls_equal=True)
+                .filter(pl.col("__drop").is_null()).drop("__drop"))
+
+    gone = p.table.join(small, on=keys, how="semi", nulls_equal=True)
+    rows = int(gone.get_column(N).sum())
+    kept = Partial(keys=p.keys, table=keep(p.table),
+                   pairs={k: keep(v) for k, v in p.pairs.items()}, hex_res=p.hex_res,
+                   time_bin=p.time_bin, accounting=p.accounting)
+    return kept, rows, small.height

@@ -1,0 +1,888 @@
+"""Recipes: TOML documents read with ``tomllib`` into frozen dataclasses.
+
+This module owns the recipe schema and every check that can be made without touching the
+data: key names (unknown keys fail with a close-match hint), types, ranges, allowed values,
+ladders ordered finest to coarsest, cross-references between sections (a measure named in
+``prune.top.by`` must exist), and paths resolved relative to the recipe file. Nothing in a
+recipe is ever evaluated as code: filters are structured data turned into polars expressions
+by :mod:`reduce.source`.
+
+Every error is a :class:`~reduce.errors.RecipeError` whose message starts with the recipe
+file and the dotted key at fault, e.g. ``recipes/x.toml: group.hex.levels: ...``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import hashlib
+import re
+import tomllib
+import zoneinfo
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Literal
+
+import orjson
+
+from reduce.errors import RecipeError, did_you_mean
+from reduce.sizes import MEASURES, Measure, parse_size
+
+# --------------------------------------------------------------------------------------------
+# The dataclasses
+# --------------------------------------------------------------------------------------------
+
+FilterOp = Literal["in", "not_in", "range", "null", "not_null"]
+MeasureKind = Literal["count", "sum", "min", "max", "mean", "distinct"]
+Layout = Literal["columns", "rows", "csv"]
+AXES = ("hex", "time", "top", "digits")
+LAYOUTS: tuple[str, ...] = ("columns", "rows", "csv")
+SOURCE_FORMATS = ("parquet", "csv", "ndjson")
+
+
+@dataclass(frozen=True, slots=True)
+class Filter:
+    """One structured filter: ``column`` compared with literal values, never code."""
+
+    column: str
+    op: FilterOp
+    values: tuple[Any, ...] = ()
+    lo: Any = None
+    hi: Any = None
+    key: str = ""  # dotted recipe key, for messages
+
+
+@dataclass(frozen=True, slots=True)
+class Source:
+    path: str  # absolute path, glob or folder
+    display: str  # as written in the recipe
+    format: str | None  # parquet | csv | ndjson, or None to infer from file names
+    time: str | None
+    lat: str | None
+    lon: str | None
+    naive_zone: str  # zone in which naive timestamps are read
+    filters: tuple[Filter, ...]
+
+
+@dataclass(frozen=True, slots=True)
+class HexKey:
+    levels: tuple[int, ...]  # H3 resolutions, finest first
+
+
+@dataclass(frozen=True, slots=True)
+class TimeBin:
+    """A time-bin width: ``n`` units of minutes, hours, days, weeks, months or years."""
+
+    n: int
+    unit: str  # m h d w mo y
+
+    @property
+    def text(self) -> str:
+        return f"{self.n}{self.unit}"
+
+    @property
+    def minutes(self) -> int | None:
+        """Fixed width in minutes, or None for calendar units (months, years)."""
+        per = {"m": 1, "h": 60, "d": 1440, "w": 10080}
+        return self.n * per[self.unit] if self.unit in per else None
+
+    def nests(self, finer: TimeBin) -> bool:
+        """True when every bin of this width is a union of whole bins of ``finer``."""
+        if self.unit in ("mo", "y"):
+            if finer.unit in ("mo",):
+                months = self.n * (12 if self.unit == "y" else 1)
+                return months % finer.n == 0 and (12 % months == 0)
+            return finer.unit in ("m", "h", "d")  # weeks straddle months
+        fm, sm = finer.minutes, self.minutes
+        assert fm is not None and sm is not None  # both fixed here
+        if self.unit == "w":
+            return finer.unit in ("m", "h", "d", "w") and sm % fm == 0
+        return sm % fm == 0
+
+
+@dataclass(frozen=True, slots=True)
+class TimeKey:
+    levels: tuple[TimeBin, ...]  # finest first
+    zone: str
+
+
+@dataclass(frozen=True, slots=True)
+class RegionKey:
+    column: str
+
+
+@dataclass(frozen=True, slots=True)
+class MeasureSpec:
+    name: str
+    kind: MeasureKind
+    column: str | None  # None for count
+
+
+@dataclass(frozen=True, slots=True)
+class Denominators:
+    path: Path
+    display: str
+    key: str
+    value: str
+    on: Literal["region", "hex"]
+
+
+@dataclass(frozen=True, slots=True)
+class Share:
+    measures: tuple[str, ...]
+    within: tuple[str, ...]
+
+
+@dataclass(frozen=True, slots=True)
+class Normalize:
+    denominators: Denominators | None
+    per: int
+    rate_measures: tuple[str, ...]
+    share: Share | None
+    location_quotient: str | None
+
+
+@dataclass(frozen=True, slots=True)
+class TopK:
+    ks: tuple[int, ...]  # largest (finest) first
+    by: str
+    within: tuple[str, ...]
+    rest: str
+
+
+@dataclass(frozen=True, slots=True)
+class MinCount:
+    threshold: int
+    by: str | None  # a count or distinct measure; None = events (rows)
+    fold: bool  # fold suppressed cells into the group's remainder row
+
+
+@dataclass(frozen=True, slots=True)
+class Budget:
+    max: int
+    on: Measure
+    order: tuple[str, ...]
+
+
+@dataclass(frozen=True, slots=True)
+class Output:
+    path: Path | None
+    layout: Layout
+    digits: tuple[int, ...]  # ladder of decimal digits for float columns, most first
+    column_digits: tuple[tuple[str, int], ...]
+    inline: bool
+
+
+@dataclass(frozen=True, slots=True)
+class Recipe:
+    name: str
+    file: Path
+    content_hash: str  # sha256 of the validated document (after overrides)
+    scan_hash: str  # sha256 of what the finest partial depends on
+    description: str
+    source: Source
+    hex: HexKey | None
+    time: TimeKey | None
+    region: RegionKey | None
+    categories: tuple[str, ...]
+    measures: tuple[MeasureSpec, ...]
+    normalize: Normalize | None
+    top: TopK | None
+    min_count: MinCount | None
+    budget: Budget | None
+    output: Output
+    document: Mapping[str, Any] = field(repr=False, compare=False, default_factory=dict)
+    overrides: tuple[tuple[str, str], ...] = ()  # --set key=value pairs applied on load
+
+    @property
+    def key_names(self) -> tuple[str, ...]:
+        """Payload key columns in row-sort order."""
+        names: list[str] = []
+        if self.time:
+            names.append("time")
+        if self.hex:
+            names.append("hex")
+        if self.region:
+            names.append(self.region.column)
+        names.extend(self.categories)
+        return tuple(names)
+
+    @property
+    def group_names(self) -> tuple[str, ...]:
+        """Axis names usable in ``within`` lists: time, hex, region, and category columns."""
+        names = []
+        if self.time:
+            names.append("time")
+        if self.hex:
+            names.append("hex")
+        if self.region:
+            names.append("region")
+        return tuple(names)
+
+    def measure(self, name: str) -> MeasureSpec:
+        for m in self.measures:
+            if m.name == name:
+                return m
+        raise KeyError(name)
+
+    def ladder(self) -> dict[str, tuple[Any, ...]]:
+        """Every axis with its levels, finest first."""
+        axes: dict[str, tuple[Any, ...]] = {}
+        if self.hex:
+            axes["hex"] = self.hex.levels
+        if self.time:
+            axes["time"] = tuple(b.text for b in self.time.levels)
+        if self.top:
+            axes["top"] = self.top.ks
+        axes["digits"] = self.output.digits
+        return axes
+
+    def finest_level(self) -> dict[str, Any]:
+        return {axis: levels[0] for axis, levels in self.ladder().items()}
+
+
+# --------------------------------------------------------------------------------------------
+# Loading
+# --------------------------------------------------------------------------------------------
+
+_NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,99}$")
+_IDENT_RE = re.compile(r"^[A-Za-z_][A-Za-z0-9_]{0,63}$")
+_BIN_RE = re.compile(r"^(\d+)(mo|m|h|d|w|y)$")
+_ALLOWED_BINS = {
+    "m": {1, 2, 3, 4, 5, 6, 10, 12, 15, 20, 30},
+    "h": {1, 2, 3, 4, 6, 8, 12},
+    "d": {1},
+    "w": {1},
+    "mo": {1, 3},
+    "y": {1},
+}
+
+
+class _Ctx:
+    """Carries the recipe file name so every message can say where it points."""
+
+    def __init__(self, file: Path) -> None:
+        self.file = file
+        self.shown = _display(file)
+
+    def fail(self, key: str, problem: str) -> RecipeError:
+        where = f"{self.shown}: {key}: " if key else f"{self.shown}: "
+        return RecipeError(where + problem)
+
+    def table(self, doc: Any, key: str, allowed: Sequence[str]) -> dict[str, Any]:
+        if not isinstance(doc, dict):
+            raise self.fail(key, f"must be a table, got {_tname(doc)}")
+        for k in doc:
+            if k not in allowed:
+                full = f"{key}.{k}" if key else k
+                raise self.fail(
+                    full,
+                    f"unknown key{did_you_mean(k, allowed)}; allowed here: {', '.join(allowed)}",
+                )
+        return doc
+
+    def string(self, doc: Mapping[str, Any], key: str, name: str, *, required: bool = False,
+               default: str | None = None) -> str | None:
+        full = f"{key}.{name}" if key else name
+        if name not in doc:
+            if required:
+                raise self.fail(full, "is required")
+            return default
+        v = doc[name]
+        if not isinstance(v, str) or not v.strip():
+            raise self.fail(full, f"must be a non-empty string, got {_tname(v)} {_short(v)}")
+        return v
+
+    def integer(self, v: Any, key: str, *, lo: int | None = None, hi: int | None = None) -> int:
+        if isinstance(v, bool) or not isinstance(v, int):
+            raise self.fail(key, f"must be an integer, got {_tname(v)} {_short(v)}")
+        if lo is not None and v < lo or hi is not None and v > hi:
+            rng = f"{lo}..{hi}" if hi is not None else f">= {lo}"
+            raise self.fail(key, f"{v} is out of range; use {rng}")
+        return v
+
+    def str_list(self, v: Any, key: str, *, allow_single: bool = True) -> tuple[str, ...]:
+        if allow_single and isinstance(v, str):
+            v = [v]
+        if not isinstance(v, list) or not all(isinstance(x, str) and x for x in v):
+            raise self.fail(key, f"must be a list of strings, got {_short(v)}")
+        if len(set(v)) != len(v):
+            raise self.fail(key, "lists a name twice")
+        return tuple(v)
+
+
+def _display(p: Path) -> str:
+    try:
+        return str(p.resolve().relative_to(Path.cwd().resolve()))
+    except ValueError:
+        return str(p)
+
+
+def _tname(v: Any) -> str:
+    return {
+        bool: "a boolean", int: "an integer", float: "a number", str: "a string",
+        list: "a list", dict: "a table",
+    }.get(type(v), type(v).__name__)
+
+
+def _short(v: Any) -> str:
+    s = repr(v)
+    return s if len(s) <= 40 else s[:37] + "..."
+
+
+def parse_time_bin(text: Any) -> TimeBin:
+    """Parse ``15m``, ``1h``, ``1d``, ``1w``, ``1mo``, ``3mo``, ``1y`` (raises ValueError)."""
+    m = _BIN_RE.match(text) if isinstance(text, str) else None
+    if not m:
+        raise ValueError(
+            f"{_short(text)} is not a time bin; use minutes, hours, days, weeks, months or "
+            "years such as 15m, 1h, 6h, 1d, 1w, 1mo, 1y"
+        )
+    n, unit = int(m.group(1)), m.group(2)
+    if n not in _ALLOWED_BINS[unit]:
+        allowed = ", ".join(f"{k}{unit}" for k in sorted(_ALLOWED_BINS[unit]))
+        raise ValueError(f"{text!r} does not divide its parent unit evenly; use one of {allowed}")
+    return TimeBin(n, unit)
+
+
+def load_recipe(path: str | Path, *, overrides: Mapping[str, str] | None = None) -> Recipe:
+    """Read and validate a recipe file; ``overrides`` maps dotted keys to TOML values."""
+    file = Path(path)
+    ctx = _Ctx(file)
+    try:
+        text = file.read_bytes()
+    except FileNotFoundError:
+        raise RecipeError(f"{ctx.shown}: recipe file not found; check the path") from None
+    except IsADirectoryError:
+        raise RecipeError(f"{ctx.shown}: is a folder, not a recipe file") from None
+    except OSError as e:
+        raise RecipeError(f"{ctx.shown}: cannot read the recipe ({e.strerror})") from None
+    try:
+        doc = tomllib.loads(text.decode("utf-8"))
+    except UnicodeDecodeError:
+        raise RecipeError(f"{ctx.shown}: is not UTF-8 text; save the recipe as UTF-8") from None
+    except tomllib.TOMLDecodeError as e:
+        raise RecipeError(f"{ctx.shown}: TOML syntax error: {e}") from None
+    for dotted, value in (overrides or {}).items():
+        _apply_override(ctx, doc, dotted, value)
+    recipe = parse_recipe(doc, file=file)
+    if overrides:
+        recipe = dataclasses.replace(recipe, overrides=tuple(overrides.items()))
+    return recipe
+
+
+def parse_override(text: str) -> tuple[str, str]:
+    """Split ``key.path=value`` (as given to ``--set``)."""
+    key, sep, value = text.partition("=")
+    if not sep or not key.strip():
+        raise RecipeError(f"--set {text!r}: use key.path=value, e.g. --set budget.max=200KB")
+    return key.strip(), value.strip()
+
+
+def _apply_override(ctx: _Ctx, doc: dict[str, Any], dotted: str, value: str) -> None:
+    try:
+        parsed: Any = tomllib.loads(f"v = {value}")["v"]
+    except tomllib.TOMLDecodeError:
+        parsed = value  # a bare word such as gzip or 300KB is taken as a string
+    parts = dotted.split(".")
+    if not all(_IDENT_RE.match(p) or re.match(r"^[A-Za-z0-9_-]+$", p) for p in parts):
+        raise ctx.fail(dotted, "is not a dotted key path; use e.g. budget.max")
+    node = doc
+    for i, p in enumerate(parts[:-1]):
+        nxt = node.setdefault(p, {})
+        if not isinstance(nxt, dict):
+            raise ctx.fail(".".join(parts[: i + 1]), "is not a table; cannot set a key inside it")
+        node = nxt
+    node[parts[-1]] = parsed
+
+
+_TOP_KEYS = ("name", "description", "source", "group", "measures", "normalize", "prune",
+             "budget", "output")
+
+
+def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
+    """Validate a parsed TOML document (see :func:`load_recipe`)."""
+    ctx = _Ctx(file)
+    base = file.resolve().parent
+    ctx.table(doc, "", _TOP_KEYS)
+    name = ctx.string(doc, "", "name", required=True)
+    assert name is not None
+    if not _NAME_RE.match(name):
+        raise ctx.fail("name", f"{name!r} must be letters, digits, '.', '_' or '-' (it names "
+                       "the output file)")
+    description = ctx.string(doc, "", "description", default="") or ""
+
+    if "source" not in doc:
+        raise ctx.fail("source", "is required; add a [source] table with path = ...")
+    src_doc = ctx.table(doc["source"], "source",
+                        ("path", "format", "time", "lat", "lon", "time_zone", "filter"))
+    group_doc = ctx.table(doc.get("group", {}), "group", ("hex", "time", "region", "category"))
+    if not group_doc:
+        raise ctx.fail("group", "is empty; group by at least one of hex, time, region, category")
+
+    # --- group keys --------------------------------------------------------------------------
+    hex_key = _parse_hex(ctx, group_doc["hex"]) if "hex" in group_doc else None
+    time_key = _parse_time(ctx, group_doc["time"]) if "time" in group_doc else None
+    region = None
+    if "region" in group_doc:
+        r = ctx.table(group_doc["region"], "group.region", ("column",))
+        col = ctx.string(r, "group.region", "column", required=True)
+        assert col is not None
+        region = RegionKey(col)
+    categories: tuple[str, ...] = ()
+    if "category" in group_doc:
+        c = ctx.table(group_doc["category"], "group.category", ("column", "columns"))
+        if ("column" in c) == ("columns" in c):
+            raise ctx.fail("group.category", "give exactly one of column = \"...\" or "
+                           "columns = [...]")
+        categories = (ctx.str_list(c["column"], "group.category.column") if "column" in c
+                      else ctx.str_list(c["columns"], "group.category.columns",
+                                        allow_single=False))
+        if not categories:
+            raise ctx.fail("group.category.columns", "is empty; list at least one column")
+
+    source = _parse_source(ctx, src_doc, base, hex_key is not None, time_key is not None)
+
+    # --- measures ----------------------------------------------------------------------------
+    measures = _parse_measures(ctx, doc.get("measures"))
+    reserved = {"time", "hex", *(k for k in ([region.column] if region else [])), *categories}
+    for m in measures:
+        if m.name in reserved:
+            raise ctx.fail(f"measures.{m.name}", "has the same name as a key column; rename "
+                           "the measure")
+    names = {m.name for m in measures}
+
+    axis_names = [a for a, present in (("time", time_key), ("hex", hex_key),
+                                       ("region", region)) if present]
+
+    normalize = (_parse_normalize(ctx, doc["normalize"], base, measures, region, hex_key,
+                                  categories, axis_names)
+                 if "normalize" in doc else None)
+    top, min_count = (_parse_prune(ctx, doc["prune"], measures, categories, axis_names)
+                      if "prune" in doc else (None, None))
+    output = _parse_output(ctx, doc.get("output", {}), base)
+    derived = _derived_names(measures, normalize)
+    for col, _ in output.column_digits:
+        if col not in names and col not in derived:
+            raise ctx.fail(f"output.column_digits.{col}",
+                           f"names no measure or derived column"
+                           f"{did_you_mean(col, [*names, *derived])}")
+
+    ladder_axes = [a for a, present in (("hex", hex_key), ("time", time_key), ("top", top),
+                                        ("digits", True)) if present]
+    budget = (_parse_budget(ctx, doc["budget"], ladder_axes) if "budget" in doc else None)
+
+    canonical = orjson.dumps(doc, option=orjson.OPT_SORT_KEYS, default=str)
+    scan_doc = {"source": doc.get("source"), "group": doc.get("group"),
+                "measures": doc.get("measures"), "base": str(base)}
+    scan_hash = hashlib.sha256(orjson.dumps(scan_doc, option=orjson.OPT_SORT_KEYS,
+                                            default=str)).hexdigest()
+    return Recipe(
+        name=name, file=file, content_hash=hashlib.sha256(canonical).hexdigest(),
+        scan_hash=scan_hash, description=description, source=source, hex=hex_key,
+        time=time_key, region=region, categories=categories, measures=measures,
+        normalize=normalize, top=top, min_count=min_count, budget=budget, output=output,
+        document=doc,
+    )
+
+
+def _levels(ctx: _Ctx, d: Mapping[str, Any], key: str, single: str) -> list[Any]:
+    if ("levels" in d) == (single in d):
+        raise ctx.fail(key, f"give exactly one of levels = [...] (finest first) or {single} = ...")
+    if single in d:
+        return [d[single]]
+    levels = d["levels"]
+    if not isinstance(levels, list):
+        raise ctx.fail(f"{key}.levels", f"must be a list, got {_tname(levels)}")
+    if not levels:
+        raise ctx.fail(f"{key}.levels", "is empty; list at least one level, finest first")
+    return levels
+
+
+def _parse_hex(ctx: _Ctx, doc: Any) -> HexKey:
+    d = ctx.table(doc, "group.hex", ("levels", "resolution"))
+    levels = _levels(ctx, d, "group.hex", "resolution")
+    out = []
+    for i, v in enumerate(levels):
+        key = f"group.hex.levels[{i}]" if "levels" in d else "group.hex.resolution"
+        if isinstance(v, bool) or not isinstance(v, int) or not 0 <= v <= 15:
+            raise ctx.fail(key, f"{_short(v)} is not an H3 resolution; use an integer 0..15")
+        out.append(v)
+    for a, b in zip(out, out[1:]):
+        if b >= a:
+            raise ctx.fail("group.hex.levels", f"must go from finest to coarsest (strictly "
+                           f"decreasing resolutions), but {a} is followed by {b}")
+    return HexKey(tuple(out))
+
+
+def _parse_time(ctx: _Ctx, doc: Any) -> TimeKey:
+    d = ctx.table(doc, "group.time", ("levels", "bin", "zone"))
+    raw = _levels(ctx, d, "group.time", "bin")
+    bins = []
+    for i, v in enumerate(raw):
+        key = f"group.time.levels[{i}]" if "levels" in d else "group.time.bin"
+        try:
+            bins.append(parse_time_bin(v))
+        except ValueError as e:
+            raise ctx.fail(key, str(e)) from None
+    for a, b in zip(bins, bins[1:]):
+        finer_first = (a.minutes or 10**9) < (b.minutes or 10**9) or (
+            a.minutes is None and b.minutes is None and (a.n * (12 if a.unit == "y" else 1))
+            < (b.n * (12 if b.unit == "y" else 1)))
+        if not finer_first:
+            raise ctx.fail("group.time.levels", f"must go from finest to coarsest, but "
+                           f"{a.text} is followed by {b.text}")
+        if not b.nests(a):
+            raise ctx.fail("group.time.levels", f"{b.text} bins are not made of whole "
+                           f"{a.text} bins, so they cannot be rolled up exactly; drop one")
+    zone = ctx.string(d, "group.time", "zone", default="UTC")
+    assert zone is not None
+    _check_zone(ctx, "group.time.zone", zone)
+    return TimeKey(tuple(bins), zone)
+
+
+def _check_zone(ctx: _Ctx, key: str, zone: str) -> None:
+    try:
+        zoneinfo.ZoneInfo(zone)
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+        close = did_you_mean(zone, zoneinfo.available_timezones())
+        raise ctx.fail(key, f"unknown time zone {zone!r}{close}; use an IANA name such as "
+                       "UTC or Europe/Paris") from None
+
+
+def _parse_source(ctx: _Ctx, d: dict[str, Any], base: Path, need_geo: bool,
+                  need_time: bool) -> Source:
+    display = ctx.string(d, "source", "path", required=True)
+    assert display is not None
+    fmt = ctx.string(d, "source", "format")
+    if fmt is not None and fmt not in SOURCE_FORMATS:
+        raise ctx.fail("source.format", f"{fmt!r} is not a source format"
+                       f"{did_you_mean(fmt, SOURCE_FORMATS)}; use one of "
+                       f"{', '.join(SOURCE_FORMATS)}")
+    time = ctx.string(d, "source", "time")
+    lat = ctx.string(d, "source", "lat")
+    lon = ctx.string(d, "source", "lon")
+    if need_time and time is None:
+        raise ctx.fail("source.time", "is required when grouping by time; name the timestamp "
+                       "column")
+    if need_geo and (lat is None or lon is None):
+        missing = "source.lat" if lat is None else "source.lon"
+        raise ctx.fail(missing, "is required when grouping by hex cell; name the coordinate "
+                       "column")
+    zone = ctx.string(d, "source", "time_zone", default="UTC")
+    assert zone is not None
+    _check_zone(ctx, "source.time_zone", zone)
+    filters = _parse_filters(ctx, d.get("filter", []))
+    path = display if Path(display).is_absolute() else str(base / display)
+    return Source(path=path, display=display, format=fmt, time=time, lat=lat, lon=lon,
+                  naive_zone=zone, filters=filters)
+
+
+_FILTER_KEYS = ("column", "in", "not_in", "min", "max", "null")
+_SCALARS = (str, int, float, bool, dt.datetime, dt.date)
+
+
+def _parse_filters(ctx: _Ctx, doc: Any) -> tuple[Filter, ...]:
+    if isinstance(doc, dict):
+        doc = [doc]
+    if not isinstance(doc, list):
+        raise ctx.fail("source.filter", "must be a list of tables such as "
+                       "[{ column = \"kind\", in = [\"hail\"] }]")
+    out: list[Filter] = []
+    for i, f in enumerate(doc):
+        key = f"source.filter[{i}]"
+        f = ctx.table(f, key, _FILTER_KEYS)
+        col = ctx.string(f, key, "column", required=True)
+        assert col is not None
+        ops = [k for k in f if k != "column"]
+        if not ops:
+            raise ctx.fail(key, "has no condition; add one of in, not_in, min, max, null")
+        if "in" in f or "not_in" in f:
+            if len(ops) != 1:
+                raise ctx.fail(key, "combines in/not_in with another condition; write them "
+                               "as separate filters")
+            op = "in" if "in" in f else "not_in"
+            vals = f[op]
+            if not isinstance(vals, list) or not vals:
+                raise ctx.fail(f"{key}.{op}", "must be a non-empty list of values")
+            kinds = {type(v) for v in vals}
+            if not all(isinstance(v, _SCALARS) for v in vals) or len(
+                    {k for k in kinds if k not in (int, float)} | ({int} if kinds & {int, float}
+                                                                     else set())) > 1:
+                raise ctx.fail(f"{key}.{op}", "must list values of one type (strings, numbers "
+                               "or times)")
+            out.append(Filter(col, op, tuple(vals), key=key))  # type: ignore[arg-type]
+        elif "null" in f:
+            if len(ops) != 1:
+                raise ctx.fail(key, "combines null with another condition; write them as "
+                               "separate filters")
+            if not isinstance(f["null"], bool):
+                raise ctx.fail(f"{key}.null", "must be true (keep nulls) or false (drop nulls)")
+            out.append(Filter(col, "null" if f["null"] else "not_null", key=key))
+        else:
+            lo, hi = f.get("min"), f.get("max")
+            for k, v in (("min", lo), ("max", hi)):
+                if v is not None and (isinstance(v, bool) or not isinstance(
+                        v, (int, float, dt.datetime, dt.date))):
+                    raise ctx.fail(f"{key}.{k}", f"must be a number or a TOML date-time, got "
+                                   f"{_tname(v)} {_short(v)}")
+            if lo is not None and hi is not None:
+                try:
+                    bad = lo > hi
+                except TypeError:
+                    raise ctx.fail(key, "min and max must be of the same kind") from None
+                if bad:
+                    raise ctx.fail(key, f"min {lo} is above max {hi}; swap them")
+            out.append(Filter(col, "range", lo=lo, hi=hi, key=key))
+    return tuple(out)
+
+
+_MEASURE_KINDS: tuple[MeasureKind, ...] = ("count", "sum", "min", "max", "mean", "distinct")
+
+
+def _parse_measures(ctx: _Ctx, doc: Any) -> tuple[MeasureSpec, ...]:
+    if doc is None:
+        return (MeasureSpec("count", "count", None),)
+    if not isinstance(doc, dict):
+        raise ctx.fail("measures", f"must be a table, got {_tname(doc)}")
+    if not doc:
+        raise ctx.fail("measures", "is empty; declare at least one, e.g. events = \"count\"")
+    out = []
+    for name, spec in doc.items():
+        key = f"measures.{name}"
+        if not _IDENT_RE.match(name) or name.startswith("__"):
+            raise ctx.fail(key, "a measure name must be letters, digits and '_' and start with "
+                           "a letter")
+        if spec == "count":
+            out.append(MeasureSpec(name, "count", None))
+            continue
+        if isinstance(spec, str):
+            raise ctx.fail(key, f"{spec!r} is not a measure{did_you_mean(spec, _MEASURE_KINDS)};"
+                           " use \"count\" or a table such as { sum = \"column\" }")
+        if not isinstance(spec, dict) or len(spec) != 1:
+            raise ctx.fail(key, "must be \"count\" or a table with one key, e.g. "
+                           "{ sum = \"column\" }")
+        ((kind, col),) = spec.items()
+        if kind not in _MEASURE_KINDS or kind == "count":
+            raise ctx.fail(f"{key}.{kind}", f"unknown measure kind"
+                           f"{did_you_mean(kind, _MEASURE_KINDS)}; use one of sum, min, max, "
+                           "mean, distinct (or \"count\")")
+        if not isinstance(col, str) or not col:
+            raise ctx.fail(f"{key}.{kind}", "must name a column")
+        out.append(MeasureSpec(name, kind, col))
+    return tuple(out)
+
+
+def _derived_names(measures: Sequence[MeasureSpec], n: Normalize | None) -> list[str]:
+    if n is None:
+        return []
+    names = [f"{m}_per_{n.per}" for m in n.rate_measures]
+    if n.share:
+        names += [f"{m}_share" for m in n.share.measures]
+    if n.location_quotient:
+        names.append(f"{n.location_quotient}_lq")
+    return names
+
+
+def _parse_normalize(ctx: _Ctx, doc: Any, base: Path, measures: Sequence[MeasureSpec],
+                     region: RegionKey | None, hex_key: HexKey | None,
+                     categories: Sequence[str], axis_names: Sequence[str]) -> Normalize:
+    d = ctx.table(doc, "normalize", ("denominators", "per", "measures", "share",
+                                     "location_quotient"))
+    names = [m.name for m in measures]
+    additive = {m.name for m in measures if m.kind in ("count", "sum")}
+
+    def measure_ref(v: Any, key: str) -> str:
+        if not isinstance(v, str) or v not in names:
+            raise ctx.fail(key, f"{_short(v)} is not a declared measure"
+                           f"{did_you_mean(str(v), names)}")
+        if v not in additive:
+            raise ctx.fail(key, f"measure {v!r} is not a count or a sum; only additive "
+                           "measures can be normalised")
+        return v
+
+    dens = None
+    if "denominators" in d:
+        dd = ctx.table(d["denominators"], "normalize.denominators",
+                       ("path", "key", "value", "on"))
+        p = ctx.string(dd, "normalize.denominators", "path", required=True)
+        k = ctx.string(dd, "normalize.denominators", "key", required=True)
+        v = ctx.string(dd, "normalize.denominators", "value", required=True)
+        on = ctx.string(dd, "normalize.denominators", "on",
+                        default="region" if region else "hex")
+        assert p and k and v and on
+        if on not in ("region", "hex"):
+            raise ctx.fail("normalize.denominators.on", f"{on!r} must be region or hex")
+        if on == "region" and region is None or on == "hex" and hex_key is None:
+            raise ctx.fail("normalize.denominators.on", f"joins on {on}, but the recipe does "
+                           f"not group by {on}; add group.{on} or change on")
+        dpath = Path(p) if Path(p).is_absolute() else base / p
+        dens = Denominators(dpath, p, k, v, on)  # type: ignore[arg-type]
+    rate_measures: tuple[str, ...] = ()
+    if "measures" in d:
+        rate_measures = tuple(measure_ref(v, f"normalize.measures[{i}]")
+                              for i, v in enumerate(ctx.str_list(d["measures"],
+                                                                 "normalize.measures")))
+        if dens is None:
+            raise ctx.fail("normalize.measures", "rates need denominators; add "
+                           "normalize.denominators = { path = ..., key = ..., value = ... }")
+    per = ctx.integer(d.get("per", 100000), "normalize.per", lo=1)
+    if "per" in d and not rate_measures:
+        raise ctx.fail("normalize.per", "is set but normalize.measures lists no measure to "
+                       "divide; add measures = [\"...\"]")
+    share = None
+    if "share" in d:
+        sd = ctx.table(d["share"], "normalize.share", ("measures", "within"))
+        if "measures" not in sd:
+            raise ctx.fail("normalize.share.measures", "is required")
+        sm = tuple(measure_ref(v, f"normalize.share.measures[{i}]")
+                   for i, v in enumerate(ctx.str_list(sd["measures"], "normalize.share.measures")))
+        default_within = tuple(axis_names) if categories else tuple(
+            a for a in axis_names if a == "time")
+        within = _within(ctx, sd.get("within", list(default_within)), "normalize.share.within",
+                         axis_names)
+        share = Share(sm, within)
+    lq = None
+    if "location_quotient" in d:
+        ld = ctx.table(d["location_quotient"], "normalize.location_quotient", ("measure",))
+        if "measure" not in ld:
+            raise ctx.fail("normalize.location_quotient.measure", "is required")
+        lq = measure_ref(ld["measure"], "normalize.location_quotient.measure")
+        if not categories or not (region or hex_key):
+            raise ctx.fail("normalize.location_quotient", "needs a category and a region or "
+                           "hex key to compare; add group.category and group.region")
+    if dens is not None and not rate_measures:
+        raise ctx.fail("normalize.denominators", "is given but no measure uses it; add "
+                       "normalize.measures = [\"...\"]")
+    if not (rate_measures or share or lq):
+        raise ctx.fail("normalize", "declares nothing to compute; add measures (rates), share "
+                       "or location_quotient")
+    return Normalize(dens, per, rate_measures, share, lq)
+
+
+def _within(ctx: _Ctx, v: Any, key: str, axis_names: Sequence[str]) -> tuple[str, ...]:
+    items = ctx.str_list(v, key) if v != [] else ()
+    for x in items:
+        if x not in axis_names:
+            raise ctx.fail(key, f"{x!r} is not a grouping axis of this recipe"
+                           f"{did_you_mean(x, axis_names)}; use some of "
+                           f"{', '.join(axis_names) or '(none)'}")
+    return items
+
+
+def _parse_prune(ctx: _Ctx, doc: Any, measures: Sequence[MeasureSpec],
+                 categories: Sequence[str], axis_names: Sequence[str],
+                 ) -> tuple[TopK | None, MinCount | None]:
+    d = ctx.table(doc, "prune", ("top", "min_count"))
+    names = [m.name for m in measures]
+    top = None
+    if "top" in d:
+        t = ctx.table(d["top"], "prune.top", ("k", "by", "within", "rest"))
+        if not categories:
+            raise ctx.fail("prune.top", "needs a category to rank; add group.category")
+        if "k" not in t:
+            raise ctx.fail("prune.top.k", "is required; e.g. k = 10 or k = [20, 10, 5]")
+        ks_raw = t["k"] if isinstance(t["k"], list) else [t["k"]]
+        if not ks_raw:
+            raise ctx.fail("prune.top.k", "is empty; list at least one k, largest first")
+        ks = tuple(ctx.integer(v, "prune.top.k", lo=1) for v in ks_raw)
+        for a, b in zip(ks, ks[1:]):
+            if b >= a:
+                raise ctx.fail("prune.top.k", f"must go from most detail to least (strictly "
+                               f"decreasing), but {a} is followed by {b}")
+        by = ctx.string(t, "prune.top", "by", default=names[0])
+        assert by is not None
+        if by not in names:
+            raise ctx.fail("prune.top.by", f"{by!r} is not a declared measure"
+                           f"{did_you_mean(by, names)}")
+        within = _within(ctx, t.get("within", list(axis_names)), "prune.top.within", axis_names)
+        rest = ctx.string(t, "prune.top", "rest", default="other")
+        assert rest is not None
+        top = TopK(ks, by, within, rest)
+    mc = None
+    if "min_count" in d:
+        v = d["min_count"]
+        if isinstance(v, dict):
+            md = ctx.table(v, "prune.min_count", ("min", "by", "fold"))
+            if "min" not in md:
+                raise ctx.fail("prune.min_count.min", "is required")
+            thr = ctx.integer(md["min"], "prune.min_count.min", lo=1)
+            by_m = ctx.string(md, "prune.min_count", "by")
+            if by_m is not None:
+                if by_m not in names:
+                    raise ctx.fail("prune.min_count.by", f"{by_m!r} is not a declared measure"
+                                   f"{did_you_mean(by_m, names)}")
+                kind = next(m.kind for m in measures if m.name == by_m)
+                if kind not in ("count", "distinct"):
+                    raise ctx.fail("prune.min_count.by", f"measure {by_m!r} is a {kind}; use "
+                                   "a count or a distinct measure (e.g. distinct observers)")
+            fold = md.get("fold", False)
+            if not isinstance(fold, bool):
+                raise ctx.fail("prune.min_count.fold", "must be true or false")
+            if fold and top is None:
+                raise ctx.fail("prune.min_count.fold", "folds into the remainder row of "
+                               "prune.top; add prune.top or set fold = false")
+            mc = MinCount(thr, by_m, fold)
+        else:
+            mc = MinCount(ctx.integer(v, "prune.min_count", lo=1), None, False)
+    return top, mc
+
+
+def _parse_budget(ctx: _Ctx, doc: Any, axes: Sequence[str]) -> Budget:
+    d = ctx.table(doc, "budget", ("max", "on", "order"))
+    if "max" not in d:
+        raise ctx.fail("budget.max", "is required; e.g. max = \"300KB\"")
+    try:
+        mx = parse_size(d["max"])
+    except ValueError as e:
+        raise ctx.fail("budget.max", str(e)) from None
+    on = ctx.string(d, "budget", "on", default="gzip")
+    assert on is not None
+    if on not in MEASURES:
+        raise ctx.fail("budget.on", f"{on!r} is not a measure{did_you_mean(on, MEASURES)}; "
+                       "use raw, gzip or brotli")
+    default_order = [a for a in ("top", "time", "hex", "digits") if a in axes]
+    order = ctx.str_list(d.get("order", default_order), "budget.order")
+    for a in order:
+        if a not in axes:
+            raise ctx.fail("budget.order", f"{a!r} is not a ladder axis of this recipe"
+                           f"{did_you_mean(a, axes)}; use some of {', '.join(axes)}")
+    # Axes left out of the order give up detail last, in the default sequence.
+    order = tuple(order) + tuple(a for a in default_order if a not in order)
+    return Budget(mx, on, order)  # type: ignore[arg-type]
+
+
+def _parse_output(ctx: _Ctx, doc: Any, base: Path) -> Output:
+    d = ctx.table(doc, "output", ("path", "layout", "digits", "column_digits", "inline"))
+    p = ctx.string(d, "output", "path")
+    path = None if p is None else (Path(p) if Path(p).is_absolute() else base / p)
+    if path is not None and path.suffix == "":
+        raise ctx.fail("output.path", f"{p!r} has no file extension; name the payload file, "
+                       "e.g. out/name.json")
+    layout = ctx.string(d, "output", "layout", default="columns")
+    assert layout is not None
+    if layout not in LAYOUTS:
+        raise ctx.fail("output.layout", f"{layout!r} is not a layout"
+                       f"{did_you_mean(layout, LAYOUTS)}; use one of {', '.join(LAYOUTS)}")
+    digits_raw = d.get("digits", 4)
+    dl = digits_raw if isinstance(digits_raw, list) else [digits_raw]
+    if not dl:
+        raise ctx.fail("output.digits", "is empty; give a number of decimals or a list, most "
+                       "first")
+    digits = tuple(ctx.integer(v, "output.digits", lo=0, hi=15) for v in dl)
+    for a, b in zip(digits, digits[1:]):
+        if b >= a:
+            raise ctx.fail("output.digits", f"must go from most decimals to fewest, but {a} "
+                           f"is followed by {b}")
+    cd = d.get("column_digits", {})
+    if not isinstance(cd, dict):
+        raise ctx.fail("output.column_digits", "must be a table of column = decimals")
+    column_digits = tuple(sorted((k, ctx.integer(v, f"output.column_digits.{k}", lo=0, hi=15))
+                                 for k, v in cd.items()))
+    inline = d.get("inline", False)
+    if not isinstance(inline, bool):
+        raise ctx.fail("output.inline", "must be true or false")
+    if inline and layout == "csv":
+        raise ctx.fail("output.inline", "applies to JSON layouts only")
+    return Output(path, layout, digits, column_digits, inline)  # type: ignore[arg-type]

@@ -1,0 +1,127 @@
+"""Human- and machine-readable summaries of runs, ladders and checks.
+
+The command line prints what these functions return; they hold no pipeline logic.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+import orjson
+
+from reduce.budget import Candidate, describe_level
+from reduce.pipeline import FitResult, RunResult
+from reduce.sizes import format_size
+
+
+def _num(n: int | None) -> str:
+    return "-" if n is None else f"{n:,}"
+
+
+def run_line(res: RunResult) -> str:
+    f = res.fit
+    c = f.chosen
+    assert c is not None and f.level is not None
+    parts = [f"{f.recipe.name}: {c.rows:,} rows", describe_level(f.level),
+             f"raw {format_size(c.raw)}", f"gzip {format_size(c.gzip or 0)}",
+             f"brotli {format_size(c.brotli or 0)}"]
+    if f.budget:
+        b = f.budget
+        parts.append(f"budget {format_size(b.max)} {b.on}"
+                     + (" (over: written anyway)" if res.over_budget else ""))
+    acc = f.accounting
+    if acc.get("invalid_rows"):
+        parts.append(f"{acc['invalid_rows']:,} invalid rows")
+    if acc.get("suppressed_rows"):
+        parts.append(f"{acc['suppressed_rows']:,} suppressed rows")
+    line = ", ".join(parts)
+    return f"{line} -> {res.path}"
+
+
+def run_notes(res: RunResult) -> list[str]:
+    """Extra lines worth a user's attention (unmatched denominator keys)."""
+    f = res.fit
+    out = []
+    if f.rows is not None and f.recipe.normalize and f.recipe.normalize.rate_measures:
+        rep = f.rows.report
+        if rep.rows_without_denominator:
+            out.append(f"  {rep.rows_without_denominator:,} rows have no usable denominator "
+                       "(rate left empty)")
+        if rep.data_only_keys:
+            out.append(f"  keys in the data but not in the denominators: "
+                       f"{_few(rep.data_only_keys)}")
+        if rep.denominator_only_keys:
+            out.append(f"  keys in the denominators but not in the data: "
+                       f"{_few(rep.denominator_only_keys)}")
+    return out
+
+
+def _few(keys: Sequence[str], n: int = 8) -> str:
+    shown = ", ".join(keys[:n])
+    return shown + (f" (+{len(keys) - n} more)" if len(keys) > n else "")
+
+
+def run_json(res: RunResult) -> dict[str, Any]:
+    f = res.fit
+    c = f.chosen
+    assert c is not None
+    return {"recipe": f.recipe.name, "path": str(res.path), "level": f.level, "rows": c.rows,
+            "elements": c.elements, "bytes": {"raw": c.raw, "gzip": c.gzip,
+                                              "brotli": c.brotli},
+            "over_budget": res.over_budget, "accounting": f.accounting,
+            "manifest": res.manifest}
+
+
+def ladder_table(result: FitResult) -> str:
+    """One row per evaluated candidate; the chosen one marked with '*'."""
+    axes = list(result.recipe.ladder())
+    head = ["", *axes, "rows", "elements", "raw", "gzip", "brotli", "fits"]
+    rows: list[list[str]] = []
+    cands: list[Candidate] = sorted(
+        result.candidates,
+        key=lambda c: [_rank(result, a, c.level[a]) for a in axes])
+    for c in cands:
+        rows.append(["*" if c.chosen else "", *[str(c.level[a]) for a in axes], _num(c.rows),
+                     _num(c.elements), _num(c.raw), _num(c.gzip), _num(c.brotli),
+                     "-" if c.fits is None else ("yes" if c.fits else "no")])
+    widths = [max(len(r[i]) for r in [head, *rows]) for i in range(len(head))]
+    right = set(range(len(axes) + 1, len(head)))
+
+    def fmt(r: list[str]) -> str:
+        return "  ".join(v.rjust(w) if i in right else v.ljust(w)
+                         for i, (v, w) in enumerate(zip(r, widths))).rstrip()
+
+    lines = [fmt(head), fmt(["-" * w for w in widths]), *map(fmt, rows)]
+    b = result.budget
+    if b:
+        lines.append(f"budget: {format_size(b.max)} ({b.max:,} bytes) {b.on}; order: "
+                     f"{', '.join(b.order)} (first gives up detail first)")
+    if result.chosen:
+        lines.append(f"chosen: {describe_level(result.chosen.level)}")
+    return "\n".join(lines)
+
+
+def _rank(result: FitResult, axis: str, value: Any) -> int:
+    levels = list(result.recipe.ladder()[axis])
+    return levels.index(value) if value in levels else len(levels)
+
+
+def ladder_json(result: FitResult) -> bytes:
+    doc = {
+        "recipe": result.recipe.name,
+        "budget": ({"max": result.budget.max, "on": result.budget.on,
+                    "order": list(result.budget.order)} if result.budget else None),
+        "chosen": result.level,
+        "candidates": [{"level": c.level, "rows": c.rows, "elements": c.elements,
+                        "raw": c.raw, "gzip": c.gzip, "brotli": c.brotli, "fits": c.fits,
+                        "chosen": c.chosen} for c in result.candidates],
+        "partial_from_cache": result.partial_from_cache,
+    }
+    return orjson.dumps(doc, option=orjson.OPT_INDENT_2)
+
+
+def check_line(recipe_file: Path, name: str, files: int, columns: Sequence[str]) -> str:
+    return (f"{recipe_file}: ok ({name}: {files} source file{'s' if files != 1 else ''}, "
+            f"columns {', '.join(columns)})")

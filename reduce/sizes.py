@@ -1,0 +1,130 @@
+"""Byte sizes: parsing budget strings and measuring payload bytes.
+
+One module owns both so the optimiser, the manifest and the audit measure bytes the same way:
+raw length, gzip at level 9 with a zero timestamp (as a static host pre-compresses, RFC 1952)
+and brotli at quality 11 (RFC 7932).
+"""
+
+from __future__ import annotations
+
+import gzip
+import re
+import zlib
+from dataclasses import dataclass
+from typing import Literal
+
+import brotli
+
+Measure = Literal["raw", "gzip", "brotli"]
+MEASURES: tuple[Measure, ...] = ("raw", "gzip", "brotli")
+
+# Decimal units are SI (1 KB = 1000 bytes); binary units are IEC 80000-13 (1 KiB = 1024).
+_UNITS = {
+    "": 1,
+    "B": 1,
+    "KB": 1000,
+    "MB": 1000**2,
+    "GB": 1000**3,
+    "KIB": 1024,
+    "MIB": 1024**2,
+    "GIB": 1024**3,
+}
+_SIZE_RE = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*([A-Za-z]*)\s*$")
+
+
+def parse_size(value: object) -> int:
+    """Parse ``300KB``, ``1.5MB``, ``200KiB`` or a plain integer into a positive byte count.
+
+    Raises ``ValueError`` with a message naming the accepted forms.
+    """
+    if isinstance(value, bool):
+        raise ValueError(f"{value!r} is not a size; use e.g. 300KB, 1.5MB, 200KiB or 250000")
+    if isinstance(value, int):
+        n = value
+    elif isinstance(value, str):
+        m = _SIZE_RE.match(value)
+        unit = m.group(2).upper() if m else None
+        if not m or unit not in _UNITS:
+            raise ValueError(
+                f"{value!r} is not a size; use e.g. 300KB, 1.5MB, 200KiB or 250000"
+            )
+        n = round(float(m.group(1)) * _UNITS[unit])
+    else:
+        raise ValueError(f"{value!r} is not a size; use e.g. 300KB, 1.5MB, 200KiB or 250000")
+    if n <= 0:
+        raise ValueError(f"{value!r} is not a positive size; a budget must be above zero bytes")
+    return n
+
+
+def format_size(n: int) -> str:
+    """Human-readable decimal size: ``123 B``, ``45.6 KB``, ``1.23 MB``."""
+    if n < 1000:
+        return f"{n} B"
+    if n < 1000**2:
+        return f"{n / 1000:.1f} KB"
+    return f"{n / 1000**2:.2f} MB"
+
+
+def gzip_bytes(data: bytes) -> bytes:
+    return gzip.compress(data, compresslevel=9, mtime=0)
+
+
+def brotli_bytes(data: bytes) -> bytes:
+    return bytes(brotli.compress(data, quality=11))
+
+
+def size_on(data: bytes, on: Measure) -> int:
+    """Exact size of ``data`` on one measure."""
+    if on == "raw":
+        return len(data)
+    if on == "gzip":
+        return len(gzip_bytes(data))
+    return len(brotli_bytes(data))
+
+
+def fits_on(data: bytes, on: Measure, limit: int) -> tuple[bool, int | None]:
+    """Whether ``data`` measures at most ``limit`` bytes on ``on``.
+
+    Returns ``(fits, exact_size)``. Compression streams in chunks and stops as soon as the
+    output already exceeds ``limit`` (a cheap bound: output only grows), in which case the
+    exact size is not known and ``None`` is returned with ``False``.
+    """
+    if on == "raw":
+        return len(data) <= limit, len(data)
+    chunk = 1 << 16
+    if on == "gzip":
+        # Same stream as gzip.compress(level 9, mtime 0): 10-byte header, deflate, 8-byte trailer.
+        comp = zlib.compressobj(9, zlib.DEFLATED, -zlib.MAX_WBITS, 9)
+        out = 10 + 8
+        for i in range(0, len(data), chunk):
+            out += len(comp.compress(data[i : i + chunk]))
+            if out > limit:
+                return False, None
+        out += len(comp.flush())
+        return out <= limit, out
+    bro = brotli.Compressor(quality=11)
+    out = 0
+    for i in range(0, len(data), chunk):
+        out += len(bro.process(data[i : i + chunk]))
+        if out > limit:
+            return False, None
+    out += len(bro.finish())
+    return out <= limit, out
+
+
+@dataclass(frozen=True, slots=True)
+class Sizes:
+    raw: int
+    gzip: int
+    brotli: int
+
+    def on(self, measure: Measure) -> int:
+        return int(getattr(self, measure))
+
+    def as_dict(self) -> dict[str, int]:
+        return {"raw": self.raw, "gzip": self.gzip, "brotli": self.brotli}
+
+
+def measure_all(data: bytes) -> Sizes:
+    """Raw, gzip (level 9) and brotli (quality 11) sizes of ``data``."""
+    return Sizes(raw=len(data), gzip=len(gzip_bytes(data)), brotli=len(brotli_bytes(data)))

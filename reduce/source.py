@@ -1,0 +1,300 @@
+"""Sources: find the input files, check their schema against the recipe, open them lazily.
+
+This module owns everything about the event table before grouping: resolving the recipe's
+path (one file, a glob, a folder, hive-partitioned folders), the file format (parquet, CSV,
+NDJSON), the schema check of every column role (``reduce check`` runs only this), the
+structured filters pushed into the scan, the input row count (parquet: from metadata), and
+the source fingerprint used by manifests and the partial cache.
+
+Only the columns the recipe needs are read. Nothing from a recipe is evaluated as code:
+filters are literal values compared with a column.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import glob as _glob
+import hashlib
+import os
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import polars as pl
+
+from reduce.errors import SourceError, did_you_mean
+from reduce.recipe import Filter, Recipe
+
+_EXT = {".parquet": "parquet", ".pq": "parquet", ".csv": "csv", ".ndjson": "ndjson",
+        ".jsonl": "ndjson"}
+
+
+@dataclass(frozen=True, slots=True)
+class OpenSource:
+    """A source ready to scan: the lazy frame (filters pushed in) plus facts about it."""
+
+    files: tuple[Path, ...]
+    format: str
+    schema: pl.Schema
+    fingerprint: str
+    frame: pl.LazyFrame  # needed columns only, recipe filters applied
+
+    def count_rows(self) -> int:
+        """Rows before filters (parquet: read from file metadata, no data scan)."""
+        try:
+            return int(_scan(self.files, self.format, None).select(pl.len()).collect().item())
+        except pl.exceptions.PolarsError as e:
+            raise SourceError(f"{_files_label(self.files)}: cannot read ({_first_line(e)})") \
+                from None
+
+
+def _first_line(e: BaseException) -> str:
+    text = str(e).strip().splitlines()
+    return text[0] if text else type(e).__name__
+
+
+def _files_label(files: tuple[Path, ...] | list[Path]) -> str:
+    if len(files) == 1:
+        return _shown(files[0])
+    return f"{_shown(files[0])} (+{len(files) - 1} more files)"
+
+
+def _shown(p: Path) -> str:
+    try:
+        return str(p.resolve().relative_to(Path.cwd().resolve()))
+    except ValueError:
+        return str(p)
+
+
+def resolve_files(pattern: str, display: str, fmt: str | None) -> tuple[list[Path], str]:
+    """Expand the recipe's source path into a sorted list of files and their format."""
+    where = f"source.path {display!r}"
+    p = Path(pattern)
+    if any(ch in pattern for ch in "*?["):
+        files = sorted(Path(f) for f in _glob.glob(pattern, recursive=True) if Path(f).is_file())
+        if not files:
+            raise SourceError(f"{where}: the pattern matches no file; check the path and the "
+                              "pattern")
+    elif p.is_dir():
+        files = sorted(f for f in p.rglob("*") if f.is_file() and f.suffix.lower() in _EXT
+                       and not any(part.startswith((".", "_")) for part in
+                                   f.relative_to(p).parts))
+        if not files:
+            raise SourceError(f"{where}: the folder holds no .parquet, .csv or .ndjson file")
+    elif p.is_file():
+        files = [p]
+    else:
+        raise SourceError(f"{where}: no such file or folder ({_shown(p)}); check the path, "
+                          "which is relative to the recipe file")
+    formats = {_EXT.get(f.suffix.lower()) for f in files}
+    if fmt is None:
+        if None in formats or len(formats) != 1:
+            raise SourceError(f"{where}: cannot tell the file format from the file names; set "
+                              "source.format to parquet, csv or ndjson")
+        fmt = formats.pop()
+        assert fmt is not None
+    return files, fmt
+
+
+def fingerprint(files: list[Path] | tuple[Path, ...]) -> str:
+    """A digest of every input file's name, size and modification time (order-insensitive)."""
+    h = hashlib.sha256()
+    for f in sorted(files, key=lambda x: str(x.resolve())):
+        st = f.stat()
+        h.update(f"{f.resolve()}\0{st.st_size}\0{st.st_mtime_ns}\n".encode())
+    return h.hexdigest()[:32]
+
+
+def _hive(files: list[Path] | tuple[Path, ...]) -> bool:
+    return len(files) > 1 and any("=" in part for f in files for part in f.parent.parts[-3:])
+
+
+def _scan(files: list[Path] | tuple[Path, ...], fmt: str,
+          columns: list[str] | None) -> pl.LazyFrame:
+    srcs = [str(f) for f in files]
+    if fmt == "parquet":
+        lf = pl.scan_parquet(srcs, hive_partitioning=_hive(files))
+    elif fmt == "csv":
+        lf = pl.scan_csv(srcs, try_parse_dates=True, infer_schema_length=10000)
+    else:
+        lf = pl.scan_ndjson(srcs, infer_schema_length=10000)
+    return lf if columns is None else lf.select(columns)
+
+
+def _schema(files: list[Path], fmt: str, display: str) -> pl.Schema:
+    """The common schema; every parquet file must agree (checked from metadata)."""
+    try:
+        if fmt == "parquet":
+            first = pl.read_parquet_schema(files[0])
+            for f in files[1:]:
+                other = pl.read_parquet_schema(f)
+                if other != first:
+                    diff = sorted(set(first.items()) ^ set(other.items()), key=str)
+                    col = diff[0][0] if diff else "?"
+                    raise SourceError(
+                        f"{_shown(f)}: its schema differs from {_shown(files[0])} at column "
+                        f"{col!r} ({first.get(col)} vs {other.get(col)}); make every file of "
+                        f"source.path {display!r} share one schema")
+            return pl.Schema(_scan(files, fmt, None).collect_schema())
+        return pl.Schema(_scan(files, fmt, None).collect_schema())
+    except SourceError:
+        raise
+    except (pl.exceptions.PolarsError, OSError) as e:
+        bad = files[0]
+        if fmt == "parquet":
+            for f in files:
+                try:
+                    pl.read_parquet_schema(f)
+                except Exception:
+                    bad = f
+                    break
+        raise SourceError(f"{_shown(bad)}: cannot read as {fmt} ({_first_line(e)}); check that "
+                          "the file is complete and of that format") from None
+
+
+def _is_numeric(dtype: pl.DataType) -> bool:
+    return dtype.is_numeric()
+
+
+def _is_time(dtype: pl.DataType) -> bool:
+    return isinstance(dtype, (pl.Datetime, pl.Date)) or dtype == pl.String
+
+
+def _is_key(dtype: pl.DataType) -> bool:
+    return dtype == pl.String or isinstance(dtype, (pl.Categorical, pl.Enum)) or \
+        dtype.is_integer() or dtype == pl.Boolean
+
+
+def needed_columns(recipe: Recipe) -> list[str]:
+    src = recipe.source
+    cols: list[str] = []
+    for c in (src.time if recipe.time else None, src.lat if recipe.hex else None,
+              src.lon if recipe.hex else None,
+              recipe.region.column if recipe.region else None, *recipe.categories,
+              *(m.column for m in recipe.measures), *(f.column for f in src.filters)):
+        if c is not None and c not in cols:
+            cols.append(c)
+    return cols
+
+
+def check_schema(recipe: Recipe, schema: pl.Schema, label: str) -> None:
+    """Every column the recipe names exists and its dtype fits its role."""
+    src = recipe.source
+    names = list(schema.names())
+
+    def need(col: str, key: str) -> pl.DataType:
+        if col not in schema:
+            raise SourceError(f"{label}: column {col!r} (from {recipe.file.name}: {key}) is not "
+                              f"in the source{did_you_mean(col, names)}; columns are: "
+                              f"{', '.join(names[:12])}{' ...' if len(names) > 12 else ''}")
+        return schema[col]
+
+    def wrong(col: str, key: str, dtype: pl.DataType, want: str) -> SourceError:
+        return SourceError(f"{label}: column {col!r} (from {recipe.file.name}: {key}) is "
+                           f"{dtype}, but {key} needs {want}; convert the column or pick "
+                           "another")
+
+    if recipe.time and src.time:
+        d = need(src.time, "source.time")
+        if not _is_time(d):
+            raise wrong(src.time, "source.time", d, "a datetime, date or ISO 8601 text")
+    if recipe.hex:
+        for col, key in ((src.lat, "source.lat"), (src.lon, "source.lon")):
+            assert col is not None
+            d = need(col, key)
+            if not _is_numeric(d):
+                raise wrong(col, key, d, "numbers (decimal degrees)")
+    if recipe.region:
+        d = need(recipe.region.column, "group.region.column")
+        if not _is_key(d):
+            raise wrong(recipe.region.column, "group.region.column", d, "text or integers")
+    for c in recipe.categories:
+        d = need(c, "group.category")
+        if not _is_key(d):
+            raise wrong(c, "group.category", d, "text, integers or booleans")
+    for m in recipe.measures:
+        if m.column is None:
+            continue
+        key = f"measures.{m.name}"
+        d = need(m.column, key)
+        if m.kind in ("sum", "min", "max", "mean") and not (_is_numeric(d) or d == pl.Boolean):
+            raise wrong(m.column, key, d, "numbers")
+        if m.kind == "distinct" and d.is_nested():
+            raise wrong(m.column, key, d, "plain values (not lists or structs)")
+    for f in src.filters:
+        d = need(f.column, f.key + ".column")
+        _filter_expr(f, d, src.naive_zone, label)  # type-checks the literal values
+
+
+def _coerce_time(v: Any, dtype: pl.DataType, zone: str) -> Any:
+    if isinstance(v, dt.datetime) or isinstance(v, dt.date):
+        if isinstance(dtype, pl.Date):
+            return v.date() if isinstance(v, dt.datetime) else v
+        if not isinstance(v, dt.datetime):
+            v = dt.datetime(v.year, v.month, v.day)
+        import zoneinfo
+
+        col_zone = getattr(dtype, "time_zone", None)
+        if col_zone and v.tzinfo is None:
+            v = v.replace(tzinfo=zoneinfo.ZoneInfo(zone))
+        elif not col_zone and v.tzinfo is not None:
+            v = v.astimezone(zoneinfo.ZoneInfo(zone)).replace(tzinfo=None)
+        return v
+    return v
+
+
+def _filter_expr(f: Filter, dtype: pl.DataType, zone: str, label: str) -> pl.Expr:
+    col = pl.col(f.column)
+    is_time_col = isinstance(dtype, (pl.Datetime, pl.Date))
+
+    def check(v: Any, key: str) -> Any:
+        ok = (
+            (isinstance(v, str) and (dtype == pl.String or isinstance(dtype, (pl.Categorical,
+                                                                               pl.Enum))))
+            or (isinstance(v, bool) and dtype == pl.Boolean)
+            or (isinstance(v, (int, float)) and not isinstance(v, bool) and dtype.is_numeric())
+            or (isinstance(v, (dt.datetime, dt.date)) and is_time_col)
+        )
+        if not ok:
+            raise SourceError(f"{label}: {key}: value {v!r} cannot be compared with column "
+                              f"{f.column!r} of type {dtype}; use a value of the column's type")
+        return _coerce_time(v, dtype, zone) if is_time_col else v
+
+    if f.op in ("in", "not_in"):
+        vals = [check(v, f"{f.key}.{f.op}") for v in f.values]
+        c = col.cast(pl.String) if isinstance(dtype, (pl.Categorical, pl.Enum)) else col
+        e = c.is_in(vals)
+        return e if f.op == "in" else ~e
+    if f.op == "null":
+        return col.is_null()
+    if f.op == "not_null":
+        return col.is_not_null()
+    conds = []
+    if f.lo is not None:
+        conds.append(col >= check(f.lo, f"{f.key}.min"))
+    if f.hi is not None:
+        conds.append(col <= check(f.hi, f"{f.key}.max"))
+    e = conds[0]
+    for c2 in conds[1:]:
+        e = e & c2
+    return e
+
+
+def open_source(recipe: Recipe) -> OpenSource:
+    """Resolve, schema-check and lazily open the recipe's source (no data is read)."""
+    src = recipe.source
+    files, fmt = resolve_files(src.path, src.display, src.format)
+    label = _files_label(files)
+    schema = _schema(files, fmt, src.display)
+    check_schema(recipe, schema, label)
+    cols = needed_columns(recipe)
+    lf = _scan(files, fmt, cols)
+    for f in src.filters:
+        # in/not_in and ranges keep rows where the test is true; nulls in the column fail it.
+        lf = lf.filter(_filter_expr(f, schema[f.column], src.naive_zone, label).fill_null(False))
+    return OpenSource(files=tuple(files), format=fmt, schema=schema,
+                      fingerprint=fingerprint(files), frame=lf)
+
+
+def source_size(files: tuple[Path, ...]) -> int:
+    return sum(os.path.getsize(f) for f in files)
