@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import csv
 import io
+import itertools
 import json
 import math
 import os
@@ -260,7 +261,7 @@ def generate(
         forwards=dest / "forwards.parquet",
     )
     bounds = [rows * i // EVENT_PARTS for i in range(EVENT_PARTS + 1)]
-    for path, lo, hi in zip(files.events, bounds, bounds[1:], strict=False):
+    for path, (lo, hi) in zip(files.events, itertools.pairwise(bounds), strict=True):
         _write_parquet(events.frame.slice(lo, hi - lo), path)
         say(f"wrote {path.relative_to(dest).as_posix()}")
     _atomic_write(files.provinces, _geojson_bytes(land))
@@ -388,9 +389,7 @@ def _round_ring(coords: FloatArray) -> FloatArray:
     return ring[keep]
 
 
-def _partition(
-    island: shapely.Polygon, seeds_km: FloatArray
-) -> list[shapely.Polygon] | None:
+def _partition(island: shapely.Polygon, seeds_km: FloatArray) -> list[shapely.Polygon] | None:
     """Voronoi cells of the seeds clipped to the island, one polygon per seed, or None.
 
     Cell borders and the coast are noded once and polygonized, so neighbouring provinces
@@ -560,7 +559,7 @@ def _observer_in_town(
     lo, hi = weight[start[town]], weight[start[town + 1]]
     pos = np.searchsorted(weight, lo + rng.random(town.size) * (hi - lo), side="right") - 1
     pos = np.clip(pos, start[town], start[town + 1] - 1)
-    return order[pos]
+    return np.asarray(order[pos], dtype=np.int64)
 
 
 # ------------------------------------------------------------------------------- time
@@ -571,7 +570,7 @@ def _day_weights() -> FloatArray:
     winter = 1.0 + 0.25 * np.cos(2.0 * np.pi * (day - 196) / _YEAR_DAYS)  # peak mid-July
     weekend = np.where((day + _FIRST_WEEKDAY) % 7 >= 5, 1.15, 1.0)
     weights = winter * weekend
-    return weights / weights.sum()
+    return np.asarray(weights / weights.sum(), dtype=np.float64)
 
 
 def _local_times(rng: np.random.Generator, n: int) -> IntArray:
@@ -626,7 +625,9 @@ def _build_events(
 
     # Fair weather: an observer reports near home, sometimes from another town or the open
     # country; a quarter of the reports come from the wider outskirts.
-    fair_obs = rng.choice(observers.ids.size, n_fair, p=observers.activity / observers.activity.sum())
+    fair_obs = rng.choice(
+        observers.ids.size, n_fair, p=observers.activity / observers.activity.sum()
+    )
     mode = rng.random(n_fair)
     centre = np.where(mode < 0.82, observers.home[fair_obs], rng.choice(n_towns, n_fair, p=share))
     country = np.flatnonzero(mode >= 0.95)
@@ -691,9 +692,7 @@ def _build_events(
     stormy = np.concatenate([np.zeros(n_fair, dtype=bool), np.ones(n_storm, dtype=bool)])
     x, y = _to_km(lon, lat)
     town = _nearest(x, y, towns.x, towns.y)
-    observer = np.concatenate(
-        [fair_obs, _observer_in_town(rng, observers, town[n_fair:], n_towns)]
-    )
+    observer = np.concatenate([fair_obs, _observer_in_town(rng, observers, town[n_fair:], n_towns)])
 
     storm_names = list(_STORM_KIND_WEIGHTS)
     storm_p = np.array([_STORM_KIND_WEIGHTS[k] for k in storm_names])
@@ -794,7 +793,9 @@ def _build_forwards(
     start = np.concatenate([[0], np.cumsum(counts)])
     has = counts[src] > 0
     pick = start[src] + np.floor(rng.random(n) * np.maximum(counts[src], 1)).astype(np.int64)
-    base = np.where(has, events.observed_us[order[np.minimum(pick, len(order) - 1)]], _local_times(rng, n))
+    base = np.where(
+        has, events.observed_us[order[np.minimum(pick, len(order) - 1)]], _local_times(rng, n)
+    )
     sent = np.minimum(base + rng.exponential(25 * 60e6, n).astype(np.int64), _YEAR_END_US - 1)
 
     order = np.lexsort((dst, src, sent))

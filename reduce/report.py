@@ -37,7 +37,17 @@ def run_line(res: RunResult) -> str:
     if acc.get("suppressed_rows"):
         parts.append(f"{acc['suppressed_rows']:,} suppressed rows")
     line = ", ".join(parts)
-    return f"{line} -> {res.path}"
+    return f"{line} -> {shown(res.path)}"
+
+
+def shown(path: Path | None) -> str:
+    """A path relative to the working folder when it is inside it."""
+    if path is None:
+        return "-"
+    try:
+        return str(path.resolve().relative_to(Path.cwd().resolve()))
+    except ValueError:
+        return str(path)
 
 
 def run_notes(res: RunResult) -> list[str]:

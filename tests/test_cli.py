@@ -1,0 +1,202 @@
+"""Command line: exit codes and exact one-line messages (click's CliRunner, in-process)."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+from click.testing import CliRunner
+
+from reduce.cli import main
+from tests._builders import HEX_RECIPE, REGION_RECIPE, events, project, write_recipe
+
+
+@pytest.fixture(autouse=True)
+def _isolated(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.setenv("REDUCE_CACHE_DIR", str(tmp_path / "cache"))
+
+
+def invoke(*args: str) -> tuple[int, str, str]:
+    res = CliRunner().invoke(main, list(args))
+    return res.exit_code, res.stdout, res.stderr
+
+
+def one_error_line(stderr: str) -> str:
+    lines = stderr.strip().splitlines()
+    assert len(lines) == 1, stderr
+    assert "Traceback" not in stderr
+    return lines[0]
+
+
+def test_run_writes_payload_and_manifest_and_prints_summary(tmp_path: Path) -> None:
+    recipe = project(tmp_path)
+    code, out, err = invoke("run", str(recipe), "--quiet")
+    assert code == 0, err
+    assert out == ""
+    code, out, err = invoke("run", str(recipe))
+    assert code == 0, err
+    assert out.startswith("hexmap: ")
+    assert "-> out/hexmap.json" in out
+    payload = json.loads((tmp_path / "out" / "hexmap.json").read_bytes())
+    manifest = json.loads((tmp_path / "out" / "hexmap.manifest.json").read_bytes())
+    assert payload["format"] == "reduce.columns/1"
+    assert manifest["payload"] == "hexmap.json"
+    assert manifest["level"] == payload["level"]
+
+
+def test_unknown_recipe_key_names_file_key_and_hint(tmp_path: Path) -> None:
+    recipe = project(tmp_path, HEX_RECIPE.replace("[budget]", "[budget]\nmaxx = 3"))
+    code, _, err = invoke("run", str(recipe))
+    assert code == 2
+    assert one_error_line(err) == (
+        "error: recipe.toml: budget.maxx: unknown key (did you mean 'max'?); allowed here: "
+        "max, on, order")
+
+
+def test_missing_column_names_column_key_and_close_match(tmp_path: Path) -> None:
+    recipe = project(tmp_path, HEX_RECIPE.replace('distinct = "who"', 'distinct = "whom"'))
+    code, _, err = invoke("check", str(recipe))
+    assert code == 2
+    assert one_error_line(err) == (
+        "error: events.parquet: column 'whom' (from recipe.toml: measures.observers) is not in "
+        "the source (did you mean 'who'?); columns are: ts, lat, lon, kind, prov, sev, conf, "
+        "who")
+
+
+def test_column_of_wrong_type_is_named(tmp_path: Path) -> None:
+    recipe = project(tmp_path, HEX_RECIPE.replace('mean = "sev"', 'mean = "kind"'))
+    code, _, err = invoke("run", str(recipe))
+    assert code == 2
+    assert one_error_line(err) == (
+        "error: events.parquet: column 'kind' (from recipe.toml: measures.severity) is String, "
+        "but measures.severity needs numbers; convert the column or pick another")
+
+
+def test_coordinates_stored_as_text_are_a_type_error(tmp_path: Path) -> None:
+    df = events().with_columns(events()["lat"].cast(str))
+    recipe = project(tmp_path, df=df)
+    code, _, err = invoke("check", str(recipe))
+    assert code == 2
+    assert one_error_line(err) == (
+        "error: events.parquet: column 'lat' (from recipe.toml: source.lat) is String, but "
+        "source.lat needs numbers (decimal degrees); convert the column or pick another")
+
+
+def test_missing_source_file(tmp_path: Path) -> None:
+    recipe = write_recipe(tmp_path, HEX_RECIPE)
+    code, _, err = invoke("run", str(recipe))
+    assert code == 2
+    assert one_error_line(err) == (
+        "error: source.path 'events.parquet': no such file or folder (events.parquet); check "
+        "the path, which is relative to the recipe file")
+
+
+def test_unknown_time_zone_with_hint(tmp_path: Path) -> None:
+    recipe = project(tmp_path, HEX_RECIPE.replace('zone = "UTC"', 'zone = "Europe/Pari"'))
+    code, _, err = invoke("check", str(recipe))
+    assert code == 2
+    assert one_error_line(err) == (
+        "error: recipe.toml: group.time.zone: unknown time zone 'Europe/Pari' (did you mean "
+        "'Europe/Paris'?); use an IANA name such as UTC or Europe/Paris")
+
+
+def test_missing_denominators_file(tmp_path: Path) -> None:
+    recipe = project(tmp_path, REGION_RECIPE.replace("pop.csv", "people.csv"))
+    code, _, err = invoke("run", str(recipe))
+    assert code == 2
+    assert one_error_line(err) == (
+        "error: people.csv (normalize.denominators): file not found; check "
+        "normalize.denominators.path, which is relative to the recipe file")
+
+
+def test_out_of_range_coordinates_are_counted_not_an_error(tmp_path: Path) -> None:
+    df = events(n=1000).with_columns(
+        lat=__import__("polars").when(__import__("polars").int_range(1000) < 7)
+        .then(95.0).otherwise(__import__("polars").col("lat")))
+    recipe = project(tmp_path, HEX_RECIPE.replace('max = "40KB"', 'max = "5MB"'), df=df)
+    code, _, err = invoke("run", str(recipe), "--quiet")
+    assert code == 0, err
+    acc = json.loads((tmp_path / "out" / "hexmap.json").read_bytes())["accounting"]
+    assert acc["invalid_rows"] == 7
+    assert acc["input_rows"] == 1000
+
+
+def test_toml_syntax_error_reports_line(tmp_path: Path) -> None:
+    recipe = project(tmp_path, HEX_RECIPE.replace('name = "hexmap"', 'name = "hexmap'))
+    code, _, err = invoke("check", str(recipe))
+    assert code == 2
+    line = one_error_line(err)
+    assert line.startswith("error: recipe.toml: TOML syntax error: ")
+    assert "(at line 1, column 15)" in line
+
+
+def test_nothing_fits_exits_1_names_smallest_and_writes_nothing(tmp_path: Path) -> None:
+    recipe = project(tmp_path)
+    code, out, err = invoke("run", str(recipe), "--budget", "300B")
+    assert code == 1
+    line = one_error_line(err)
+    assert line.startswith("error: recipe.toml: no level fits the budget of 300 B gzip: the "
+                           "smallest payload is ")
+    assert "at hex=5, time=1w, top=1, digits=4; raise budget.max (or --budget), add a coarser " \
+           "hex level, add a wider time bin, lower prune.top.k" in line
+    assert not (tmp_path / "out" / "hexmap.json").exists()
+    assert not (tmp_path / "out" / "hexmap.manifest.json").exists()
+
+
+def test_write_anyway_writes_smallest_and_still_exits_1(tmp_path: Path) -> None:
+    recipe = project(tmp_path)
+    code, _, err = invoke("run", str(recipe), "--budget", "300B", "--write-anyway", "--json")
+    assert code == 1
+    payload = json.loads((tmp_path / "out" / "hexmap.json").read_bytes())
+    assert payload["level"] == {"hex": 5, "time": "1w", "top": 1, "digits": 4}
+
+
+def test_bad_budget_option_is_a_usage_error(tmp_path: Path) -> None:
+    recipe = project(tmp_path)
+    code, _, err = invoke("run", str(recipe), "--budget", "lots")
+    assert code == 2
+    assert "'lots' is not a size; use e.g. 300KB, 1.5MB, 200KiB or 250000" in err
+
+
+def test_set_overrides_are_validated_like_the_file(tmp_path: Path) -> None:
+    recipe = project(tmp_path)
+    code, _, err = invoke("run", str(recipe), "--set", "group.hex.levels=[5, 7]")
+    assert code == 2
+    assert one_error_line(err) == (
+        "error: recipe.toml: group.hex.levels: must go from finest to coarsest (strictly "
+        "decreasing resolutions), but 5 is followed by 7")
+
+
+def test_ladder_table_marks_chosen_and_json_lists_candidates(tmp_path: Path) -> None:
+    recipe = project(tmp_path)
+    code, out, err = invoke("ladder", str(recipe))
+    assert code == 0, err
+    chosen = [ln for ln in out.splitlines() if ln.startswith("*")]
+    assert len(chosen) == 1
+    code, out, err = invoke("ladder", str(recipe), "--json", "--budget", "20KB")
+    assert code == 0, err
+    doc = json.loads(out)
+    assert doc["budget"]["max"] == 20000
+    assert sum(c["chosen"] for c in doc["candidates"]) == 1
+    for c in doc["candidates"]:
+        assert c["fits"] == (c["gzip"] <= 20000)
+
+
+def test_every_command_has_help() -> None:
+    for name, cmd in main.commands.items():
+        assert cmd.help, f"command {name} has no help text"
+        code, out, _ = invoke(name, "--help")
+        assert code == 0
+        assert "Usage:" in out
+
+
+def test_python_dash_m_runs_the_cli() -> None:
+    import subprocess
+    import sys
+
+    res = subprocess.run([sys.executable, "-m", "reduce", "--version"], capture_output=True,
+                         text=True, check=False)
+    assert res.returncode == 0
+    assert res.stdout.startswith("reduce, version ")
