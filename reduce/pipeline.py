@@ -216,7 +216,7 @@ def fit(recipe: Recipe | str | Path, *, budget_max: str | int | None = None,
     ``every_level`` evaluates every combination of levels instead of searching.
     """
     r = _with_budget(_as_recipe(recipe, overrides), budget_max, on, order)
-    red = reducer if reducer is not None and reducer.recipe == r else Reducer(
+    red = reducer if reducer is not None and _same_levels(reducer.recipe, r) else Reducer(
         r, use_cache=use_cache, progress=progress)
     ladder_axes = r.ladder()
     axes = list(ladder_axes)
@@ -261,6 +261,14 @@ def fit(recipe: Recipe | str | Path, *, budget_max: str | int | None = None,
                        accounting=red.accounting(chosen_level) if chosen_level else {},
                        reducer=red)
     return result
+
+
+def _same_levels(a: Recipe, b: Recipe) -> bool:
+    """True when two recipes differ at most in their budget (levels can be shared)."""
+    def strip(r: Recipe) -> Recipe:
+        return replace(r, budget=None, content_hash="", overrides=())
+
+    return strip(a) == strip(b)
 
 
 def ladder(recipe: Recipe | str | Path, **kw: Any) -> FitResult:

@@ -1,0 +1,170 @@
+"""The byte-budget optimiser: sizes, size parsing, and the search's guarantees."""
+
+from __future__ import annotations
+
+import gzip
+import itertools
+import json
+from pathlib import Path
+
+import brotli
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+import reduce
+from reduce.budget import search
+from reduce.pipeline import Reducer
+from reduce.sizes import fits_on, measure_all, parse_size, size_on
+from tests._builders import HEX_RECIPE, project
+
+# --- sizes ------------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize(("text", "expected"), [
+    # IEC 80000-13: decimal prefixes are powers of 1000, binary prefixes powers of 1024.
+    ("300KB", 300_000), ("1.5MB", 1_500_000), ("200KiB", 204_800), ("1MiB", 1_048_576),
+    ("2GB", 2_000_000_000), ("250000", 250_000), (4096, 4096), ("10 kb", 10_000),
+])
+def test_sizes_parse_decimal_and_binary_units(text: object, expected: int) -> None:
+    assert parse_size(text) == expected
+
+
+@pytest.mark.parametrize("text", ["", "KB", "3XB", "-1KB", "0", True, 1.5, "1.5.2MB"])
+def test_bad_sizes_are_refused(text: object) -> None:
+    with pytest.raises(ValueError):
+        parse_size(text)
+
+
+@given(st.binary(max_size=5000) | st.text(max_size=3000).map(str.encode))
+@settings(max_examples=60, deadline=None)
+def test_sizes_equal_python_gzip_and_brotli_module(data: bytes) -> None:
+    # References: Python's gzip module (RFC 1952) at level 9 with mtime 0, the brotli module
+    # (RFC 7932) at quality 11.
+    s = measure_all(data)
+    assert s.raw == len(data)
+    assert s.gzip == len(gzip.compress(data, compresslevel=9, mtime=0))
+    assert s.brotli == len(brotli.compress(data, quality=11))
+    for on in ("raw", "gzip", "brotli"):
+        exact = size_on(data, on)  # type: ignore[arg-type]
+        ok, size = fits_on(data, on, exact)  # type: ignore[arg-type]
+        assert ok and size == exact
+        ok, _ = fits_on(data, on, exact - 1)  # type: ignore[arg-type]
+        assert not ok
+
+
+# --- the search on synthetic monotone size functions -------------------------------------------
+
+ladders = st.lists(st.integers(1, 4), min_size=1, max_size=4).map(
+    lambda ns: {f"a{i}": tuple(range(n)) for i, n in enumerate(ns)})
+
+
+@given(ladders, st.data())
+@settings(max_examples=200, deadline=None)
+def test_search_finds_the_lexicographically_finest_fitting_level(ladder, data) -> None:  # type: ignore[no-untyped-def]
+    axes = list(ladder)
+    order = data.draw(st.permutations(axes))
+    # A size that shrinks as any axis gets coarser (level index grows): monotone.
+    weights = {a: data.draw(st.integers(1, 50)) for a in axes}
+    base = data.draw(st.integers(0, 100))
+
+    def size(level: dict[str, int]) -> int:
+        return base + sum(weights[a] * (len(ladder[a]) - 1 - level[a]) for a in axes)
+
+    limit = data.draw(st.integers(0, base + sum(w * 4 for w in weights.values())))
+    calls: list[dict[str, int]] = []
+
+    def fits(level: dict[str, int]) -> bool:
+        calls.append(level)
+        return size(level) <= limit
+
+    res = search(ladder, order, fits)
+    every = [dict(zip(axes, combo)) for combo in itertools.product(*ladder.values())]
+    fitting = [lv for lv in every if size(lv) <= limit]
+    if not fitting:
+        assert res.chosen is None
+        return
+    assert res.chosen is not None and size(res.chosen) <= limit
+    # Brute force: finest on the last-to-give-up axis first, and so on.
+    priority = list(reversed(order))
+    best = min(fitting, key=lambda lv: [lv[a] for a in priority])
+    assert res.chosen == best
+    # It never evaluates a level twice and evaluates far fewer than all of them when large.
+    keys = [tuple(sorted(c.items())) for c in calls]
+    assert len(keys) == len(set(keys))
+    assert len(calls) <= 1 + sum(max(1, (len(v) - 1).bit_length()) for v in ladder.values())
+
+
+# --- the search on real payloads ----------------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def hex_reducer(tmp_path_factory: pytest.TempPathFactory) -> Reducer:
+    tmp = tmp_path_factory.mktemp("budget")
+    recipe = reduce.load_recipe(project(tmp, HEX_RECIPE.replace("sev", "sev")))
+    return Reducer(recipe, use_cache=False)
+
+
+@given(budget=st.integers(2_000, 60_000), on=st.sampled_from(["raw", "gzip", "brotli"]))
+@settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+def test_chosen_level_fits_and_the_next_finer_does_not(hex_reducer: Reducer, budget: int,
+                                                       on: str) -> None:
+    res = reduce.fit(hex_reducer.recipe, budget_max=budget, on=on, reducer=hex_reducer)
+    ladder = res.recipe.ladder()
+    if res.level is None:
+        coarsest = {a: v[-1] for a, v in ladder.items()}
+        assert size_on(hex_reducer.payload(coarsest), on) > budget  # type: ignore[arg-type]
+        return
+    assert res.payload is not None
+    assert size_on(res.payload, on) <= budget  # type: ignore[arg-type]
+    for axis in res.recipe.budget.order:  # type: ignore[union-attr]
+        levels = list(ladder[axis])
+        i = levels.index(res.level[axis])
+        if i == 0:
+            continue
+        finer = {**res.level, axis: levels[i - 1]}
+        assert size_on(hex_reducer.payload(finer), on) > budget, (axis, finer)  # type: ignore[arg-type]
+
+
+def test_payload_level_and_manifest_record_the_choice(tmp_path: Path,
+                                                      monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.chdir(tmp_path)
+    recipe = project(tmp_path)
+    out = reduce.run(recipe, budget_max="15KB", use_cache=False)
+    payload = json.loads(out.path.read_bytes())  # type: ignore[union-attr]
+    manifest = out.manifest
+    assert manifest is not None
+    assert payload["level"] == manifest["level"] == out.fit.level
+    assert manifest["budget"] == {"max": 15000, "on": "gzip",
+                                  "order": ["top", "time", "hex", "digits"], "fits": True}
+    assert manifest["bytes"]["gzip"] <= 15000
+    assert len(manifest["frontier"]) == len(out.fit.candidates)
+    assert sum(c["chosen"] for c in manifest["frontier"]) == 1
+
+
+def test_refit_with_another_budget_reuses_the_cached_partial(tmp_path: Path,
+                                                            monkeypatch: pytest.MonkeyPatch
+                                                            ) -> None:
+    monkeypatch.setenv("REDUCE_CACHE_DIR", str(tmp_path / "cache"))
+    recipe = project(tmp_path)
+    first = reduce.ladder(recipe, budget_max="30KB")
+    again = reduce.ladder(recipe, budget_max="10KB", on="brotli")
+    assert not first.partial_from_cache
+    assert again.partial_from_cache
+    # Changing the source invalidates the cache entry.
+    (tmp_path / "events.parquet").write_bytes((tmp_path / "events.parquet").read_bytes())
+    import os
+
+    os.utime(tmp_path / "events.parquet", ns=(1, 1))
+    third = reduce.ladder(recipe, budget_max="10KB")
+    assert not third.partial_from_cache
+
+
+def test_frontier_is_a_polars_frame_with_one_row_per_candidate(tmp_path: Path) -> None:
+    recipe = project(tmp_path)
+    res = reduce.fit(recipe, budget_max="12KB", use_cache=False)
+    f = res.frontier
+    assert f.columns == ["hex", "time", "top", "digits", "rows", "elements", "raw", "gzip",
+                         "brotli", "fits", "chosen"]
+    assert f.height == len(res.candidates)
+    assert f.get_column("chosen").sum() == 1
