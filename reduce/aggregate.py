@@ -19,6 +19,7 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field, replace
 
+import numpy as np
 import polars as pl
 
 from reduce.errors import SourceError
@@ -45,7 +46,9 @@ def _max(m: MeasureSpec) -> str:
     return f"__max_{m.name}"
 
 
-PAIR = "__v"
+PAIR = "__v"  # a distinct value
+GROUP = "__g"  # the row of the partial table a pair belongs to
+ROW = "__row"
 
 
 @dataclass(frozen=True)
@@ -64,7 +67,8 @@ class Partial:
 
     keys: tuple[str, ...]
     table: pl.DataFrame
-    pairs: dict[str, pl.DataFrame]  # distinct measure name -> keys + __v, unique rows
+    # distinct measure name -> unique (__g, __v) pairs: __g is a row number of ``table``
+    pairs: dict[str, pl.DataFrame]
     hex_res: int | None
     time_bin: TimeBin | None
     accounting: Accounting
@@ -148,17 +152,22 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
     by_reason = {INVALID_REASONS[int(r)]: int(n) for r, n in sorted(inv.iter_rows())}
     valid = grouped.filter(pl.col(INVALID) == 0).drop(INVALID)
     present = [c for c in valid.columns if c.startswith("__") and c not in dnames]
-    renamed_keys = list(keys)
+    pairs: dict[str, pl.DataFrame] = {}
     if dnames:
-        table = valid.group_by(renamed_keys).agg(_merge_aggs(renamed, present))
+        # One row per finest group; each group's distinct values become (group, value) pairs.
+        table = valid.group_by(list(keys)).agg(
+            [*_merge_aggs(renamed, present), *[pl.col(d) for d in dnames]])
+        table = table.with_row_index(GROUP)
+        for m in distinct:
+            dn = dnames[dcols.index(str(m.column))]
+            exploded = table.select(GROUP, pl.col(dn).alias(PAIR)).explode(PAIR).drop_nulls(PAIR)
+            # Values become dense integer ids: only their identity matters for counting, and
+            # (group, id) pairs pack into one integer for fast de-duplication in roll-ups.
+            ids = exploded.get_column(PAIR).rank("dense").cast(pl.UInt32) - 1
+            pairs[m.name] = _unique_pairs(exploded.get_column(GROUP).cast(pl.UInt32), ids)
+        table = table.drop([GROUP, *dnames])
     else:
         table = valid
-    table = table.sort(renamed_keys) if renamed_keys else table
-    pairs: dict[str, pl.DataFrame] = {}
-    for m in distinct:
-        dn = dnames[dcols.index(str(m.column))]
-        pairs[m.name] = (valid.select([*renamed_keys, pl.col(dn).alias(PAIR)])
-                         .drop_nulls(PAIR).unique().sort([*renamed_keys, PAIR]))
     input_rows = src.count_rows()
     kept = int(grouped.get_column(N).sum()) if grouped.height else 0
     acc = Accounting(input_rows=input_rows, filtered_rows=input_rows - kept,
@@ -179,23 +188,71 @@ def _label(src: OpenSource) -> str:
     return _files_label(src.files)
 
 
+def _regrouped(recipe: Recipe, p: Partial, mapped: pl.DataFrame,
+               keys: Sequence[str] | None = None) -> Partial:
+    """Merge the rows of ``mapped`` (``p.table`` with key columns rewritten, same row order)
+    that share their keys; ``keys`` selects the key columns to keep (default: all)."""
+    keep = list(p.keys if keys is None else keys)
+    present = [c for c in mapped.columns if c.startswith("__")]
+    aggs = _merge_aggs(recipe.measures, present)
+    if not p.pairs:
+        table = mapped.group_by(keep).agg(aggs) if keep else mapped.select(aggs)
+        return Partial(keys=tuple(keep), table=table, pairs={}, hex_res=p.hex_res,
+                       time_bin=p.time_bin, accounting=p.accounting)
+    # Keep the old row numbers of each new group, to carry the pairs over by integer ids.
+    grouped = (mapped.with_row_index(ROW).group_by(keep).agg([*aggs, pl.col(ROW)])
+               if keep else mapped.with_row_index(ROW).select([*aggs, pl.col(ROW).implode()]))
+    remap = np.empty(mapped.height, dtype=np.uint32)
+    rows = grouped.get_column(ROW)
+    new_ids = np.repeat(np.arange(grouped.height, dtype=np.uint32),
+                        rows.list.len().to_numpy())
+    remap[rows.explode().to_numpy()] = new_ids
+    lookup = pl.Series(GROUP, remap)
+    pairs = {name: _unique_pairs(lookup.gather(pt.get_column(GROUP)), pt.get_column(PAIR))
+             for name, pt in p.pairs.items()}
+    return Partial(keys=tuple(keep), table=grouped.drop(ROW), pairs=pairs, hex_res=p.hex_res,
+                   time_bin=p.time_bin, accounting=p.accounting)
+
+
+def _unique_pairs(groups: pl.Series, values: pl.Series) -> pl.DataFrame:
+    """Distinct (group, value id) pairs, both UInt32, de-duplicated as one packed UInt64."""
+    packed = (groups.to_numpy().astype(np.uint64) << np.uint64(32)) | values.to_numpy().astype(
+        np.uint64)
+    u = pl.Series(packed).unique().to_numpy()
+    return pl.DataFrame({GROUP: (u >> np.uint64(32)).astype(np.uint32),
+                         PAIR: (u & np.uint64(0xFFFFFFFF)).astype(np.uint32)})
+
+
 def regroup(recipe: Recipe, p: Partial, mapping: Sequence[pl.Expr],
             keys: Sequence[str] | None = None) -> Partial:
-    """Apply key mappings (e.g. coarser levels or relabelled categories) and merge groups.
+    """Apply key mappings (e.g. coarser levels) and merge the groups that then coincide.
 
     ``keys`` selects the key columns to keep (default: all); dropping a key merges across it.
     """
-    keep = list(p.keys if keys is None else keys)
-    present = [c for c in p.table.columns if c.startswith("__")]
-    table = p.table.with_columns(mapping) if mapping else p.table
-    table = (table.group_by(keep).agg(_merge_aggs(recipe.measures, present)).sort(keep)
-             if keep else table.select(_merge_aggs(recipe.measures, present)))
+    mapped = p.table.with_columns(mapping) if mapping else p.table
+    return _regrouped(recipe, p, mapped, keys)
+
+
+def relabel(recipe: Recipe, p: Partial, mapped: pl.DataFrame) -> Partial:
+    """Merge groups after key values were rewritten row by row (``mapped`` is ``p.table``
+    with new key values, same rows in the same order)."""
+    return _regrouped(recipe, p, mapped)
+
+
+def take(p: Partial, keep: pl.Series) -> Partial:
+    """The partial restricted to the rows where the boolean ``keep`` is true."""
+    if not p.pairs:
+        return replace(p, table=p.table.filter(keep))
+    mask = keep.to_numpy()
+    remap = np.cumsum(mask, dtype=np.int64) - 1
+    lookup = pl.Series(GROUP, remap.astype(np.uint32))
     pairs = {}
     for name, pt in p.pairs.items():
-        pt2 = pt.with_columns(mapping) if mapping else pt
-        pairs[name] = pt2.select([*keep, PAIR]).unique()
-    return Partial(keys=tuple(keep), table=table, pairs=pairs, hex_res=p.hex_res,
-                   time_bin=p.time_bin, accounting=p.accounting)
+        g = pt.get_column(GROUP)
+        sel = pl.Series(mask).gather(g)
+        pairs[name] = pl.DataFrame({GROUP: lookup.gather(g.filter(sel)),
+                                    PAIR: pt.get_column(PAIR).filter(sel)})
+    return replace(p, table=p.table.filter(keep), pairs=pairs)
 
 
 def rollup(recipe: Recipe, p: Partial, *, hex_res: int | None,
@@ -214,27 +271,30 @@ def merge(recipe: Recipe, a: Partial, b: Partial) -> Partial:
     """Merge two partials of the same recipe and level (e.g. two input files or two nights)."""
     if a.keys != b.keys or a.hex_res != b.hex_res or a.time_bin != b.time_bin:
         raise ValueError("partials of different levels cannot be merged; roll up first")
+    offset = a.table.height
+    pairs = {k: pl.concat([a.pairs[k], b.pairs[k].with_columns(
+        (pl.col(GROUP) + offset).cast(pl.UInt32))], how="vertical_relaxed") for k in a.pairs}
+    acc = Accounting(
+        a.accounting.input_rows + b.accounting.input_rows,
+        a.accounting.filtered_rows + b.accounting.filtered_rows,
+        a.accounting.invalid_rows + b.accounting.invalid_rows,
+        {k: a.accounting.invalid_by_reason.get(k, 0) + b.accounting.invalid_by_reason.get(k, 0)
+         for k in sorted({*a.accounting.invalid_by_reason, *b.accounting.invalid_by_reason})})
     both = Partial(keys=a.keys, table=pl.concat([a.table, b.table], how="vertical_relaxed"),
-                   pairs={k: pl.concat([a.pairs[k], b.pairs[k]], how="vertical_relaxed")
-                          for k in a.pairs},
-                   hex_res=a.hex_res, time_bin=a.time_bin,
-                   accounting=Accounting(
-                       a.accounting.input_rows + b.accounting.input_rows,
-                       a.accounting.filtered_rows + b.accounting.filtered_rows,
-                       a.accounting.invalid_rows + b.accounting.invalid_rows,
-                       {k: a.accounting.invalid_by_reason.get(k, 0)
-                        + b.accounting.invalid_by_reason.get(k, 0)
-                        for k in sorted({*a.accounting.invalid_by_reason,
-                                         *b.accounting.invalid_by_reason})}))
+                   pairs=pairs, hex_res=a.hex_res, time_bin=a.time_bin, accounting=acc)
     return regroup(recipe, both, [])
 
 
-def finalize(recipe: Recipe, p: Partial) -> pl.DataFrame:
-    """Key columns, ``__n`` and one column per measure (in recipe order)."""
+def finalize(recipe: Recipe, p: Partial, *, only: Sequence[str] | None = None
+             ) -> pl.DataFrame:
+    """Key columns, ``__n`` and one column per measure (recipe order), row for row with
+    ``p.table``; ``only`` limits the measures computed (e.g. the one top-k ranks by)."""
     keys = list(p.keys)
-    t = p.table
     cols: list[pl.Expr] = [pl.col(k) for k in keys] + [pl.col(N)]
+    distinct: dict[str, pl.Series] = {}
     for m in recipe.measures:
+        if only is not None and m.name not in only:
+            continue
         if m.kind == "count":
             cols.append(pl.col(N).alias(m.name))
         elif m.kind == "sum":
@@ -248,19 +308,12 @@ def finalize(recipe: Recipe, p: Partial) -> pl.DataFrame:
         elif m.kind == "max":
             cols.append(pl.col(_max(m)).alias(m.name))
         else:
-            cols.append(pl.lit(0, dtype=pl.Int64).alias(m.name))
-    out = t.select(cols)
-    for m in recipe.measures:
-        if m.kind != "distinct":
-            continue
-        pt = p.pairs[m.name]
-        if keys:
-            counts = pt.group_by(keys).agg(pl.len().cast(pl.Int64).alias("__dc"))
-            out = (out.join(counts, on=keys, how="left", nulls_equal=True)
-                   .with_columns(pl.col("__dc").fill_null(0).alias(m.name)).drop("__dc"))
-        else:
-            out = out.with_columns(pl.lit(pt.height, dtype=pl.Int64).alias(m.name))
-    return out.sort(keys) if keys else out
+            g = p.pairs[m.name].get_column(GROUP).to_numpy()
+            counts = np.bincount(g, minlength=p.table.height).astype(np.int64)
+            distinct[m.name] = pl.Series(m.name, counts)
+            cols.append(pl.lit(0).alias(m.name))  # placeholder keeps the column order
+    out = p.table.select(cols)
+    return out.with_columns(list(distinct.values())) if distinct else out
 
 
 __all__ = ["HEX", "TIME", "N", "Accounting", "Partial", "finalize", "merge", "regroup",

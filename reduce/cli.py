@@ -20,6 +20,7 @@ import click
 import orjson
 
 from reduce import __version__
+from reduce._audit_cli import audit
 from reduce.errors import RecipeError, ReduceError
 from reduce.sizes import MEASURES, parse_size
 
@@ -224,12 +225,4 @@ def demo_cmd(out_dir: Path, rows: int | None, regenerate: bool, quiet: bool) -> 
     click.echo(f"demo: {len(results)} recipes in {seconds:.1f} s; payloads in {out_dir}")
 
 
-def _register_audit() -> None:
-    try:
-        from reduce._audit_cli import audit
-    except ImportError:  # pragma: no cover - the audit module ships with the package
-        return
-    main.add_command(audit)
-
-
-_register_audit()
+main.add_command(audit)

@@ -69,9 +69,23 @@ def _time_expr(recipe: Recipe, lf: pl.LazyFrame, label: str) -> pl.Expr:
     return e.dt.convert_time_zone(zone)
 
 
-def truncate(expr: pl.Expr, b: TimeBin) -> pl.Expr:
-    """The start of the bin of width ``b`` on the expression's own (local) clock."""
-    return expr.dt.truncate(b.text)
+def truncate(expr: pl.Expr, b: TimeBin, zone: str) -> pl.Expr:
+    """The start of the bin of width ``b`` on the local clock of ``zone``.
+
+    Sub-day bins truncate the local wall time. Day, week, month and year bins are computed
+    from the local calendar date, and start at the first instant of that date: where local
+    midnight happens twice (a DST change at midnight) the earlier one, where it does not
+    happen at all the first local time that exists (00:30 or 01:00).
+    """
+    if b.unit in ("m", "h"):
+        return expr.dt.truncate(b.text)
+    day = expr.dt.date()
+    if b.unit != "d":
+        day = day.dt.truncate(b.text)
+    midnight = day.cast(pl.Datetime("us"))
+    starts = [(midnight + pl.duration(minutes=m)).dt.replace_time_zone(
+        zone, ambiguous="earliest", non_existent="null") for m in (0, 30, 60)]
+    return pl.coalesce(starts)
 
 
 def _valid_coord(col: str, limit: float) -> pl.Expr:
@@ -93,7 +107,8 @@ def scan_keys(recipe: Recipe, lf: pl.LazyFrame, label: str) -> tuple[list[pl.Exp
         checks.append((1, _valid_coord(src.lat, 90.0) & _valid_coord(src.lon, 180.0)))
     time_e = None
     if recipe.time:
-        time_e = truncate(_time_expr(recipe, lf, label), recipe.time.levels[0])
+        time_e = truncate(_time_expr(recipe, lf, label), recipe.time.levels[0],
+                          recipe.time.zone)
         checks.append((2, time_e.is_not_null()))
     key_cols = [c for c in ([recipe.region.column] if recipe.region else [])] + list(
         recipe.categories)
@@ -121,7 +136,8 @@ def coarsen(recipe: Recipe, *, hex_res: int | None, time_bin: TimeBin | None,
     """Expressions mapping key columns at one level to a coarser one (identity otherwise)."""
     out: list[pl.Expr] = []
     if recipe.time and time_bin is not None and time_bin != from_time:
-        out.append(truncate(pl.col(TIME), time_bin).alias(TIME))
+        assert recipe.time is not None
+        out.append(truncate(pl.col(TIME), time_bin, recipe.time.zone).alias(TIME))
     if recipe.hex and hex_res is not None and hex_res != from_hex:
         out.append(plh3.cell_to_parent(HEX, hex_res).alias(HEX))
     return out

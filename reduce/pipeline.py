@@ -26,7 +26,7 @@ from reduce.aggregate import Partial
 from reduce.errors import BudgetError, RecipeError
 from reduce.normalize import NormalizeReport
 from reduce.publish import manifest_path, publish, resolve_output, sha256
-from reduce.recipe import Budget, Recipe, load_recipe, parse_time_bin
+from reduce.recipe import Budget, Recipe, TimeBin, load_recipe, parse_time_bin
 from reduce.sizes import MEASURES, Measure, fits_on, measure_all, parse_size
 from reduce.source import OpenSource, open_source
 
@@ -100,12 +100,27 @@ class Reducer:
 
     # -- levels -----------------------------------------------------------------------------
     def _rollup(self, hex_res: int | None, time_text: str | None) -> Partial:
+        """The partial at (hex, time), rolled up from the smallest finer partial at hand.
+
+        A level that coarsens both axes of a large partial goes through the time roll-up
+        first (kept for reuse): the search holds one axis while bisecting the other, so the
+        intermediate serves several candidates.
+        """
         k = (hex_res, time_text)
-        if k not in self._rollups:
-            tb = parse_time_bin(time_text) if time_text else None
-            self._rollups[k] = aggregate.rollup(self.recipe, self.partial(), hex_res=hex_res,
-                                                time_bin=tb)
-        return self._rollups[k]
+        if k in self._rollups:
+            return self._rollups[k]
+        finest = self.partial()
+        self._rollups.setdefault((finest.hex_res, _text(finest.time_bin)), finest)
+        tb = parse_time_bin(time_text) if time_text else None
+        sources = [(p.table.height, i, p) for i, ((h, t), p) in enumerate(self._rollups.items())
+                   if _finer_or_equal(h, t, hex_res, tb)]
+        src = min(sources, key=lambda x: x[:2])[2]
+        if (self.recipe.hex and self.recipe.time and src.hex_res != hex_res
+                and src.time_bin != tb):
+            src = self._rollup(src.hex_res, time_text)
+        out = aggregate.rollup(self.recipe, src, hex_res=hex_res, time_bin=tb)
+        self._rollups[k] = out
+        return out
 
     def rows(self, level: Mapping[str, Any]) -> LevelRows:
         """Rows of a level (digits do not matter here)."""
@@ -166,6 +181,21 @@ class Reducer:
             if size is None:
                 c.note = f"> {limit} {on} (stopped early)"
         return c
+
+
+def _text(b: TimeBin | None) -> str | None:
+    return b.text if b else None
+
+
+def _finer_or_equal(h: int | None, t: str | None, hex_res: int | None,
+                    tb: TimeBin | None) -> bool:
+    """Whether a partial at (h, t) can be rolled up to (hex_res, tb)."""
+    if h is not None and hex_res is not None and h < hex_res:
+        return False
+    if t is not None and tb is not None:
+        tt = parse_time_bin(t)
+        return tt == tb or tb.nests(tt)
+    return True
 
 
 def _as_recipe(recipe: Recipe | str | Path, overrides: Mapping[str, str] | None) -> Recipe:

@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import polars as pl
 
-from reduce.aggregate import N, Partial, finalize, regroup
+from reduce.aggregate import N, Partial, finalize, regroup, relabel, take
 from reduce.errors import SourceError
 from reduce.keys import HEX, TIME
 from reduce.recipe import Recipe
@@ -42,19 +42,13 @@ def _relabel(recipe: Recipe, p: Partial, fold: pl.DataFrame, on: list[str]) -> P
     """Relabel the categories of the rows of ``p`` that match ``fold`` (on ``on``) to rest."""
     assert recipe.top is not None
     rest = recipe.top.rest
-    cats = list(recipe.categories)
     marker = fold.select(on).unique().with_columns(pl.lit(True).alias("__fold"))
-
-    def apply(df: pl.DataFrame) -> pl.DataFrame:
-        j = df.join(marker, on=on, how="left", nulls_equal=True)
-        return j.with_columns([
-            pl.when(pl.col("__fold")).then(pl.lit(rest)).otherwise(pl.col(c)).alias(c)
-            for c in cats]).drop("__fold")
-
-    moved = Partial(keys=p.keys, table=apply(p.table),
-                    pairs={k: apply(v) for k, v in p.pairs.items()}, hex_res=p.hex_res,
-                    time_bin=p.time_bin, accounting=p.accounting)
-    return regroup(recipe, moved, [])
+    hit = (p.table.select(on).join(marker, on=on, how="left", nulls_equal=True,
+                                   maintain_order="left").get_column("__fold").fill_null(False))
+    mapped = p.table.with_columns([
+        pl.when(hit).then(pl.lit(rest)).otherwise(pl.col(c)).alias(c)
+        for c in recipe.categories])
+    return relabel(recipe, p, mapped)
 
 
 def check_rest_label(recipe: Recipe, p: Partial) -> None:
@@ -77,7 +71,8 @@ def top_k(recipe: Recipe, p: Partial, k: int) -> Partial:
     cats = list(recipe.categories)
     ranked_keys = [*within, *cats]
     rank_src = p if list(p.keys) == ranked_keys else regroup(recipe, p, [], ranked_keys)
-    scores = finalize(recipe, rank_src).select([*ranked_keys, pl.col(top.by).alias("__by")])
+    scores = finalize(recipe, rank_src, only=[top.by]).select(
+        [*ranked_keys, pl.col(top.by).alias("__by")])
     order = scores.sort(["__by", *cats], descending=[True] + [False] * len(cats),
                         nulls_last=True)
     ranked = order.with_columns(
@@ -95,26 +90,15 @@ def suppress(recipe: Recipe, p: Partial) -> tuple[Partial, int, int]:
     if mc is None or not p.table.height:
         return p, 0, 0
     col = mc.by or N
-    final = finalize(recipe, p)
-    keys = list(p.keys)
-    small = final.filter(pl.col(col) < mc.threshold).select(keys)
-    if not small.height:
+    only = [mc.by] if mc.by else []
+    small = finalize(recipe, p, only=only).get_column(col) < mc.threshold
+    if not small.any():
         return p, 0, 0
     if mc.fold and recipe.top is not None:
-        p = _relabel(recipe, p, small, keys)
-        final = finalize(recipe, p)
-        small = final.filter(pl.col(col) < mc.threshold).select(keys)
-        if not small.height:
+        keys = list(p.keys)
+        p = _relabel(recipe, p, p.table.filter(small).select(keys), keys)
+        small = finalize(recipe, p, only=only).get_column(col) < mc.threshold
+        if not small.any():
             return p, 0, 0
-    drop = small.with_columns(pl.lit(True).alias("__drop"))
-
-    def keep(df: pl.DataFrame) -> pl.DataFrame:
-        return (df.join(drop, on=keys, how="left", nulls_equal=True)
-                .filter(pl.col("__drop").is_null()).drop("__drop"))
-
-    gone = p.table.join(small, on=keys, how="semi", nulls_equal=True)
-    rows = int(gone.get_column(N).sum())
-    kept = Partial(keys=p.keys, table=keep(p.table),
-                   pairs={k: keep(v) for k, v in p.pairs.items()}, hex_res=p.hex_res,
-                   time_bin=p.time_bin, accounting=p.accounting)
-    return kept, rows, small.height
+    rows = int(p.table.get_column(N).filter(small).sum())
+    return take(p, ~small), rows, int(small.sum())
