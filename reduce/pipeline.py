@@ -27,7 +27,7 @@ from reduce.errors import BudgetError, RecipeError
 from reduce.normalize import NormalizeReport
 from reduce.publish import manifest_path, publish, resolve_output, sha256
 from reduce.recipe import Budget, Recipe, TimeBin, load_recipe, parse_time_bin
-from reduce.sizes import MEASURES, Measure, fits_on, measure_all, parse_size
+from reduce.sizes import MEASURES, Measure, Sizes, fits_on, measure_all, parse_size
 from reduce.source import OpenSource, open_source
 
 Progress = Callable[[str], None]
@@ -348,7 +348,11 @@ def build_manifest(result: FitResult, path: Path) -> dict[str, Any]:
     r = result.recipe
     assert result.payload is not None and result.chosen is not None
     data = result.payload
-    sizes = measure_all(data)
+    c = result.chosen
+    if c.gzip is None or c.brotli is None:  # measured exactly when chosen; never estimate
+        s = measure_all(data)
+        c.gzip, c.brotli = s.gzip, s.brotli
+    sizes = Sizes(raw=len(data), gzip=int(c.gzip), brotli=int(c.brotli))
     red = result.reducer
     assert result.level is not None and red is not None
     lr = red.rows(result.level)

@@ -95,7 +95,8 @@ class TimeBin:
                 return months % finer.n == 0 and (12 % months == 0)
             return finer.unit in ("m", "h", "d")  # weeks straddle months
         fm, sm = finer.minutes, self.minutes
-        assert fm is not None and sm is not None  # both fixed here
+        if fm is None or sm is None:  # a fixed width is never made of calendar months
+            return False
         if self.unit == "w":
             return finer.unit in ("m", "h", "d", "w") and sm % fm == 0
         return sm % fm == 0

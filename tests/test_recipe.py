@@ -167,3 +167,12 @@ def test_time_bins_parse(text: str, minutes: int | None) -> None:
 def test_time_bin_that_does_not_divide_its_unit_is_refused() -> None:
     with pytest.raises(ValueError, match="does not divide its parent unit evenly"):
         parse_time_bin("7m")
+
+
+@pytest.mark.parametrize(("coarse", "fine", "expected"), [
+    ("1h", "15m", True), ("1d", "1h", True), ("1w", "1d", True), ("1mo", "1d", True),
+    ("3mo", "1mo", True), ("1y", "3mo", True), ("1mo", "1w", False), ("1d", "1mo", False),
+    ("1h", "1d", False), ("6h", "4h", False),
+])
+def test_time_bin_nesting(coarse: str, fine: str, expected: bool) -> None:
+    assert parse_time_bin(coarse).nests(parse_time_bin(fine)) is expected
