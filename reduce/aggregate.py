@@ -170,11 +170,30 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
         table = valid
     input_rows = src.count_rows()
     kept = int(grouped.get_column(N).sum()) if grouped.height else 0
+    _check_not_empty(recipe, label, input_rows, kept, by_reason)
     acc = Accounting(input_rows=input_rows, filtered_rows=input_rows - kept,
                      invalid_rows=sum(by_reason.values()), invalid_by_reason=by_reason)
     return Partial(keys=keys, table=table, pairs=pairs,
                    hex_res=recipe.hex.levels[0] if recipe.hex else None,
                    time_bin=recipe.time.levels[0] if recipe.time else None, accounting=acc)
+
+
+def _check_not_empty(recipe: Recipe, label: str, input_rows: int, kept: int,
+                     by_reason: dict[str, int]) -> None:
+    """A payload with nothing in it is almost always a mistake upstream: say which."""
+    if input_rows == 0:
+        raise SourceError(f"{label}: the source has no rows; check that the export that "
+                          "writes it succeeded")
+    if kept == 0:
+        raise SourceError(f"{label}: source.filter removes all {input_rows:,} rows; loosen "
+                          f"the filters in {recipe.file.name}")
+    if kept == sum(by_reason.values()):
+        why = ", ".join(f"{n:,} by {r}" for r, n in by_reason.items())
+        hint = {"coordinates": "check source.lat and source.lon (swapped? degrees?)",
+                "time": "check source.time and its format",
+                "key": "check the region and category columns for empty values"}
+        main = max(by_reason, key=lambda r: by_reason[r])
+        raise SourceError(f"{label}: every row is invalid ({why}); {hint[main]}")
 
 
 def _first(e: BaseException) -> str:

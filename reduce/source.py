@@ -115,7 +115,9 @@ def _scan(files: list[Path] | tuple[Path, ...], fmt: str,
     if fmt == "parquet":
         lf = pl.scan_parquet(srcs, hive_partitioning=_hive(files))
     elif fmt == "csv":
-        lf = pl.scan_csv(srcs, try_parse_dates=True, infer_schema_length=10000)
+        # Invalid UTF-8 in text becomes U+FFFD (the documented policy), never a crash.
+        lf = pl.scan_csv(srcs, try_parse_dates=True, infer_schema_length=10000,
+                         encoding="utf8-lossy")
     else:
         lf = pl.scan_ndjson(srcs, infer_schema_length=10000)
     return lf if columns is None else lf.select(columns)
