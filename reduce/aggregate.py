@@ -57,8 +57,13 @@ class Accounting:
 
     input_rows: int
     filtered_rows: int
-    invalid_rows: int
+    invalid_rows: int  # every reason except "unassigned"
     invalid_by_reason: dict[str, int] = field(default_factory=dict)
+
+    @property
+    def unassigned_rows(self) -> int:
+        """Rows outside every boundary polygon (counted apart from invalid rows)."""
+        return self.invalid_by_reason.get("unassigned", 0)
 
 
 @dataclass(frozen=True)
@@ -172,7 +177,8 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
     kept = int(grouped.get_column(N).sum()) if grouped.height else 0
     _check_not_empty(recipe, label, input_rows, kept, by_reason)
     acc = Accounting(input_rows=input_rows, filtered_rows=input_rows - kept,
-                     invalid_rows=sum(by_reason.values()), invalid_by_reason=by_reason)
+                     invalid_rows=sum(n for r, n in by_reason.items() if r != "unassigned"),
+                     invalid_by_reason=by_reason)
     return Partial(keys=keys, table=table, pairs=pairs,
                    hex_res=recipe.hex.levels[0] if recipe.hex else None,
                    time_bin=recipe.time.levels[0] if recipe.time else None, accounting=acc)
@@ -190,6 +196,7 @@ def _check_not_empty(recipe: Recipe, label: str, input_rows: int, kept: int,
     if kept == sum(by_reason.values()):
         why = ", ".join(f"{n:,} by {r}" for r, n in by_reason.items())
         hint = {"coordinates": "check source.lat and source.lon (swapped? degrees?)",
+                "unassigned": "check that the boundaries cover the events",
                 "time": "check source.time and its format",
                 "key": "check the region and category columns for empty values"}
         main = max(by_reason, key=lambda r: by_reason[r])
@@ -296,7 +303,7 @@ def merge(recipe: Recipe, a: Partial, b: Partial) -> Partial:
     acc = Accounting(
         a.accounting.input_rows + b.accounting.input_rows,
         a.accounting.filtered_rows + b.accounting.filtered_rows,
-        a.accounting.invalid_rows + b.accounting.invalid_rows,
+        a.accounting.invalid_rows + b.accounting.invalid_rows,  # unassigned stays apart
         {k: a.accounting.invalid_by_reason.get(k, 0) + b.accounting.invalid_by_reason.get(k, 0)
          for k in sorted({*a.accounting.invalid_by_reason, *b.accounting.invalid_by_reason})})
     both = Partial(keys=a.keys, table=pl.concat([a.table, b.table], how="vertical_relaxed"),

@@ -171,10 +171,16 @@ def represented(df: pl.DataFrame) -> int:
 
 
 def accounting_block(*, input_rows: int, filtered_rows: int, invalid_rows: int,
-                     suppressed_rows: int, represented_rows: int) -> dict[str, int]:
-    return {"input_rows": input_rows, "filtered_rows": filtered_rows,
-            "invalid_rows": invalid_rows, "suppressed_rows": suppressed_rows,
-            "represented_rows": represented_rows}
+                     suppressed_rows: int, represented_rows: int,
+                     unassigned_rows: int | None = None) -> dict[str, int]:
+    """The accounting identity's terms; ``unassigned_rows`` (events outside every boundary
+    polygon) appears only for recipes that assign regions from boundaries."""
+    out = {"input_rows": input_rows, "filtered_rows": filtered_rows,
+           "invalid_rows": invalid_rows}
+    if unassigned_rows is not None:
+        out["unassigned_rows"] = unassigned_rows
+    out |= {"suppressed_rows": suppressed_rows, "represented_rows": represented_rows}
+    return out
 
 
 __all__: Sequence[str] = ["FORMAT", "encode", "inline_safe", "sort_rows", "payload_columns",

@@ -19,6 +19,8 @@ counts rows per code.
 from __future__ import annotations
 
 import re
+from pathlib import Path
+from typing import Any
 
 import polars as pl
 import polars_h3 as plh3
@@ -32,7 +34,7 @@ INVALID = "__invalid"
 
 # Reason codes of invalid rows, reported in manifests.
 VALID = 0
-INVALID_REASONS = {1: "coordinates", 2: "time", 3: "key"}
+INVALID_REASONS = {1: "coordinates", 2: "time", 3: "key", 4: "unassigned"}
 
 _AWARE_RE = re.compile(r"(Z|[+-]\d\d:?\d\d)$")
 
@@ -93,16 +95,21 @@ def _valid_coord(col: str, limit: float) -> pl.Expr:
     return c.is_not_null() & ~c.is_nan() & (c.abs() <= limit)
 
 
+def _boundaries(path: Path, id_property: str) -> Any:
+    from reduce import geo
+
+    return geo.load_boundaries(path, id_property)
+
+
 def scan_keys(recipe: Recipe, lf: pl.LazyFrame, label: str) -> tuple[list[pl.Expr], pl.Expr]:
     """Key expressions at the finest level, and the invalid-reason code expression.
 
     Key expressions are null on invalid rows, so all invalid rows collapse into a few groups.
+    Reasons are checked in order; the first failing check names the reason.
     """
     src = recipe.source
-    reason = pl.lit(VALID, dtype=pl.UInt8)
-    # Later conditions are checked first: the earliest failing check names the reason.
     checks: list[tuple[int, pl.Expr]] = []
-    if recipe.hex:
+    if recipe.needs_coordinates:
         assert src.lat is not None and src.lon is not None
         checks.append((1, _valid_coord(src.lat, 90.0) & _valid_coord(src.lon, 180.0)))
     time_e = None
@@ -110,11 +117,48 @@ def scan_keys(recipe: Recipe, lf: pl.LazyFrame, label: str) -> tuple[list[pl.Exp
         time_e = truncate(_time_expr(recipe, lf, label), recipe.time.levels[0],
                           recipe.time.zone)
         checks.append((2, time_e.is_not_null()))
-    key_cols = [c for c in ([recipe.region.column] if recipe.region else [])] + list(
-        recipe.categories)
-    if key_cols:
-        ok = pl.all_horizontal([pl.col(c).is_not_null() for c in key_cols])
-        checks.append((3, ok))
+    named: list[tuple[str, pl.Expr]] = []  # key name -> String expression (null = invalid)
+    unassigned: list[pl.Expr] = []  # null = outside every polygon
+    r = recipe.region
+    if r is not None and r.source is not None:
+        named.append((r.column, pl.col(r.source).cast(pl.String)))
+    elif r is not None and r.boundaries is not None:
+        from reduce import geo
+
+        assert src.lat is not None and src.lon is not None and r.id_property is not None
+        e = geo.assign_expr(src.lat, src.lon, _boundaries(r.boundaries, r.id_property))
+        if r.outside is not None:
+            e = e.fill_null(pl.lit(r.outside))
+        else:
+            unassigned.append(e)
+        named.append((r.column, e))
+    for c in recipe.category_sources:
+        named.append((c, pl.col(c).cast(pl.String)))
+    f = recipe.flow
+    if f is not None:
+        for end, name in ((f.origin, "origin"), (f.destination, "destination")):
+            if end.column is not None:
+                named.append((name, pl.col(end.column).cast(pl.String)))
+                continue
+            assert end.lat is not None and end.lon is not None
+            checks.append((1, _valid_coord(end.lat, 90.0) & _valid_coord(end.lon, 180.0)))
+            if f.hex_res is not None:
+                e = plh3.int_to_str(plh3.latlng_to_cell(
+                    pl.col(end.lat).cast(pl.Float64),  # type: ignore[arg-type]
+                    pl.col(end.lon).cast(pl.Float64),  # type: ignore[arg-type]
+                    f.hex_res))
+            else:
+                from reduce import geo
+
+                assert f.boundaries is not None and f.id_property is not None
+                e = geo.assign_expr(end.lat, end.lon, _boundaries(f.boundaries, f.id_property))
+                unassigned.append(e)
+            named.append((name, e))
+    if unassigned:
+        checks.append((4, pl.all_horizontal([u.is_not_null() for u in unassigned])))
+    if named:
+        checks.append((3, pl.all_horizontal([e.is_not_null() for _, e in named])))
+    reason = pl.lit(VALID, dtype=pl.UInt8)
     for code, ok in reversed(checks):
         reason = pl.when(~ok).then(pl.lit(code, dtype=pl.UInt8)).otherwise(reason)
     valid = reason == VALID
@@ -126,8 +170,8 @@ def scan_keys(recipe: Recipe, lf: pl.LazyFrame, label: str) -> tuple[list[pl.Exp
                                    pl.col(src.lon).cast(pl.Float64),  # type: ignore[arg-type]
                                    recipe.hex.levels[0])
         keys.append(pl.when(valid).then(cell).alias(HEX))
-    for c in key_cols:
-        keys.append(pl.when(valid).then(pl.col(c).cast(pl.String)).alias(c))
+    for name, e in named:
+        keys.append(pl.when(valid).then(e).alias(name))
     return keys, reason.alias(INVALID)
 
 

@@ -140,10 +140,14 @@ class Reducer:
     def accounting(self, level: Mapping[str, Any]) -> dict[str, int]:
         acc = self.partial().accounting
         lr = self.rows(level)
+        r = self.recipe
+        uses_boundaries = bool((r.region and r.region.boundaries)
+                               or (r.flow and r.flow.boundaries))
         return encode.accounting_block(
             input_rows=acc.input_rows, filtered_rows=acc.filtered_rows,
             invalid_rows=acc.invalid_rows, suppressed_rows=lr.suppressed_rows,
-            represented_rows=encode.represented(lr.frame))
+            represented_rows=encode.represented(lr.frame),
+            unassigned_rows=acc.unassigned_rows if uses_boundaries else None)
 
     def payload(self, level: Mapping[str, Any]) -> bytes:
         k = budget.level_key(level)

@@ -35,9 +35,9 @@ from reduce.sizes import MEASURES, Measure, parse_size
 
 FilterOp = Literal["in", "not_in", "range", "null", "not_null"]
 MeasureKind = Literal["count", "sum", "min", "max", "mean", "distinct"]
-Layout = Literal["columns", "rows", "csv"]
-AXES = ("hex", "time", "top", "digits")
-LAYOUTS: tuple[str, ...] = ("columns", "rows", "csv")
+Layout = Literal["columns", "rows", "csv", "geojson"]
+AXES = ("hex", "time", "top", "simplify", "coords", "digits")
+LAYOUTS: tuple[str, ...] = ("columns", "rows", "csv", "geojson")
 SOURCE_FORMATS = ("parquet", "csv", "ndjson")
 
 
@@ -110,7 +110,35 @@ class TimeKey:
 
 @dataclass(frozen=True, slots=True)
 class RegionKey:
-    column: str
+    """A region key: a source column, or the polygon of a GeoJSON file containing the event."""
+
+    column: str  # the key's name in partials and payloads
+    source: str | None = None  # the source column (None when from boundaries)
+    boundaries: Path | None = None
+    boundaries_display: str = ""
+    id_property: str | None = None
+    outside: str | None = None  # label for events outside every polygon; None: unassigned
+
+
+@dataclass(frozen=True, slots=True)
+class FlowEnd:
+    """One end of a flow: a source column, or a coordinate pair."""
+
+    column: str | None = None
+    lat: str | None = None
+    lon: str | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class FlowKey:
+    """Origin -> destination keys, as the category pair ``origin``, ``destination``."""
+
+    origin: FlowEnd
+    destination: FlowEnd
+    hex_res: int | None = None  # coordinate ends: H3 cells at this resolution
+    boundaries: Path | None = None  # coordinate ends: regions of this GeoJSON file
+    boundaries_display: str = ""
+    id_property: str | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -173,6 +201,8 @@ class Output:
     digits: tuple[int, ...]  # ladder of decimal digits for float columns, most first
     column_digits: tuple[tuple[str, int], ...]
     inline: bool
+    simplify: tuple[float, ...] = (0.0,)  # outline tolerance ladder (degrees), finest first
+    coordinate_digits: tuple[int, ...] = (6,)  # geometry decimals ladder, most first
 
 
 @dataclass(frozen=True, slots=True)
@@ -186,7 +216,8 @@ class Recipe:
     hex: HexKey | None
     time: TimeKey | None
     region: RegionKey | None
-    categories: tuple[str, ...]
+    categories: tuple[str, ...]  # category key names (for flows: origin, destination)
+    flow: FlowKey | None
     measures: tuple[MeasureSpec, ...]
     normalize: Normalize | None
     top: TopK | None
@@ -236,8 +267,22 @@ class Recipe:
             axes["time"] = tuple(b.text for b in self.time.levels)
         if self.top:
             axes["top"] = self.top.ks
+        if self.output.layout == "geojson":
+            if self.region and self.region.boundaries and not self.hex:
+                axes["simplify"] = self.output.simplify
+            axes["coords"] = self.output.coordinate_digits
         axes["digits"] = self.output.digits
         return axes
+
+    @property
+    def needs_coordinates(self) -> bool:
+        """Whether keys are computed from source.lat/source.lon."""
+        return bool(self.hex or (self.region and self.region.boundaries))
+
+    @property
+    def category_sources(self) -> tuple[str, ...]:
+        """Source columns read as categories (none for flows, whose keys are computed)."""
+        return () if self.flow else self.categories
 
     def finest_level(self) -> dict[str, Any]:
         return {axis: levels[0] for axis, levels in self.ladder().items()}
@@ -418,20 +463,23 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
         raise ctx.fail("source", "is required; add a [source] table with path = ...")
     src_doc = ctx.table(doc["source"], "source",
                         ("path", "format", "time", "lat", "lon", "time_zone", "filter"))
-    group_doc = ctx.table(doc.get("group", {}), "group", ("hex", "time", "region", "category"))
+    group_doc = ctx.table(doc.get("group", {}), "group",
+                          ("hex", "time", "region", "category", "flow"))
     if not group_doc:
         raise ctx.fail("group", "is empty; group by at least one of hex, time, region, category")
 
     # --- group keys --------------------------------------------------------------------------
     hex_key = _parse_hex(ctx, group_doc["hex"]) if "hex" in group_doc else None
     time_key = _parse_time(ctx, group_doc["time"]) if "time" in group_doc else None
-    region = None
-    if "region" in group_doc:
-        r = ctx.table(group_doc["region"], "group.region", ("column",))
-        col = ctx.string(r, "group.region", "column", required=True)
-        assert col is not None
-        region = RegionKey(col)
+    region = _parse_region(ctx, group_doc["region"], base) if "region" in group_doc else None
     categories: tuple[str, ...] = ()
+    flow = None
+    if "flow" in group_doc:
+        if "category" in group_doc:
+            raise ctx.fail("group.flow", "cannot be combined with group.category (the flow's "
+                           "origin and destination are its categories); drop one")
+        flow = _parse_flow(ctx, group_doc["flow"], base)
+        categories = ("origin", "destination")
     if "category" in group_doc:
         c = ctx.table(group_doc["category"], "group.category", ("column", "columns"))
         if ("column" in c) == ("columns" in c):
@@ -442,8 +490,15 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
                                         allow_single=False))
         if not categories:
             raise ctx.fail("group.category.columns", "is empty; list at least one column")
-
-    source = _parse_source(ctx, src_doc, base, hex_key is not None, time_key is not None)
+        for cname in categories:
+            if cname in ("time", "hex") or (region and cname == region.column):
+                raise ctx.fail("group.category", f"column {cname!r} has the name of another "
+                               "key; rename the column in the source")
+    if region and region.column in ("time", "hex"):
+        raise ctx.fail("group.region", f"the key name {region.column!r} is taken by another "
+                       "key; set group.region.name")
+    need_geo = hex_key is not None or bool(region and region.boundaries)
+    source = _parse_source(ctx, src_doc, base, need_geo, time_key is not None)
 
     # --- measures ----------------------------------------------------------------------------
     measures = _parse_measures(ctx, doc.get("measures"))
@@ -470,8 +525,15 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
                            f"names no measure or derived column"
                            f"{did_you_mean(col, [*names, *derived])}")
 
-    ladder_axes = [a for a, present in (("hex", hex_key), ("time", time_key), ("top", top),
-                                        ("digits", True)) if present]
+    geo = output.layout == "geojson"
+    if geo and not (hex_key or (region and region.boundaries)):
+        raise ctx.fail("output.layout", "geojson needs a geometry: group by hex or by a region "
+                       "from boundaries")
+    ladder_axes = [a for a, present in (
+        ("hex", hex_key), ("time", time_key), ("top", top),
+        ("simplify", geo and region is not None and region.boundaries is not None
+         and not hex_key),
+        ("coords", geo), ("digits", True)) if present]
     budget = (_parse_budget(ctx, doc["budget"], ladder_axes) if "budget" in doc else None)
 
     canonical = orjson.dumps(doc, option=orjson.OPT_SORT_KEYS, default=str)
@@ -482,7 +544,7 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
     return Recipe(
         name=name, file=file, content_hash=hashlib.sha256(canonical).hexdigest(),
         scan_hash=scan_hash, description=description, source=source, hex=hex_key,
-        time=time_key, region=region, categories=categories, measures=measures,
+        time=time_key, region=region, categories=categories, flow=flow, measures=measures,
         normalize=normalize, top=top, min_count=min_count, budget=budget, output=output,
         document=doc,
     )
@@ -499,6 +561,72 @@ def _levels(ctx: _Ctx, d: Mapping[str, Any], key: str, single: str) -> list[Any]
     if not levels:
         raise ctx.fail(f"{key}.levels", "is empty; list at least one level, finest first")
     return levels
+
+
+def _rel(base: Path, p: str) -> Path:
+    return Path(p) if Path(p).is_absolute() else base / p
+
+
+def _parse_region(ctx: _Ctx, doc: Any, base: Path) -> RegionKey:
+    r = ctx.table(doc, "group.region", ("column", "boundaries", "id", "name", "outside"))
+    if ("column" in r) == ("boundaries" in r):
+        raise ctx.fail("group.region", "give exactly one of column = \"...\" (a source column) "
+                       "or boundaries = \"file.geojson\" with id = \"property\"")
+    if "column" in r:
+        for k in ("id", "outside"):
+            if k in r:
+                raise ctx.fail(f"group.region.{k}", "applies to boundaries only")
+        col = ctx.string(r, "group.region", "column", required=True)
+        name = ctx.string(r, "group.region", "name", default=col)
+        assert col is not None and name is not None
+        return RegionKey(column=name, source=col)
+    path = ctx.string(r, "group.region", "boundaries", required=True)
+    idp = ctx.string(r, "group.region", "id", required=True)
+    name = ctx.string(r, "group.region", "name", default="region")
+    outside = ctx.string(r, "group.region", "outside")
+    assert path is not None and idp is not None and name is not None
+    return RegionKey(column=name, boundaries=_rel(base, path), boundaries_display=path,
+                     id_property=idp, outside=outside)
+
+
+def _flow_end(ctx: _Ctx, v: Any, key: str) -> FlowEnd:
+    if isinstance(v, str) and v:
+        return FlowEnd(column=v)
+    d = ctx.table(v, key, ("lat", "lon"))
+    lat = ctx.string(d, key, "lat", required=True)
+    lon = ctx.string(d, key, "lon", required=True)
+    return FlowEnd(lat=lat, lon=lon)
+
+
+def _parse_flow(ctx: _Ctx, doc: Any, base: Path) -> FlowKey:
+    d = ctx.table(doc, "group.flow", ("origin", "destination", "hex", "boundaries", "id"))
+    for k in ("origin", "destination"):
+        if k not in d:
+            raise ctx.fail(f"group.flow.{k}", "is required: a column name, or "
+                           "{ lat = \"...\", lon = \"...\" }")
+    o = _flow_end(ctx, d["origin"], "group.flow.origin")
+    t = _flow_end(ctx, d["destination"], "group.flow.destination")
+    if (o.column is None) != (t.column is None):
+        raise ctx.fail("group.flow", "origin and destination must both be columns or both be "
+                       "coordinates")
+    if o.column is not None:
+        for k in ("hex", "boundaries", "id"):
+            if k in d:
+                raise ctx.fail(f"group.flow.{k}", "applies to coordinate ends only")
+        return FlowKey(o, t)
+    if ("hex" in d) == ("boundaries" in d):
+        raise ctx.fail("group.flow", "coordinate ends need exactly one of hex = <resolution> "
+                       "or boundaries = \"file.geojson\" with id = \"property\"")
+    if "hex" in d:
+        v = d["hex"]
+        if isinstance(v, bool) or not isinstance(v, int) or not 0 <= v <= 15:
+            raise ctx.fail("group.flow.hex", f"{_short(v)} is not an H3 resolution; use an "
+                           "integer 0..15")
+        return FlowKey(o, t, hex_res=v)
+    path = ctx.string(d, "group.flow", "boundaries", required=True)
+    idp = ctx.string(d, "group.flow", "id", required=True)
+    assert path is not None
+    return FlowKey(o, t, boundaries=_rel(base, path), boundaries_display=path, id_property=idp)
 
 
 def _parse_hex(ctx: _Ctx, doc: Any) -> HexKey:
@@ -843,7 +971,8 @@ def _parse_budget(ctx: _Ctx, doc: Any, axes: Sequence[str]) -> Budget:
     if on not in MEASURES:
         raise ctx.fail("budget.on", f"{on!r} is not a measure{did_you_mean(on, MEASURES)}; "
                        "use raw, gzip or brotli")
-    default_order = [a for a in ("top", "time", "hex", "digits") if a in axes]
+    default_order = [a for a in ("simplify", "coords", "top", "time", "hex", "digits")
+                     if a in axes]
     order = ctx.str_list(d.get("order", default_order), "budget.order")
     for a in order:
         if a not in axes:
@@ -855,7 +984,8 @@ def _parse_budget(ctx: _Ctx, doc: Any, axes: Sequence[str]) -> Budget:
 
 
 def _parse_output(ctx: _Ctx, doc: Any, base: Path) -> Output:
-    d = ctx.table(doc, "output", ("path", "layout", "digits", "column_digits", "inline"))
+    d = ctx.table(doc, "output", ("path", "layout", "digits", "column_digits", "inline",
+                                  "simplify", "coordinate_digits"))
     p = ctx.string(d, "output", "path")
     path = None if p is None else (Path(p) if Path(p).is_absolute() else base / p)
     if path is not None and path.suffix == "":
@@ -886,4 +1016,37 @@ def _parse_output(ctx: _Ctx, doc: Any, base: Path) -> Output:
         raise ctx.fail("output.inline", "must be true or false")
     if inline and layout == "csv":
         raise ctx.fail("output.inline", "applies to JSON layouts only")
-    return Output(path, layout, digits, column_digits, inline)  # type: ignore[arg-type]
+    simplify: tuple[float, ...] = (0.0,)
+    coords: tuple[int, ...] = (6,)
+    if "simplify" in d or "coordinate_digits" in d:
+        if layout != "geojson":
+            k = "simplify" if "simplify" in d else "coordinate_digits"
+            raise ctx.fail(f"output.{k}", "applies to layout = \"geojson\" only")
+    if "simplify" in d:
+        raw = d["simplify"] if isinstance(d["simplify"], list) else [d["simplify"]]
+        if not raw:
+            raise ctx.fail("output.simplify", "is empty; give a tolerance in degrees or a list, "
+                           "finest (smallest) first")
+        vals = []
+        for v in raw:
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not 0 <= v <= 1:
+                raise ctx.fail("output.simplify", f"{_short(v)} is not a tolerance; use degrees "
+                               "between 0 and 1, e.g. 0.001")
+            vals.append(float(v))
+        for a, b in zip(vals, vals[1:]):
+            if b <= a:
+                raise ctx.fail("output.simplify", f"must go from finest to coarsest (increasing "
+                               f"tolerance), but {a} is followed by {b}")
+        simplify = tuple(vals)
+    if "coordinate_digits" in d:
+        raw = d["coordinate_digits"]
+        raw = raw if isinstance(raw, list) else [raw]
+        if not raw:
+            raise ctx.fail("output.coordinate_digits", "is empty")
+        coords = tuple(ctx.integer(v, "output.coordinate_digits", lo=0, hi=9) for v in raw)
+        for a, b in zip(coords, coords[1:]):
+            if b >= a:
+                raise ctx.fail("output.coordinate_digits", f"must go from most decimals to "
+                               f"fewest, but {a} is followed by {b}")
+    return Output(path, layout, digits, column_digits, inline,  # type: ignore[arg-type]
+                  simplify, coords)

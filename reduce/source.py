@@ -170,10 +170,15 @@ def _is_key(dtype: pl.DataType) -> bool:
 def needed_columns(recipe: Recipe) -> list[str]:
     src = recipe.source
     cols: list[str] = []
-    for c in (src.time if recipe.time else None, src.lat if recipe.hex else None,
-              src.lon if recipe.hex else None,
-              recipe.region.column if recipe.region else None, *recipe.categories,
-              *(m.column for m in recipe.measures), *(f.column for f in src.filters)):
+    geo = recipe.needs_coordinates
+    flow_cols: list[str | None] = []
+    if recipe.flow:
+        for end in (recipe.flow.origin, recipe.flow.destination):
+            flow_cols += [end.column, end.lat, end.lon]
+    for c in (src.time if recipe.time else None, src.lat if geo else None,
+              src.lon if geo else None,
+              recipe.region.source if recipe.region else None, *recipe.category_sources,
+              *flow_cols, *(m.column for m in recipe.measures), *(f.column for f in src.filters)):
         if c is not None and c not in cols:
             cols.append(c)
     return cols
@@ -200,17 +205,29 @@ def check_schema(recipe: Recipe, schema: pl.Schema, label: str) -> None:
         d = need(src.time, "source.time")
         if not _is_time(d):
             raise wrong(src.time, "source.time", d, "a datetime, date or ISO 8601 text")
-    if recipe.hex:
-        for col, key in ((src.lat, "source.lat"), (src.lon, "source.lon")):
-            assert col is not None
-            d = need(col, key)
-            if not _is_numeric(d):
-                raise wrong(col, key, d, "numbers (decimal degrees)")
-    if recipe.region:
-        d = need(recipe.region.column, "group.region.column")
+    coords: list[tuple[str | None, str]] = []
+    if recipe.needs_coordinates:
+        coords += [(src.lat, "source.lat"), (src.lon, "source.lon")]
+    if recipe.flow:
+        for end, name in ((recipe.flow.origin, "origin"), (recipe.flow.destination,
+                                                          "destination")):
+            if end.column is not None:
+                d = need(end.column, f"group.flow.{name}")
+                if not _is_key(d):
+                    raise wrong(end.column, f"group.flow.{name}", d, "text or integers")
+            else:
+                coords += [(end.lat, f"group.flow.{name}.lat"),
+                           (end.lon, f"group.flow.{name}.lon")]
+    for col, key in coords:
+        assert col is not None
+        d = need(col, key)
+        if not _is_numeric(d):
+            raise wrong(col, key, d, "numbers (decimal degrees)")
+    if recipe.region and recipe.region.source:
+        d = need(recipe.region.source, "group.region.column")
         if not _is_key(d):
-            raise wrong(recipe.region.column, "group.region.column", d, "text or integers")
-    for c in recipe.categories:
+            raise wrong(recipe.region.source, "group.region.column", d, "text or integers")
+    for c in recipe.category_sources:
         d = need(c, "group.category")
         if not _is_key(d):
             raise wrong(c, "group.category", d, "text, integers or booleans")

@@ -119,7 +119,7 @@ BAD = [
      "recipe.toml: source.filter[0]: min 5 is above max 2; swap them"),
     ("bad layout", ('path = "out/hexmap.json"', 'path = "out/hexmap.json"\nlayout = "colums"'),
      "recipe.toml: output.layout: 'colums' is not a layout (did you mean 'columns'?); use one "
-     "of columns, rows, csv"),
+     "of columns, rows, csv, geojson"),
     ("digits ladder not decreasing", ('path = "out/hexmap.json"',
                                       'path = "out/hexmap.json"\ndigits = [1, 2]'),
      "recipe.toml: output.digits: must go from most decimals to fewest, but 1 is followed by "
