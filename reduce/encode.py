@@ -13,7 +13,7 @@ Encoding is deterministic: the same rows give the same bytes.
 from __future__ import annotations
 
 import io
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from typing import Any
 
 import orjson
@@ -26,6 +26,7 @@ from reduce.keys import HEX, TIME
 from reduce.recipe import Recipe
 
 FORMAT = "reduce.columns/1"
+GEOJSON_FORMAT = "reduce.geojson/1"  # our foreign member in GeoJSON payloads (RFC 7946 §6.1)
 MAX_SAFE_INT = 2**53 - 1
 
 # Characters that could end a <script> element or break a JavaScript string literal when a
@@ -122,11 +123,25 @@ def inline_safe(data: bytes) -> bytes:
 
 def encode(recipe: Recipe, df: pl.DataFrame, *, level: Mapping[str, Any],
            accounting: Mapping[str, int], digits: int,
-           meta: Mapping[str, Any] | None = None) -> bytes:
+           meta: Mapping[str, Any] | None = None,
+           geometry: Callable[[pl.DataFrame], list[Any]] | None = None) -> bytes:
     """Encode finalized, sorted rows in the recipe's layout."""
     plain = _plain(recipe, df, digits)
     _check_ints(plain, recipe)
     layout = recipe.output.layout
+    if layout == "geojson":
+        if geometry is None:
+            raise ValueError("the geojson layout needs a geometry provider")
+        from reduce import geojson
+
+        geoms = geometry(plain)
+        props = {c: plain.get_column(c).to_list() for c in plain.columns}
+        extra = {"reduce": {"format": GEOJSON_FORMAT, "recipe": recipe.name,
+                            "level": dict(level), "rows": plain.height,
+                            "accounting": dict(accounting), **({"meta": dict(meta)}
+                                                               if meta else {})}}
+        body = geojson.feature_collection(geoms, props, extra=extra)
+        return inline_safe(body) if recipe.output.inline else body
     if layout == "csv":
         buf = io.BytesIO()
         plain.write_csv(buf, line_terminator="\n")

@@ -76,6 +76,9 @@ class Reducer:
         self._rows: dict[tuple[Any, ...], LevelRows] = {}
         self._payloads: dict[tuple[Any, ...], bytes] = {}
         self._den: pl.DataFrame | None = None
+        self._hex_geoms: dict[int, dict[str, Any]] = {}
+        self._region_geoms: dict[tuple[float, int], dict[str, Any]] = {}
+        self._boundaries: Any = None
         n = recipe.normalize
         if n is not None and n.denominators is not None:
             self._den = normalize.load_denominators(n.denominators)
@@ -161,10 +164,49 @@ class Reducer:
                 meta["rest"] = r.top.rest
             if r.normalize and r.normalize.rate_measures:
                 meta["per"] = r.normalize.per
+            geometry = self._geometry(level) if r.output.layout == "geojson" else None
             self._payloads[k] = encode.encode(r, lr.frame, level=level,
                                               accounting=self.accounting(level),
-                                              digits=int(level["digits"]), meta=meta)
+                                              digits=int(level["digits"]), meta=meta,
+                                              geometry=geometry)
         return self._payloads[k]
+
+    def _geometry(self, level: Mapping[str, Any]) -> Callable[[pl.DataFrame], list[Any]]:
+        """A function giving each payload row its GeoJSON geometry at this level."""
+        from reduce import geojson
+
+        r = self.recipe
+        coords = int(level.get("coords", r.output.coordinate_digits[0]))
+        if r.hex:
+            cells: dict[str, Any] = self._hex_geoms.setdefault(coords, {})
+
+            def hexes(plain: pl.DataFrame) -> list[Any]:
+                out = []
+                for c in plain.get_column("hex").to_list():
+                    g = cells.get(c)
+                    if g is None:
+                        g = cells[c] = geojson.hex_polygon(c, coords)
+                    out.append(g)
+                return out
+
+            return hexes
+        assert r.region is not None and r.region.boundaries is not None
+        tol = float(level.get("simplify", 0.0))
+        key = (tol, coords)
+        if key not in self._region_geoms:
+            from reduce import geo, topology
+
+            assert r.region.id_property is not None
+            b = self._boundaries or geo.load_boundaries(r.region.boundaries,
+                                                        r.region.id_property)
+            self._boundaries = b
+            shapes = topology.simplify_shared(b, tol) if tol > 0 else b.geoms
+            shapes = topology.quantize(shapes, coords)
+            self._region_geoms[key] = {i: geojson.polygon_geometry(g, coords)
+                                       for i, g in zip(b.ids, shapes)}
+        by_id = self._region_geoms[key]
+        col = r.region.column
+        return lambda plain: [by_id.get(v) for v in plain.get_column(col).to_list()]
 
     def candidate(self, level: Mapping[str, Any], *, exact: bool, on: Measure | None = None,
                   limit: int | None = None) -> budget.Candidate:
@@ -338,7 +380,8 @@ class RunResult:
 
 def output_path(recipe: Recipe, out_dir: Path | None) -> Path:
     """Where a recipe's payload goes: ``--out DIR`` wins over ``output.path``."""
-    ext = {"columns": ".json", "rows": ".json", "csv": ".csv"}[recipe.output.layout]
+    ext = {"columns": ".json", "rows": ".json", "csv": ".csv",
+           "geojson": ".geojson"}[recipe.output.layout]
     if out_dir is not None:
         name = recipe.output.path.name if recipe.output.path else f"{recipe.name}{ext}"
         return resolve_output(Path(out_dir), name)
