@@ -77,6 +77,9 @@ class Partial:
     hex_res: int | None
     time_bin: TimeBin | None
     accounting: Accounting
+    # distinct measure name -> its sorted unique values; a pair's __v indexes into it, so
+    # ids of two partials can be translated to one shared dictionary when they merge
+    values: dict[str, pl.Series] = field(default_factory=dict)
 
     @property
     def valid_rows(self) -> int:
@@ -158,6 +161,7 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
     valid = grouped.filter(pl.col(INVALID) == 0).drop(INVALID)
     present = [c for c in valid.columns if c.startswith("__") and c not in dnames]
     pairs: dict[str, pl.DataFrame] = {}
+    values: dict[str, pl.Series] = {}
     if dnames:
         # One row per finest group; each group's distinct values become (group, value) pairs.
         table = valid.group_by(list(keys)).agg(
@@ -168,8 +172,10 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
             exploded = table.select(GROUP, pl.col(dn).alias(PAIR)).explode(PAIR).drop_nulls(PAIR)
             # Values become dense integer ids: only their identity matters for counting, and
             # (group, id) pairs pack into one integer for fast de-duplication in roll-ups.
-            ids = exploded.get_column(PAIR).rank("dense").cast(pl.UInt32) - 1
+            vals = exploded.get_column(PAIR).unique().sort()
+            ids = vals.search_sorted(exploded.get_column(PAIR)).cast(pl.UInt32)
             pairs[m.name] = _unique_pairs(exploded.get_column(GROUP).cast(pl.UInt32), ids)
+            values[m.name] = vals
         table = table.drop([GROUP, *dnames])
     else:
         table = valid
@@ -179,7 +185,7 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
     acc = Accounting(input_rows=input_rows, filtered_rows=input_rows - kept,
                      invalid_rows=sum(n for r, n in by_reason.items() if r != "unassigned"),
                      invalid_by_reason=by_reason)
-    return Partial(keys=keys, table=table, pairs=pairs,
+    return Partial(keys=keys, table=table, pairs=pairs, values=values,
                    hex_res=recipe.hex.levels[0] if recipe.hex else None,
                    time_bin=recipe.time.levels[0] if recipe.time else None, accounting=acc)
 
@@ -236,7 +242,8 @@ def _regrouped(recipe: Recipe, p: Partial, mapped: pl.DataFrame,
     lookup = pl.Series(GROUP, remap)
     pairs = {name: _unique_pairs(lookup.gather(pt.get_column(GROUP)), pt.get_column(PAIR))
              for name, pt in p.pairs.items()}
-    return Partial(keys=tuple(keep), table=grouped.drop(ROW), pairs=pairs, hex_res=p.hex_res,
+    return Partial(keys=tuple(keep), table=grouped.drop(ROW), pairs=pairs, values=p.values,
+                   hex_res=p.hex_res,
                    time_bin=p.time_bin, accounting=p.accounting)
 
 
@@ -298,8 +305,21 @@ def merge(recipe: Recipe, a: Partial, b: Partial) -> Partial:
     if a.keys != b.keys or a.hex_res != b.hex_res or a.time_bin != b.time_bin:
         raise ValueError("partials of different levels cannot be merged; roll up first")
     offset = a.table.height
-    pairs = {k: pl.concat([a.pairs[k], b.pairs[k].with_columns(
-        (pl.col(GROUP) + offset).cast(pl.UInt32))], how="vertical_relaxed") for k in a.pairs}
+    pairs: dict[str, pl.DataFrame] = {}
+    values: dict[str, pl.Series] = {}
+    for k in a.pairs:
+        # Value ids are positions in each partial's own sorted dictionary: translate both
+        # sides to the union dictionary before the pairs are combined.
+        va, vb = a.values[k], b.values[k].cast(a.values[k].dtype)
+        union = pl.concat([va, vb]).unique().sort()
+        ra = union.search_sorted(va).cast(pl.UInt32)
+        rb = union.search_sorted(vb).cast(pl.UInt32)
+        pa, pb = a.pairs[k], b.pairs[k]
+        pairs[k] = pl.DataFrame({
+            GROUP: pl.concat([pa.get_column(GROUP).cast(pl.UInt32),
+                              (pb.get_column(GROUP).cast(pl.UInt32) + offset)]),
+            PAIR: pl.concat([ra.gather(pa.get_column(PAIR)), rb.gather(pb.get_column(PAIR))])})
+        values[k] = union
     acc = Accounting(
         a.accounting.input_rows + b.accounting.input_rows,
         a.accounting.filtered_rows + b.accounting.filtered_rows,
@@ -307,7 +327,8 @@ def merge(recipe: Recipe, a: Partial, b: Partial) -> Partial:
         {k: a.accounting.invalid_by_reason.get(k, 0) + b.accounting.invalid_by_reason.get(k, 0)
          for k in sorted({*a.accounting.invalid_by_reason, *b.accounting.invalid_by_reason})})
     both = Partial(keys=a.keys, table=pl.concat([a.table, b.table], how="vertical_relaxed"),
-                   pairs=pairs, hex_res=a.hex_res, time_bin=a.time_bin, accounting=acc)
+                   pairs=pairs, values=values, hex_res=a.hex_res, time_bin=a.time_bin,
+                   accounting=acc)
     return regroup(recipe, both, [])
 
 

@@ -48,9 +48,11 @@ def load(key: str) -> Partial | None:
         table = pl.read_parquet(d / "table.parquet")
         pairs = {name: pl.read_parquet(d / f"pairs-{i}.parquet")
                  for i, name in enumerate(meta["pairs"])}
+        values = {name: pl.read_parquet(d / f"values-{i}.parquet").to_series()
+                  for i, name in enumerate(meta["pairs"])}
         acc = Accounting(**meta["accounting"])
         tb = parse_time_bin(meta["time_bin"]) if meta["time_bin"] else None
-        return Partial(keys=tuple(meta["keys"]), table=table, pairs=pairs,
+        return Partial(keys=tuple(meta["keys"]), table=table, pairs=pairs, values=values,
                        hex_res=meta["hex_res"], time_bin=tb, accounting=acc)
     except (OSError, KeyError, TypeError, ValueError, orjson.JSONDecodeError,
             pl.exceptions.PolarsError):
@@ -68,6 +70,8 @@ def store(key: str, p: Partial) -> Path | None:
         names = sorted(p.pairs)
         for i, name in enumerate(names):
             p.pairs[name].write_parquet(tmp / f"pairs-{i}.parquet", compression="zstd")
+            p.values[name].to_frame("v").write_parquet(tmp / f"values-{i}.parquet",
+                                                       compression="zstd")
         meta = {"keys": list(p.keys), "hex_res": p.hex_res,
                 "time_bin": p.time_bin.text if p.time_bin else None, "pairs": names,
                 "accounting": {"input_rows": p.accounting.input_rows,

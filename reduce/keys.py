@@ -71,6 +71,12 @@ def _time_expr(recipe: Recipe, lf: pl.LazyFrame, label: str) -> pl.Expr:
     return e.dt.convert_time_zone(zone)
 
 
+def _fixed_offset(zone: str) -> bool:
+    """Zones whose offset never changes (UTC and the IANA ``Etc/`` zones)."""
+    return zone in ("UTC", "GMT", "UCT", "Zulu", "Universal", "Greenwich") or zone.startswith(
+        "Etc/")
+
+
 def truncate(expr: pl.Expr, b: TimeBin, zone: str) -> pl.Expr:
     """The start of the bin of width ``b`` on the local clock of ``zone``.
 
@@ -79,8 +85,19 @@ def truncate(expr: pl.Expr, b: TimeBin, zone: str) -> pl.Expr:
     midnight happens twice (a DST change at midnight) the earlier one, where it does not
     happen at all the first local time that exists (00:30 or 01:00).
     """
-    if b.unit in ("m", "h"):
+    if _fixed_offset(zone):
+        # No DST and no offset changes: wall-clock truncation is exact (weeks on Monday).
         return expr.dt.truncate(b.text)
+    if b.unit in ("m", "h"):
+        start = expr.dt.truncate(b.text)
+        # Where the bin's wall-clock start falls in a DST gap, truncate reads it with the
+        # offset from before the gap, which can land after the event (Pacific/Chatham,
+        # 2024-09-29: an event at 03:45 +13:45 gets 04:00 +13:45). The bin then starts at the
+        # first of its wall times that exists (offsets change in steps of 15 minutes).
+        wall = expr.dt.replace_time_zone(None).dt.truncate(b.text)
+        firsts = [(wall + pl.duration(minutes=m)).dt.replace_time_zone(
+            zone, ambiguous="earliest", non_existent="null") for m in range(0, 121, 15)]
+        return pl.when(start > expr).then(pl.coalesce(firsts)).otherwise(start)
     day = expr.dt.date()
     if b.unit != "d":
         day = day.dt.truncate(b.text)
