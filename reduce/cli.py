@@ -136,7 +136,7 @@ def run_cmd(recipes: tuple[Path, ...], out_dir: Path | None, write_anyway: bool,
     summaries = []
     with _progress(quiet or as_json) as progress:
         for rec in loaded:
-            res = run(rec, out_dir=out_dir, budget_max=budget_max, on=on,
+            res = run(rec, out_dir=out_dir, budget=budget_max, on=on,
                       write_anyway=write_anyway, use_cache=not no_cache, progress=progress)
             if as_json:
                 summaries.append(report.run_json(res))
@@ -173,7 +173,7 @@ def ladder_cmd(recipe: Path, order: str | None, every: bool, as_json: bool,
     if order is not None and not order_list:
         raise RecipeError("--order: list axes separated by commas, e.g. --order top,time,hex")
     with _progress(quiet or as_json) as progress:
-        res = ladder(recipe, budget_max=budget_max, on=on, order=order_list,
+        res = ladder(recipe, budget=budget_max, on=on, order=order_list,
                      overrides=_overrides(sets), use_cache=not no_cache, every_level=every,
                      progress=progress)
     if as_json:

@@ -21,7 +21,8 @@ from typing import Any
 
 import polars as pl
 
-from reduce import aggregate, budget, cache, encode, normalize, prune
+from reduce import aggregate, cache, encode, normalize, prune
+from reduce import budget as bsearch
 from reduce.aggregate import Partial
 from reduce.errors import BudgetError, RecipeError
 from reduce.normalize import NormalizeReport
@@ -50,9 +51,9 @@ class FitResult:
     recipe: Recipe
     level: dict[str, Any] | None  # None when nothing fits
     payload: bytes | None
-    candidates: list[budget.Candidate]
+    candidates: list[bsearch.Candidate]
     frontier: pl.DataFrame
-    chosen: budget.Candidate | None
+    chosen: bsearch.Candidate | None
     budget: Budget | None
     rows: LevelRows | None = None
     source: OpenSource | None = None
@@ -153,7 +154,7 @@ class Reducer:
             unassigned_rows=acc.unassigned_rows if uses_boundaries else None)
 
     def payload(self, level: Mapping[str, Any]) -> bytes:
-        k = budget.level_key(level)
+        k = bsearch.level_key(level)
         if k not in self._payloads:
             r = self.recipe
             lr = self.rows(level)
@@ -209,10 +210,10 @@ class Reducer:
         return lambda plain: [by_id.get(v) for v in plain.get_column(col).to_list()]
 
     def candidate(self, level: Mapping[str, Any], *, exact: bool, on: Measure | None = None,
-                  limit: int | None = None) -> budget.Candidate:
+                  limit: int | None = None) -> bsearch.Candidate:
         data = self.payload(level)
         lr = self.rows(level)
-        c = budget.Candidate(level=dict(level), rows=lr.frame.height,
+        c = bsearch.Candidate(level=dict(level), rows=lr.frame.height,
                              elements=encode.elements(lr.frame), raw=len(data))
         if exact or on is None or limit is None:
             s = measure_all(data)
@@ -279,7 +280,7 @@ def _overrides_of(recipe: Recipe) -> dict[str, str]:
     return dict(recipe.overrides)
 
 
-def fit(recipe: Recipe | str | Path, *, budget_max: str | int | None = None,
+def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
         on: str | None = None, order: Sequence[str] | None = None,
         overrides: Mapping[str, str] | None = None, use_cache: bool = True,
         exact: bool = False, every_level: bool = False, progress: Progress | None = None,
@@ -291,19 +292,19 @@ def fit(recipe: Recipe | str | Path, *, budget_max: str | int | None = None,
     otherwise only the budget's measure is computed, stopping early once over the limit.
     ``every_level`` evaluates every combination of levels instead of searching.
     """
-    r = _with_budget(_as_recipe(recipe, overrides), budget_max, on, order)
+    r = _with_budget(_as_recipe(recipe, overrides), budget, on, order)
     red = reducer if reducer is not None and _same_levels(reducer.recipe, r) else Reducer(
         r, use_cache=use_cache, progress=progress)
     ladder_axes = r.ladder()
     axes = list(ladder_axes)
     b = r.budget
-    cands: dict[tuple[Any, ...], budget.Candidate] = {}
+    cands: dict[tuple[Any, ...], bsearch.Candidate] = {}
 
-    def evaluate(level: dict[str, Any], *, force_exact: bool = False) -> budget.Candidate:
-        k = budget.level_key(level)
+    def evaluate(level: dict[str, Any], *, force_exact: bool = False) -> bsearch.Candidate:
+        k = bsearch.level_key(level)
         c = cands.get(k)
         if c is None or (force_exact and c.gzip is None or force_exact and c.brotli is None):
-            red.progress(f"measuring {budget.describe_level(level)}")
+            red.progress(f"measuring {bsearch.describe_level(level)}")
             c = red.candidate(level, exact=exact or force_exact,
                               on=b.on if b else None, limit=b.max if b else None)
             cands[k] = c
@@ -311,7 +312,7 @@ def fit(recipe: Recipe | str | Path, *, budget_max: str | int | None = None,
 
     chosen_level: dict[str, Any] | None
     if every_level:
-        for lv in budget.all_levels(ladder_axes):
+        for lv in bsearch.all_levels(ladder_axes):
             evaluate(lv)
     if b is None:
         chosen_level = r.finest_level()
@@ -319,7 +320,7 @@ def fit(recipe: Recipe | str | Path, *, budget_max: str | int | None = None,
         if every_level:
             pass
     else:
-        res = budget.search(ladder_axes, b.order, lambda lv: bool(evaluate(lv).fits))
+        res = bsearch.search(ladder_axes, b.order, lambda lv: bool(evaluate(lv).fits))
         chosen_level = res.chosen
         if chosen_level is None:
             evaluate(res.coarsest, force_exact=True)
@@ -328,7 +329,7 @@ def fit(recipe: Recipe | str | Path, *, budget_max: str | int | None = None,
         chosen = evaluate(chosen_level, force_exact=True)
         chosen.chosen = True
     candidates = list(cands.values())
-    frontier = budget.frontier_frame(candidates, axes)
+    frontier = bsearch.frontier_frame(candidates, axes)
     result = FitResult(recipe=r, level=chosen_level, candidates=candidates, frontier=frontier,
                        chosen=chosen, budget=b,
                        payload=red.payload(chosen_level) if chosen_level else None,
@@ -359,8 +360,8 @@ def smallest_message(result: FitResult) -> str:
     assert b is not None
     coarsest = {a: lv[-1] for a, lv in result.recipe.ladder().items()}
     smallest = next(c for c in result.candidates
-                    if budget.level_key(c.level) == budget.level_key(coarsest))
-    return budget.nothing_fits_message(_recipe_label(result.recipe), b.max, b.on, smallest,
+                    if bsearch.level_key(c.level) == bsearch.level_key(coarsest))
+    return bsearch.nothing_fits_message(_recipe_label(result.recipe), b.max, b.on, smallest,
                                        list(result.recipe.ladder()))
 
 
@@ -435,7 +436,7 @@ def build_manifest(result: FitResult, path: Path) -> dict[str, Any]:
 
 
 def run(recipe: Recipe | str | Path, *, out_dir: Path | None = None,
-        budget_max: str | int | None = None, on: str | None = None,
+        budget: str | int | None = None, on: str | None = None,
         overrides: Mapping[str, str] | None = None, write_anyway: bool = False,
         use_cache: bool = True, progress: Progress | None = None) -> RunResult:
     """Fit a recipe and publish its payload and manifest (see :func:`fit`).
@@ -448,7 +449,7 @@ def run(recipe: Recipe | str | Path, *, out_dir: Path | None = None,
     from reduce.publish import check_target
 
     check_target(path)  # fail before the scan, not after it
-    result = fit(r, budget_max=budget_max, on=on, use_cache=use_cache, progress=progress)
+    result = fit(r, budget=budget, on=on, use_cache=use_cache, progress=progress)
     if result.level is None:
         msg = smallest_message(result)
         if not write_anyway:
@@ -457,7 +458,7 @@ def run(recipe: Recipe | str | Path, *, out_dir: Path | None = None,
         red = result.reducer
         assert red is not None
         forced = next(c for c in result.candidates
-                      if budget.level_key(c.level) == budget.level_key(coarsest))
+                      if bsearch.level_key(c.level) == bsearch.level_key(coarsest))
         forced.chosen = True
         result = replace(result, level=coarsest, chosen=forced, payload=red.payload(coarsest),
                          rows=red.rows(coarsest), accounting=red.accounting(coarsest))

@@ -109,7 +109,7 @@ def hex_reducer(tmp_path_factory: pytest.TempPathFactory) -> Reducer:
 @settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 def test_chosen_level_fits_and_the_next_finer_does_not(hex_reducer: Reducer, budget: int,
                                                        on: str) -> None:
-    res = reduce.fit(hex_reducer.recipe, budget_max=budget, on=on, reducer=hex_reducer)
+    res = reduce.fit(hex_reducer.recipe, budget=budget, on=on, reducer=hex_reducer)
     ladder = res.recipe.ladder()
     if res.level is None:
         coarsest = {a: v[-1] for a, v in ladder.items()}
@@ -130,7 +130,7 @@ def test_payload_level_and_manifest_record_the_choice(tmp_path: Path,
                                                       monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.chdir(tmp_path)
     recipe = project(tmp_path)
-    out = reduce.run(recipe, budget_max="15KB", use_cache=False)
+    out = reduce.run(recipe, budget="15KB", use_cache=False)
     payload = json.loads(out.path.read_bytes())  # type: ignore[union-attr]
     manifest = out.manifest
     assert manifest is not None
@@ -147,8 +147,8 @@ def test_refit_with_another_budget_reuses_the_cached_partial(tmp_path: Path,
                                                             ) -> None:
     monkeypatch.setenv("REDUCE_CACHE_DIR", str(tmp_path / "cache"))
     recipe = project(tmp_path)
-    first = reduce.ladder(recipe, budget_max="30KB")
-    again = reduce.ladder(recipe, budget_max="10KB", on="brotli")
+    first = reduce.ladder(recipe, budget="30KB")
+    again = reduce.ladder(recipe, budget="10KB", on="brotli")
     assert not first.partial_from_cache
     assert again.partial_from_cache
     # Changing the source invalidates the cache entry.
@@ -156,13 +156,13 @@ def test_refit_with_another_budget_reuses_the_cached_partial(tmp_path: Path,
     import os
 
     os.utime(tmp_path / "events.parquet", ns=(1, 1))
-    third = reduce.ladder(recipe, budget_max="10KB")
+    third = reduce.ladder(recipe, budget="10KB")
     assert not third.partial_from_cache
 
 
 def test_frontier_is_a_polars_frame_with_one_row_per_candidate(tmp_path: Path) -> None:
     recipe = project(tmp_path)
-    res = reduce.fit(recipe, budget_max="12KB", use_cache=False)
+    res = reduce.fit(recipe, budget="12KB", use_cache=False)
     f = res.frontier
     assert f.columns == ["hex", "time", "top", "digits", "rows", "elements", "raw", "gzip",
                          "brotli", "fits", "chosen"]
