@@ -86,6 +86,21 @@ class Partial:
         return int(self.table.get_column(N).sum()) if self.table.height else 0
 
 
+# Float sums are kept as Int128 fixed-point numbers with 40 fractional bits: integer addition
+# is associative, so the result does not depend on the order in which threads add rows up,
+# and payloads stay byte-identical across runs and core counts. Each value is rounded to
+# 2^-40 (about 9e-13); values beyond ±2^86 are refused.
+FIXED_SCALE = float(2**40)
+
+
+def _fsum(m: MeasureSpec) -> str:
+    return f"__fsum_{m.name}"
+
+
+def _ovf(m: MeasureSpec) -> str:
+    return f"__ovf_{m.name}"
+
+
 def _scan_aggs(measures: Sequence[MeasureSpec], floats: set[str]) -> list[pl.Expr]:
     """Partial aggregations over source rows; ``floats`` names the float measure inputs."""
     aggs = [pl.len().cast(pl.Int64).alias(N)]
@@ -93,9 +108,13 @@ def _scan_aggs(measures: Sequence[MeasureSpec], floats: set[str]) -> list[pl.Exp
         if m.column is None:
             continue
         c = pl.col(m.column)
-        if m.kind in ("sum", "mean"):
-            aggs.append(c.cast(pl.Float64 if m.column in floats else pl.Int64).sum()
-                        .alias(_sum(m)))
+        if m.kind in ("sum", "mean") and m.column in floats:
+            fixed = (c.cast(pl.Float64) * FIXED_SCALE).round().cast(pl.Int128, strict=False)
+            aggs.append(fixed.sum().alias(_fsum(m)))
+            aggs.append(fixed.count().cast(pl.Int64).alias(_cnt(m)))  # NaN, inf: missing
+            aggs.append((c.is_finite() & fixed.is_null()).sum().cast(pl.Int64).alias(_ovf(m)))
+        elif m.kind in ("sum", "mean"):
+            aggs.append(c.cast(pl.Int128).sum().alias(_sum(m)))
             aggs.append(c.count().cast(pl.Int64).alias(_cnt(m)))
         elif m.kind == "min":
             aggs.append(c.min().alias(_min(m)))
@@ -109,7 +128,7 @@ def _merge_aggs(measures: Sequence[MeasureSpec], present: Sequence[str]) -> list
     aggs = [pl.col(N).sum()]
     for m in measures:
         if m.kind in ("sum", "mean"):
-            aggs += [pl.col(_sum(m)).sum(), pl.col(_cnt(m)).sum()]
+            aggs += [pl.col(_sum(m)).sum(), pl.col(_fsum(m)).sum(), pl.col(_cnt(m)).sum()]
         elif m.kind == "min":
             aggs.append(pl.col(_min(m)).min())
         elif m.kind == "max":
@@ -156,6 +175,13 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
                           "files are complete and share one schema") from None
     if progress:
         progress("building the finest partial")
+    for m, o in zip(renamed, recipe.measures):
+        if _ovf(m) in grouped.columns:
+            if int(grouped.get_column(_ovf(m)).sum()):
+                raise SourceError(f"{label}: column {o.column!r} (measures.{o.name}) holds "
+                                  "values beyond ±7.7e25 that cannot be summed exactly; "
+                                  "rescale the column (e.g. to thousands)")
+            grouped = grouped.drop(_ovf(m))
     inv = grouped.filter(pl.col(INVALID) != 0).group_by(INVALID).agg(pl.col(N).sum())
     by_reason = {INVALID_REASONS[int(r)]: int(n) for r, n in sorted(inv.iter_rows())}
     valid = grouped.filter(pl.col(INVALID) == 0).drop(INVALID)
@@ -344,12 +370,12 @@ def finalize(recipe: Recipe, p: Partial, *, only: Sequence[str] | None = None
             continue
         if m.kind == "count":
             cols.append(pl.col(N).alias(m.name))
-        elif m.kind == "sum":
-            cols.append(pl.when(pl.col(_cnt(m)) > 0).then(pl.col(_sum(m))).alias(m.name))
-        elif m.kind == "mean":
-            cols.append(pl.when(pl.col(_cnt(m)) > 0)
-                        .then(pl.col(_sum(m)).cast(pl.Float64) / pl.col(_cnt(m)))
-                        .alias(m.name))
+        elif m.kind in ("sum", "mean"):
+            total = (pl.col(_fsum(m)).cast(pl.Float64) / FIXED_SCALE
+                     if _fsum(m) in p.table.columns else pl.col(_sum(m)))
+            if m.kind == "mean":
+                total = total.cast(pl.Float64) / pl.col(_cnt(m))
+            cols.append(pl.when(pl.col(_cnt(m)) > 0).then(total).alias(m.name))
         elif m.kind == "min":
             cols.append(pl.col(_min(m)).alias(m.name))
         elif m.kind == "max":

@@ -674,7 +674,7 @@ def _parse_time(ctx: _Ctx, doc: Any) -> TimeKey:
 def _check_zone(ctx: _Ctx, key: str, zone: str) -> None:
     try:
         zoneinfo.ZoneInfo(zone)
-    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError, OSError):  # a folder name is an OSError
         close = did_you_mean(zone, zoneinfo.available_timezones())
         raise ctx.fail(key, f"unknown time zone {zone!r}{close}; use an IANA name such as "
                        "UTC or Europe/Paris") from None
