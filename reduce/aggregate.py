@@ -16,6 +16,7 @@ derived from that (much smaller) result without touching the source again.
 
 from __future__ import annotations
 
+import re
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field, replace
 
@@ -25,7 +26,7 @@ import polars as pl
 from reduce.errors import SourceError
 from reduce.keys import HEX, INVALID, INVALID_REASONS, TIME, coarsen, scan_keys
 from reduce.recipe import MeasureSpec, Recipe, TimeBin
-from reduce.source import OpenSource
+from reduce.source import OpenSource, column_roles
 
 N = "__n"  # rows represented by a group
 
@@ -167,12 +168,8 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
         _scan_aggs(renamed, floats))
     try:
         grouped = grouped_lf.collect(engine="streaming")
-    except pl.exceptions.ComputeError as e:
-        raise SourceError(f"{label}: cannot compute the keys ({_first(e)}); check the column "
-                          "types named in the recipe") from None
     except pl.exceptions.PolarsError as e:
-        raise SourceError(f"{label}: cannot read the source ({_first(e)}); check that the "
-                          "files are complete and share one schema") from None
+        raise _scan_error(recipe, src, label, e) from None
     if progress:
         progress("building the finest partial")
     for m, o in zip(renamed, recipe.measures):
@@ -214,6 +211,30 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
     return Partial(keys=keys, table=table, pairs=pairs, values=values,
                    hex_res=recipe.hex.levels[0] if recipe.hex else None,
                    time_bin=recipe.time.levels[0] if recipe.time else None, accounting=acc)
+
+
+_PARSE_RE = re.compile(r"could not parse `(.*?)` as dtype `([^`]+)` at column '([^']+)'")
+
+
+def _scan_error(recipe: Recipe, src: OpenSource, label: str,
+                e: pl.exceptions.PolarsError) -> SourceError:
+    """Say whether the files cannot be read (and where) or the keys cannot be computed."""
+    m = _PARSE_RE.search(str(e))
+    if m:  # a value far down a CSV file that the inferred type cannot hold
+        value, dtype, col = m.groups()
+        role = next((k for k, c in column_roles(recipe) if c == col), None)
+        frm = f" (from {recipe.file.name}: {role})" if role else ""
+        return SourceError(f"{label}: column {col!r}{frm} holds {value!r}, which cannot be read "
+                           f"as {dtype} like the rows before it; fix that value or convert the "
+                           "column")
+    try:  # on the error path only: read the needed columns without computing any key
+        src.frame.select(pl.all().null_count()).collect(engine="streaming")
+    except pl.exceptions.PolarsError as read_error:
+        files = "file is" if len(src.files) == 1 else "files are"
+        return SourceError(f"{label}: cannot read as {src.format} ({_first(read_error)}); "
+                           f"check that the {files} complete and of that format")
+    return SourceError(f"{label}: cannot compute the keys ({_first(e)}); check the column "
+                       "types named in the recipe")
 
 
 def _check_not_empty(recipe: Recipe, label: str, input_rows: int, kept: int,

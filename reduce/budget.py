@@ -36,12 +36,13 @@ class Candidate:
     level: Level
     rows: int
     elements: int
-    raw: int
+    raw: int | None  # None when the level was judged from its row count (estimated)
     gzip: int | None = None
     brotli: int | None = None
     fits: bool | None = None
     chosen: bool = False
     note: str = ""
+    estimated: bool = False
 
     def size(self, on: str) -> int | None:
         return getattr(self, on)  # type: ignore[no-any-return]

@@ -117,7 +117,7 @@ def _budget_opts(f: Callable[..., Any]) -> Callable[..., Any]:
 
 @main.command("run")
 @click.argument("recipes", nargs=-1, required=True, type=click.Path(path_type=Path))
-@click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path),
+@click.option("--out", "out_dir", type=click.Path(path_type=Path),
               default=None, help="Write payloads into this folder (default: output.path).")
 @click.option("--write-anyway", is_flag=True,
               help="When nothing fits, write the smallest payload anyway (still exit 1).")

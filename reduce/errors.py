@@ -25,8 +25,12 @@ class ReduceError(Exception):
     exit_code: int = 2
 
     def __init__(self, message: str) -> None:
-        # Messages are single lines by contract: fold any newline a value smuggled in.
-        super().__init__(" ".join(str(message).split("\n")))
+        # Messages are single lines by contract: fold any newline a value smuggled in, and
+        # show every other unprintable character (\r, \x1e, U+2028, bidi controls ...) as
+        # an escape, so that a terminal shows exactly one line.
+        text = " ".join(str(message).split("\n"))
+        super().__init__("".join(ch if ch.isprintable() else
+                                 ch.encode("unicode_escape").decode("ascii") for ch in text))
 
     @property
     def message(self) -> str:

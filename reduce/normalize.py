@@ -65,6 +65,8 @@ def load_denominators(d: Denominators) -> pl.DataFrame:
         if col not in df.columns:
             raise DenominatorError(f"{where}: column {col!r} (normalize.denominators.{key}) is "
                                    f"missing; columns are: {', '.join(df.columns)}")
+    if df.height == 0:
+        raise DenominatorError(f"{where}: has no rows; add one row per key")
     val = df.get_column(d.value)
     if not val.dtype.is_numeric():
         raise DenominatorError(f"{where}: column {d.value!r} holds {val.dtype}, not numbers; "
@@ -90,6 +92,12 @@ def load_denominators(d: Denominators) -> pl.DataFrame:
         v = bad.get_column(d.value)[0]
         raise DenominatorError(f"{where}: key {k!r} has value {v!r} in column {d.value!r}; a "
                                "denominator must be a non-negative number")
+    inf = df.filter(vf.is_infinite())
+    if inf.height:
+        k = inf.get_column(d.key).cast(pl.String)[0]
+        v = inf.get_column(d.value)[0]
+        raise DenominatorError(f"{where}: key {k!r} has value {v!r} in column {d.value!r}; a "
+                               "denominator must be a finite, non-negative number")
     out = pl.DataFrame({"key": keys, DEN: vf})
     if d.on == "hex":
         cells = out.with_columns(plh3.str_to_int("key").alias("__cell"))

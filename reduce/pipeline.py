@@ -28,7 +28,16 @@ from reduce.errors import BudgetError, RecipeError
 from reduce.normalize import NormalizeReport
 from reduce.publish import manifest_path, publish, resolve_output, sha256
 from reduce.recipe import Budget, Recipe, TimeBin, load_recipe, parse_time_bin
-from reduce.sizes import MEASURES, Measure, Sizes, fits_on, measure_all, parse_size
+from reduce.sizes import (
+    BROTLI_AUTO_MAX,
+    MEASURES,
+    Measure,
+    Sizes,
+    fits_on,
+    measure_all,
+    parse_size,
+    quick_fits,
+)
 from reduce.source import OpenSource, open_source
 
 Progress = Callable[[str], None]
@@ -78,6 +87,7 @@ class Reducer:
         self._payloads: dict[tuple[Any, ...], bytes] = {}
         self._den: pl.DataFrame | None = None
         self._hex_geoms: dict[int, dict[str, Any]] = {}
+        self._ranks: dict[tuple[Any, Any], pl.Series] = {}
         self._region_geoms: dict[tuple[float, int], dict[str, Any]] = {}
         self._boundaries: Any = None
         n = recipe.normalize
@@ -133,7 +143,10 @@ class Reducer:
         if k not in self._rows:
             p = self._rollup(level.get("hex"), level.get("time"))
             if r.top is not None:
-                p = prune.top_k(r, p, int(level["top"]))
+                rk = (level.get("hex"), level.get("time"))
+                if rk not in self._ranks:
+                    self._ranks[rk] = prune.rank_rows(r, p)
+                p = prune.top_k(r, p, int(level["top"]), self._ranks[rk])
             p, sup_rows, sup_cells = prune.suppress(r, p)
             final = aggregate.finalize(r, p)
             final, report = normalize.apply(r, final, den=self._den, hex_res=level.get("hex"))
@@ -210,23 +223,43 @@ class Reducer:
         return lambda plain: [by_id.get(v) for v in plain.get_column(col).to_list()]
 
     def candidate(self, level: Mapping[str, Any], *, exact: bool, on: Measure | None = None,
-                  limit: int | None = None) -> bsearch.Candidate:
+                  limit: int | None = None, brotli: bool | None = None) -> bsearch.Candidate:
+        """Encode a level and measure it: every measure (``exact``), or only whether it fits
+        ``limit`` on ``on`` (compression stops once the output is over the limit)."""
         data = self.payload(level)
         lr = self.rows(level)
         c = bsearch.Candidate(level=dict(level), rows=lr.frame.height,
-                             elements=encode.elements(lr.frame), raw=len(data))
+                              elements=encode.elements(lr.frame), raw=len(data))
         if exact or on is None or limit is None:
-            s = measure_all(data)
+            s = measure_all(data, brotli=True if on == "brotli" else brotli)
             c.gzip, c.brotli = s.gzip, s.brotli
             if on is not None and limit is not None:
                 c.fits = s.on(on) <= limit
         else:
+            quick = quick_fits(data, on, limit)
+            if quick is not None:
+                c.fits = quick
+                c.note = "judged by a fast compression"
+                return c
             ok, size = fits_on(data, on, limit)
             c.fits = ok
             if on != "raw":
                 setattr(c, on, size)
             if size is None:
                 c.note = f"> {limit} {on} (stopped early)"
+        return c
+
+    def estimate(self, level: Mapping[str, Any], on: Measure, per_row: float,
+                 limit: int) -> bsearch.Candidate:
+        """A candidate judged from its row count alone: ``per_row`` bytes (the least seen on
+        measured levels) times its rows; used only to skip levels far over the budget."""
+        lr = self.rows(level)
+        c = bsearch.Candidate(level=dict(level), rows=lr.frame.height,
+                              elements=encode.elements(lr.frame), raw=None)
+        c.fits = False
+        c.estimated = True
+        c.note = (f"~{int(per_row * lr.frame.height):,} {on} bytes estimated from rows: over "
+                  f"{limit:,}")
         return c
 
 
@@ -299,15 +332,33 @@ def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
     axes = list(ladder_axes)
     b = r.budget
     cands: dict[tuple[Any, ...], bsearch.Candidate] = {}
+    # Levels far over the budget are judged without encoding them: their row count times the
+    # fewest bytes per row seen on a measured level, if over 1.5 times the budget. Finer levels
+    # carry at least as many bytes per row in practice, so the estimate errs low; never used
+    # when measuring exactly (reduce ladder) and never for the chosen level.
+    margin = 1.5
+    use_estimates = not exact and b is not None
 
     def evaluate(level: dict[str, Any], *, force_exact: bool = False) -> bsearch.Candidate:
         k = bsearch.level_key(level)
         c = cands.get(k)
-        if c is None or (force_exact and c.gzip is None or force_exact and c.brotli is None):
-            red.progress(f"measuring {bsearch.describe_level(level)}")
-            c = red.candidate(level, exact=exact or force_exact,
-                              on=b.on if b else None, limit=b.max if b else None)
-            cands[k] = c
+        if c is not None and not (force_exact and (c.estimated or c.gzip is None
+                                                   or (c.brotli is None and b is not None
+                                                       and b.on == "brotli"))):
+            return c
+        if use_estimates and not force_exact and b is not None:
+            per_row = [x.size(b.on) / x.rows for x in cands.values()
+                       if not x.estimated and x.rows and x.size(b.on) is not None]
+            if per_row:
+                rows = red.rows(level).frame.height
+                if rows * min(per_row) > margin * b.max:  # type: ignore[operator]
+                    c = red.estimate(level, b.on, min(per_row), b.max)  # type: ignore[type-var]
+                    cands[k] = c
+                    return c
+        red.progress(f"measuring {bsearch.describe_level(level)}")
+        c = red.candidate(level, exact=exact or force_exact,
+                          on=b.on if b else None, limit=b.max if b else None)
+        cands[k] = c
         return c
 
     chosen_level: dict[str, Any] | None
@@ -317,8 +368,6 @@ def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
     if b is None:
         chosen_level = r.finest_level()
         evaluate(chosen_level, force_exact=True)
-        if every_level:
-            pass
     else:
         res = bsearch.search(ladder_axes, b.order, lambda lv: bool(evaluate(lv).fits))
         chosen_level = res.chosen
@@ -327,6 +376,10 @@ def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
     chosen = None
     if chosen_level is not None:
         chosen = evaluate(chosen_level, force_exact=True)
+        if b is not None and not chosen.fits:
+            # A quick judgement was wrong (never seen in practice): measure everything.
+            return fit(r, exact=True, every_level=every_level, progress=progress,
+                       reducer=red)
         chosen.chosen = True
     candidates = list(cands.values())
     frontier = bsearch.frontier_frame(candidates, axes)
@@ -397,10 +450,10 @@ def build_manifest(result: FitResult, path: Path) -> dict[str, Any]:
     assert result.payload is not None and result.chosen is not None
     data = result.payload
     c = result.chosen
-    if c.gzip is None or c.brotli is None:  # measured exactly when chosen; never estimate
+    if c.gzip is None:  # the chosen level is always measured exactly; never estimated
         s = measure_all(data)
         c.gzip, c.brotli = s.gzip, s.brotli
-    sizes = Sizes(raw=len(data), gzip=int(c.gzip), brotli=int(c.brotli))
+    sizes = Sizes(raw=len(data), gzip=int(c.gzip), brotli=c.brotli)
     red = result.reducer
     assert result.level is not None and red is not None
     lr = red.rows(result.level)
@@ -420,9 +473,13 @@ def build_manifest(result: FitResult, path: Path) -> dict[str, Any]:
                     "order": list(result.budget.order),
                     "fits": sizes.on(result.budget.on) <= result.budget.max}
                    if result.budget else None),
+        **({"notes": [f"brotli not measured: the payload is over {BROTLI_AUTO_MAX:,} raw bytes "
+                      "(brotli at quality 11 is slow); use a brotli budget to measure it"]}
+           if sizes.brotli is None else {}),
         "frontier": [
             {"level": c.level, "rows": c.rows, "raw": c.raw, "gzip": c.gzip,
-             "brotli": c.brotli, "fits": c.fits, "chosen": c.chosen}
+             "brotli": c.brotli, "fits": c.fits, "chosen": c.chosen,
+             **({"estimated": True} if c.estimated else {})}
             for c in result.candidates],
         "accounting": {**result.accounting, "invalid_by_reason": acc.invalid_by_reason,
                        "suppressed_cells": lr.suppressed_cells},

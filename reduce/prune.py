@@ -16,6 +16,7 @@ This module owns both ways a payload gives up rows:
 
 from __future__ import annotations
 
+import numpy as np
 import polars as pl
 
 from reduce.aggregate import N, Partial, finalize, regroup, relabel, take
@@ -63,8 +64,11 @@ def check_rest_label(recipe: Recipe, p: Partial) -> None:
                           "another rest label")
 
 
-def top_k(recipe: Recipe, p: Partial, k: int) -> Partial:
-    """Keep the top ``k`` categories per group; fold the rest into one row per group."""
+def rank_rows(recipe: Recipe, p: Partial) -> pl.Series:
+    """Each row's category rank within its group (0 = first), aligned with ``p.table``.
+
+    The rank does not depend on k, so one ranking serves every k of the ladder.
+    """
     top = recipe.top
     assert top is not None
     within = within_columns(recipe, top.within)
@@ -72,16 +76,36 @@ def top_k(recipe: Recipe, p: Partial, k: int) -> Partial:
     ranked_keys = [*within, *cats]
     rank_src = p if list(p.keys) == ranked_keys else regroup(recipe, p, [], ranked_keys)
     scores = finalize(recipe, rank_src, only=[top.by]).select(
-        [*ranked_keys, pl.col(top.by).alias("__by")])
+        [*ranked_keys, pl.col(top.by).alias("__by")]).with_row_index("__row")
     order = scores.sort(["__by", *cats], descending=[True] + [False] * len(cats),
                         nulls_last=True)
     ranked = order.with_columns(
         (pl.int_range(pl.len()).over(within) if within else pl.int_range(pl.len()))
-        .alias("__rank"))
-    fold = ranked.filter(pl.col("__rank") >= k)
-    if not fold.height:
+        .cast(pl.UInt32).alias("__rank")).drop("__by")
+    if rank_src is p:
+        # Scatter the ranks back to the table's row order.
+        out = np.empty(p.table.height, dtype=np.uint32)
+        out[ranked.get_column("__row").to_numpy()] = ranked.get_column("__rank").to_numpy()
+        return pl.Series("__rank", out)
+    ranked = ranked.drop("__row")
+    # Every row of a (within, category) group shares that category's rank.
+    return (p.table.select(ranked_keys).join(ranked, on=ranked_keys, how="left",
+                                             nulls_equal=True, maintain_order="left")
+            .get_column("__rank"))
+
+
+def top_k(recipe: Recipe, p: Partial, k: int, ranks: pl.Series | None = None) -> Partial:
+    """Keep the top ``k`` categories per group; fold the rest into one row per group."""
+    assert recipe.top is not None
+    ranks = rank_rows(recipe, p) if ranks is None else ranks
+    fold = ranks >= k
+    if not fold.any():
         return p
-    return _relabel(recipe, p, fold, ranked_keys)
+    rest = recipe.top.rest
+    mapped = p.table.with_columns([
+        pl.when(fold).then(pl.lit(rest)).otherwise(pl.col(c)).alias(c)
+        for c in recipe.categories])
+    return relabel(recipe, p, mapped)
 
 
 def suppress(recipe: Recipe, p: Partial) -> tuple[Partial, int, int]:

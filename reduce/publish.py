@@ -69,6 +69,13 @@ def _is_ours(path: Path) -> bool:
     return False
 
 
+def _is_manifest(man: Path) -> bool:
+    with contextlib.suppress(OSError, orjson.JSONDecodeError):
+        doc = orjson.loads(man.read_bytes())
+        return isinstance(doc, dict) and doc.get("format") == MANIFEST_FORMAT
+    return False
+
+
 def check_target(path: Path) -> None:
     """Fail before any work is lost if ``path`` cannot be written or is not ours."""
     folder = path.parent
@@ -87,7 +94,7 @@ def check_target(path: Path) -> None:
         raise OutputError(f"{path}: exists and was not written by reduce; move it away or "
                           "choose another output path")
     man = manifest_path(path)
-    if man.exists() and not _is_ours(path) and path.exists():
+    if man.exists() and not _is_manifest(man):
         raise OutputError(f"{man}: exists and is not a reduce manifest; move it away")
 
 

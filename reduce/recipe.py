@@ -443,6 +443,22 @@ def _apply_override(ctx: _Ctx, doc: dict[str, Any], dotted: str, value: str) -> 
     node[parts[-1]] = parsed
 
 
+_INT64 = (-(2**63), 2**63 - 1)
+
+
+def _check_int_range(ctx: _Ctx, v: Any, key: str) -> None:
+    """TOML integers are 64-bit (tomllib reads longer ones): refuse them by key."""
+    if isinstance(v, dict):
+        for k, x in v.items():
+            _check_int_range(ctx, x, f"{key}.{k}" if key else k)
+    elif isinstance(v, list):
+        for i, x in enumerate(v):
+            _check_int_range(ctx, x, f"{key}[{i}]")
+    elif isinstance(v, int) and not isinstance(v, bool) and not _INT64[0] <= v <= _INT64[1]:
+        raise ctx.fail(key, f"{_short(v)} is beyond TOML's 64-bit integer range; use a "
+                       "smaller number")
+
+
 _TOP_KEYS = ("name", "description", "source", "group", "measures", "normalize", "prune",
              "budget", "output")
 
@@ -452,6 +468,7 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
     ctx = _Ctx(file)
     base = file.resolve().parent
     ctx.table(doc, "", _TOP_KEYS)
+    _check_int_range(ctx, doc, "")
     name = ctx.string(doc, "", "name", required=True)
     assert name is not None
     if not _NAME_RE.match(name):
@@ -519,6 +536,10 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
                       if "prune" in doc else (None, None))
     output = _parse_output(ctx, doc.get("output", {}), base)
     derived = _derived_names(measures, normalize)
+    for m in measures:
+        if m.name in derived:
+            raise ctx.fail(f"measures.{m.name}", "has the same name as a column that normalize "
+                           "derives; rename the measure")
     for col, _ in output.column_digits:
         if col not in names and col not in derived:
             raise ctx.fail(f"output.column_digits.{col}",

@@ -26,7 +26,8 @@ def run_line(res: RunResult) -> str:
     assert c is not None and f.level is not None
     parts = [f"{f.recipe.name}: {c.rows:,} rows", describe_level(f.level),
              f"raw {format_size(c.raw)}", f"gzip {format_size(c.gzip or 0)}",
-             f"brotli {format_size(c.brotli or 0)}"]
+             f"brotli {format_size(c.brotli)}" if c.brotli is not None
+             else "brotli not measured"]
     if f.budget:
         b = f.budget
         parts.append(f"budget {format_size(b.max)} {b.on}"

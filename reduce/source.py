@@ -69,6 +69,14 @@ def _shown(p: Path) -> str:
 def resolve_files(pattern: str, display: str, fmt: str | None) -> tuple[list[Path], str]:
     """Expand the recipe's source path into a sorted list of files and their format."""
     where = f"source.path {display!r}"
+    try:
+        return _resolve_files(pattern, where, fmt)
+    except OSError as e:  # a name too long for the file system, a loop of links ...
+        raise SourceError(f"{where}: cannot read the path ({e.strerror}); check the path, "
+                          "which is relative to the recipe file") from None
+
+
+def _resolve_files(pattern: str, where: str, fmt: str | None) -> tuple[list[Path], str]:
     p = Path(pattern)
     if any(ch in pattern for ch in "*?["):
         files = sorted(Path(f) for f in _glob.glob(pattern, recursive=True) if Path(f).is_file())
@@ -135,7 +143,8 @@ def _schema(files: list[Path], fmt: str, display: str) -> pl.Schema:
                     col = diff[0][0] if diff else "?"
                     raise SourceError(
                         f"{_shown(f)}: its schema differs from {_shown(files[0])} at column "
-                        f"{col!r} ({first.get(col)} vs {other.get(col)}); make every file of "
+                        f"{col!r} ({first.get(col, 'missing')} vs {other.get(col, 'missing')}); "
+                        f"make every file of "
                         f"source.path {display!r} share one schema")
             return pl.Schema(_scan(files, fmt, None).collect_schema())
         return pl.Schema(_scan(files, fmt, None).collect_schema())
@@ -182,6 +191,22 @@ def needed_columns(recipe: Recipe) -> list[str]:
         if c is not None and c not in cols:
             cols.append(c)
     return cols
+
+
+def column_roles(recipe: Recipe) -> list[tuple[str, str]]:
+    """(recipe key, column) for the columns the recipe reads, for messages."""
+    src = recipe.source
+    roles: list[tuple[str, str]] = []
+    if recipe.time and src.time:
+        roles.append(("source.time", src.time))
+    if recipe.needs_coordinates and src.lat and src.lon:
+        roles += [("source.lat", src.lat), ("source.lon", src.lon)]
+    if recipe.region and recipe.region.source:
+        roles.append(("group.region.column", recipe.region.source))
+    roles += [("group.category", c) for c in recipe.category_sources]
+    roles += [(f"measures.{m.name}", m.column) for m in recipe.measures if m.column]
+    roles += [(f"{f.key}.column", f.column) for f in src.filters]
+    return roles
 
 
 def check_schema(recipe: Recipe, schema: pl.Schema, label: str) -> None:
@@ -281,6 +306,8 @@ def _filter_expr(f: Filter, dtype: pl.DataType, zone: str, label: str) -> pl.Exp
 
     if f.op in ("in", "not_in"):
         vals = [check(v, f"{f.key}.{f.op}") for v in f.values]
+        if dtype.is_numeric() and any(isinstance(v, float) for v in vals):
+            col, vals = col.cast(pl.Float64), [float(v) for v in vals]
         c = col.cast(pl.String) if isinstance(dtype, (pl.Categorical, pl.Enum)) else col
         e = c.is_in(vals)
         return e if f.op == "in" else ~e
