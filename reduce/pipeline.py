@@ -450,8 +450,8 @@ def build_manifest(result: FitResult, path: Path) -> dict[str, Any]:
     assert result.payload is not None and result.chosen is not None
     data = result.payload
     c = result.chosen
-    if c.gzip is None:  # the chosen level is always measured exactly; never estimated
-        s = measure_all(data)
+    if c.gzip is None or (c.brotli is None and len(data) <= BROTLI_AUTO_MAX):
+        s = measure_all(data)  # the chosen level is always measured exactly
         c.gzip, c.brotli = s.gzip, s.brotli
     sizes = Sizes(raw=len(data), gzip=int(c.gzip), brotli=c.brotli)
     red = result.reducer

@@ -138,6 +138,11 @@ def test_payload_level_and_manifest_record_the_choice(tmp_path: Path,
     assert manifest["budget"] == {"max": 15000, "on": "gzip",
                                   "order": ["top", "time", "hex", "digits"], "fits": True}
     assert manifest["bytes"]["gzip"] <= 15000
+    data = out.path.read_bytes()  # type: ignore[union-attr]
+    # References: Python's gzip module (RFC 1952) and the brotli module (RFC 7932).
+    assert manifest["bytes"] == {"raw": len(data),
+                                 "gzip": len(gzip.compress(data, compresslevel=9, mtime=0)),
+                                 "brotli": len(brotli.compress(data, quality=11))}
     assert len(manifest["frontier"]) == len(out.fit.candidates)
     assert sum(c["chosen"] for c in manifest["frontier"]) == 1
 
