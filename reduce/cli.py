@@ -20,7 +20,6 @@ import click
 import orjson
 
 from reduce import __version__
-from reduce._audit_cli import audit
 from reduce.errors import RecipeError, ReduceError
 from reduce.sizes import MEASURES, parse_size
 
@@ -44,6 +43,20 @@ SIZE = _SizeType()
 
 
 class _Group(click.Group):
+    # Commands imported only when used, so `reduce run` does not pay for the audit's imports.
+    _lazy = {"audit": ("reduce._audit_cli", "audit")}
+
+    def list_commands(self, ctx: click.Context) -> list[str]:
+        return sorted([*super().list_commands(ctx), *self._lazy])
+
+    def get_command(self, ctx: click.Context, cmd_name: str) -> click.Command | None:
+        if cmd_name in self._lazy and cmd_name not in self.commands:
+            import importlib
+
+            module, attr = self._lazy[cmd_name]
+            self.add_command(getattr(importlib.import_module(module), attr))
+        return super().get_command(ctx, cmd_name)
+
     def invoke(self, ctx: click.Context) -> Any:
         try:
             return super().invoke(ctx)
@@ -223,6 +236,3 @@ def demo_cmd(out_dir: Path, rows: int | None, regenerate: bool, quiet: bool) -> 
     for res in results:
         click.echo(report.run_line(res))
     click.echo(f"demo: {len(results)} recipes in {seconds:.1f} s; payloads in {out_dir}")
-
-
-main.add_command(audit)
