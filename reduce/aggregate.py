@@ -179,9 +179,11 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
                                   "values beyond ±7.7e25 that cannot be summed exactly; "
                                   "rescale the column (e.g. to thousands)")
             grouped = grouped.drop(_ovf(m))
+    kept = int(grouped.get_column(N).sum()) if grouped.height else 0
     inv = grouped.filter(pl.col(INVALID) != 0).group_by(INVALID).agg(pl.col(N).sum())
     by_reason = {INVALID_REASONS[int(r)]: int(n) for r, n in sorted(inv.iter_rows())}
     valid = grouped.filter(pl.col(INVALID) == 0).drop(INVALID)
+    del grouped  # the finest partial can be as large as the source: keep one copy
     present = [c for c in valid.columns if c.startswith("__") and c not in dnames]
     pairs: dict[str, pl.DataFrame] = {}
     values: dict[str, pl.Series] = {}
@@ -203,7 +205,6 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
     else:
         table = valid
     input_rows = src.count_rows()
-    kept = int(grouped.get_column(N).sum()) if grouped.height else 0
     _check_not_empty(recipe, label, input_rows, kept, by_reason)
     acc = Accounting(input_rows=input_rows, filtered_rows=input_rows - kept,
                      invalid_rows=sum(n for r, n in by_reason.items() if r != "unassigned"),

@@ -99,7 +99,8 @@ def _progress(quiet: bool) -> Iterator[Callable[[str], None]]:
     from rich.console import Console
 
     console = Console(stderr=True)
-    with console.status("starting") as status:
+    # A slow refresh: the spinner thread must not compete with the pipeline for the GIL.
+    with console.status("starting", refresh_per_second=2) as status:
         yield lambda msg: status.update(msg)
 
 

@@ -249,6 +249,11 @@ class Reducer:
                 c.note = f"> {limit} {on} (stopped early)"
         return c
 
+    def forget(self, level: Mapping[str, Any]) -> None:
+        """Drop a level's rows and bytes (a level over the budget is not needed again)."""
+        self._payloads.pop(bsearch.level_key(level), None)
+        self._rows.pop((level.get("hex"), level.get("time"), level.get("top")), None)
+
     def estimate(self, level: Mapping[str, Any], on: Measure, per_row: float,
                  limit: int) -> bsearch.Candidate:
         """A candidate judged from its row count alone: ``per_row`` bytes (the least seen on
@@ -354,11 +359,14 @@ def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
                 if rows * min(per_row) > margin * b.max:  # type: ignore[operator]
                     c = red.estimate(level, b.on, min(per_row), b.max)  # type: ignore[type-var]
                     cands[k] = c
+                    red.forget(level)
                     return c
         red.progress(f"measuring {bsearch.describe_level(level)}")
         c = red.candidate(level, exact=exact or force_exact,
                           on=b.on if b else None, limit=b.max if b else None)
         cands[k] = c
+        if c.fits is False and not every_level:
+            red.forget(level)  # bounded memory: over-budget levels are never published
         return c
 
     chosen_level: dict[str, Any] | None
