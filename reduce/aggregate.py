@@ -276,7 +276,9 @@ def _regrouped(recipe: Recipe, p: Partial, mapped: pl.DataFrame,
     present = [c for c in mapped.columns if c.startswith("__")]
     aggs = _merge_aggs(recipe.measures, present)
     if not p.pairs:
-        table = mapped.group_by(keep).agg(aggs) if keep else mapped.select(aggs)
+        # The streaming engine groups large tables faster and in less memory than eager.
+        table = (mapped.lazy().group_by(keep).agg(aggs).collect(engine="streaming")
+                 if keep else mapped.select(aggs))
         return Partial(keys=tuple(keep), table=table, pairs={}, hex_res=p.hex_res,
                        time_bin=p.time_bin, accounting=p.accounting)
     # Keep the old row numbers of each new group, to carry the pairs over by integer ids.
@@ -310,6 +312,13 @@ def regroup(recipe: Recipe, p: Partial, mapping: Sequence[pl.Expr],
 
     ``keys`` selects the key columns to keep (default: all); dropping a key merges across it.
     """
+    if mapping and not p.pairs:
+        # Map and merge in one streaming query, without materialising the mapped table.
+        keep = list(p.keys if keys is None else keys)
+        present = [c for c in p.table.columns if c.startswith("__")]
+        table = (p.table.lazy().with_columns(mapping).group_by(keep)
+                 .agg(_merge_aggs(recipe.measures, present)).collect(engine="streaming"))
+        return replace(p, keys=tuple(keep), table=table)
     mapped = p.table.with_columns(mapping) if mapping else p.table
     return _regrouped(recipe, p, mapped, keys)
 
