@@ -16,7 +16,9 @@ callers may catch either.
 from __future__ import annotations
 
 import difflib
+import os
 from collections.abc import Iterable
+from pathlib import Path
 
 
 class ReduceError(Exception):
@@ -67,3 +69,12 @@ def did_you_mean(word: str, choices: Iterable[str]) -> str:
     """Return ``" (did you mean 'x'?)"`` for the closest choice, or ``""``."""
     matches = difflib.get_close_matches(word, sorted(choices), n=1, cutoff=0.6)
     return f" (did you mean '{matches[0]}'?)" if matches else ""
+
+
+def shown_path(p: str | os.PathLike[str]) -> str:
+    """A path as messages show it: relative to the working folder when inside it."""
+    path = Path(p)
+    try:
+        return str(path.resolve().relative_to(Path.cwd().resolve()))
+    except (ValueError, OSError):
+        return str(path)

@@ -24,10 +24,10 @@ from pathlib import Path
 import polars as pl
 import polars_h3 as plh3
 
-from reduce.errors import DenominatorError
+from reduce.errors import DenominatorError, shown_path
 from reduce.keys import HEX, TIME
 from reduce.recipe import Denominators, Recipe
-from reduce.source import _first_line, _shown
+from reduce.source import _first_line
 
 DEN = "__den"
 
@@ -49,7 +49,7 @@ class NormalizeReport:
 
 def load_denominators(d: Denominators) -> pl.DataFrame:
     """Read and check the denominators table: columns ``key`` (String) and ``__den``."""
-    shown = _shown(d.path)
+    shown = shown_path(d.path)
     where = f"{shown} (normalize.denominators)"
     if not Path(d.path).is_file():
         raise DenominatorError(f"{where}: file not found; check normalize.denominators.path, "
@@ -115,7 +115,7 @@ def _den_for_level(den: pl.DataFrame, d: Denominators, hex_res: int | None) -> p
     assert hex_res is not None
     res = den.select(plh3.get_resolution("key").unique()).to_series().to_list()
     if any(r < hex_res for r in res):
-        raise DenominatorError(f"{_shown(d.path)} (normalize.denominators): cells at "
+        raise DenominatorError(f"{shown_path(d.path)} (normalize.denominators): cells at "
                                f"resolution {min(res)} cannot give denominators at the finer "
                                f"resolution {hex_res}; supply cells at resolution {hex_res} or "
                                "finer")

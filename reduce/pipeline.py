@@ -427,9 +427,9 @@ def smallest_message(result: FitResult) -> str:
 
 
 def _recipe_label(recipe: Recipe) -> str:
-    from reduce.recipe import _display
+    from reduce.errors import shown_path
 
-    return _display(recipe.file)
+    return shown_path(recipe.file)
 
 
 @dataclass

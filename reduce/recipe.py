@@ -26,7 +26,7 @@ from typing import Any, Literal
 
 import orjson
 
-from reduce.errors import RecipeError, did_you_mean
+from reduce.errors import RecipeError, did_you_mean, shown_path
 from reduce.sizes import MEASURES, Measure, parse_size
 
 # --------------------------------------------------------------------------------------------
@@ -310,7 +310,7 @@ class _Ctx:
 
     def __init__(self, file: Path) -> None:
         self.file = file
-        self.shown = _display(file)
+        self.shown = shown_path(file)
 
     def fail(self, key: str, problem: str) -> RecipeError:
         where = f"{self.shown}: {key}: " if key else f"{self.shown}: "
@@ -356,13 +356,6 @@ class _Ctx:
         if len(set(v)) != len(v):
             raise self.fail(key, "lists a name twice")
         return tuple(v)
-
-
-def _display(p: Path) -> str:
-    try:
-        return str(p.resolve().relative_to(Path.cwd().resolve()))
-    except ValueError:
-        return str(p)
 
 
 def _tname(v: Any) -> str:

@@ -43,12 +43,9 @@ def run_line(res: RunResult) -> str:
 
 def shown(path: Path | None) -> str:
     """A path relative to the working folder when it is inside it."""
-    if path is None:
-        return "-"
-    try:
-        return str(path.resolve().relative_to(Path.cwd().resolve()))
-    except ValueError:
-        return str(path)
+    from reduce.errors import shown_path
+
+    return "-" if path is None else shown_path(path)
 
 
 def run_notes(res: RunResult) -> list[str]:

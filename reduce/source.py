@@ -22,7 +22,7 @@ from typing import Any
 
 import polars as pl
 
-from reduce.errors import SourceError, did_you_mean
+from reduce.errors import SourceError, did_you_mean, shown_path
 from reduce.recipe import Filter, Recipe
 
 _EXT = {".parquet": "parquet", ".pq": "parquet", ".csv": "csv", ".ndjson": "ndjson",
@@ -55,15 +55,8 @@ def _first_line(e: BaseException) -> str:
 
 def _files_label(files: tuple[Path, ...] | list[Path]) -> str:
     if len(files) == 1:
-        return _shown(files[0])
-    return f"{_shown(files[0])} (+{len(files) - 1} more files)"
-
-
-def _shown(p: Path) -> str:
-    try:
-        return str(p.resolve().relative_to(Path.cwd().resolve()))
-    except ValueError:
-        return str(p)
+        return shown_path(files[0])
+    return f"{shown_path(files[0])} (+{len(files) - 1} more files)"
 
 
 def resolve_files(pattern: str, display: str, fmt: str | None) -> tuple[list[Path], str]:
@@ -92,7 +85,7 @@ def _resolve_files(pattern: str, where: str, fmt: str | None) -> tuple[list[Path
     elif p.is_file():
         files = [p]
     else:
-        raise SourceError(f"{where}: no such file or folder ({_shown(p)}); check the path, "
+        raise SourceError(f"{where}: no such file or folder ({shown_path(p)}); check the path, "
                           "which is relative to the recipe file")
     formats = {_EXT.get(f.suffix.lower()) for f in files}
     if fmt is None:
@@ -142,7 +135,7 @@ def _schema(files: list[Path], fmt: str, display: str) -> pl.Schema:
                     diff = sorted(set(first.items()) ^ set(other.items()), key=str)
                     col = diff[0][0] if diff else "?"
                     raise SourceError(
-                        f"{_shown(f)}: its schema differs from {_shown(files[0])} at column "
+                        f"{shown_path(f)}: its schema differs from {shown_path(files[0])} at column "
                         f"{col!r} ({first.get(col, 'missing')} vs {other.get(col, 'missing')}); "
                         f"make every file of "
                         f"source.path {display!r} share one schema")
@@ -159,7 +152,7 @@ def _schema(files: list[Path], fmt: str, display: str) -> pl.Schema:
                 except Exception:
                     bad = f
                     break
-        raise SourceError(f"{_shown(bad)}: cannot read as {fmt} ({_first_line(e)}); check that "
+        raise SourceError(f"{shown_path(bad)}: cannot read as {fmt} ({_first_line(e)}); check that "
                           "the file is complete and of that format") from None
 
 
