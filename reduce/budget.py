@@ -44,6 +44,9 @@ class Candidate:
     chosen: bool = False
     note: str = ""
     estimated: bool = False
+    # A lower bound of the size on the budget's measure (the exact size when measured, or
+    # what a fast compression implies): its bytes per row bound the rows-only estimates.
+    floor: int | None = None
 
     def size(self, on: str) -> int | None:
         return getattr(self, on)  # type: ignore[no-any-return]

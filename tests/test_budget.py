@@ -15,7 +15,7 @@ from hypothesis import strategies as st
 import reduce
 from reduce.budget import search
 from reduce.pipeline import Reducer
-from reduce.sizes import fits_on, measure_all, parse_size, size_on
+from reduce.sizes import fits_on, measure_all, parse_size, quick_look, size_on
 from tests._builders import HEX_RECIPE, project
 
 # --- sizes ------------------------------------------------------------------------------------
@@ -174,3 +174,40 @@ def test_frontier_is_a_polars_frame_with_one_row_per_candidate(tmp_path: Path) -
                          "brotli", "fits", "chosen"]
     assert f.height == len(res.candidates)
     assert f.get_column("chosen").sum() == 1
+
+
+# --- judging levels before measuring them exactly ------------------------------------------------
+
+
+def _levels(recipe: reduce.Recipe) -> list[dict[str, object]]:
+    ladder = recipe.ladder()
+    return [dict(zip(ladder, combo)) for combo in itertools.product(*ladder.values())]
+
+
+@pytest.mark.parametrize("prune_table", [
+    'top = { k = [4, 2, 1], by = "reports" }',  # ranked within every other key: counted
+    'top = { k = [4, 2, 1], by = "reports", within = ["hex"] }',  # narrower: built in full
+    'top = { k = [4, 2, 1], by = "reports" }\nmin_count = 3',  # suppression: built in full
+])
+def test_row_count_equals_the_rows_of_every_level(tmp_path: Path, prune_table: str) -> None:
+    text = HEX_RECIPE.replace('top = { k = [4, 2, 1], by = "reports" }', prune_table)
+    recipe = reduce.load_recipe(project(tmp_path, text))
+    counted = Reducer(recipe, use_cache=False)
+    built = Reducer(recipe, use_cache=False)
+    for level in _levels(recipe):
+        assert counted.row_count(level) == built.rows(level).frame.height, level
+
+
+@given(data=st.data())
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+def test_quick_look_bounds_the_exact_size_and_never_contradicts_it(hex_reducer: Reducer,
+                                                                   data: st.DataObject) -> None:
+    level = data.draw(st.sampled_from(_levels(hex_reducer.recipe)))
+    on = data.draw(st.sampled_from(["raw", "gzip", "brotli"]))
+    payload = hex_reducer.payload(level)
+    exact = size_on(payload, on)  # type: ignore[arg-type]
+    limit = data.draw(st.integers(max(1, exact // 3), exact * 3))
+    look = quick_look(payload, on, limit)  # type: ignore[arg-type]
+    assert look.floor <= exact
+    if look.fits is not None:
+        assert look.fits == (exact <= limit)
