@@ -20,11 +20,18 @@ import re
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field, replace
 
-import numpy as np
 import polars as pl
 
 from reduce.errors import SourceError
-from reduce.keys import HEX, INVALID, INVALID_REASONS, TIME, coarsen, scan_keys
+from reduce.keys import (
+    HEX,
+    INVALID,
+    INVALID_REASONS,
+    TIME,
+    coarsen,
+    reason_of_groups,
+    scan_keys,
+)
 from reduce.recipe import MeasureSpec, Recipe, TimeBin
 from reduce.source import OpenSource, column_roles
 
@@ -158,18 +165,20 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
                                   for m in recipe.measures]
     floats = {f"__in_{o.name}" for o in recipe.measures
               if o.column is not None and o.kind != "distinct" and schema[o.column].is_float()}
-    select = [*key_exprs, reason,
+    select = [*key_exprs, *([reason] if reason is not None else []),
               *[pl.col(c).alias(n) for c, n in zip(dcols, dnames)],
               *[pl.col(o.column).alias(f"__in_{o.name}") for o in recipe.measures
                 if o.column is not None and o.kind != "distinct"]]
     if progress:
         progress("scanning the source")
-    grouped_lf = lf.select(select).group_by([*keys, INVALID, *dnames]).agg(
-        _scan_aggs(renamed, floats))
+    by = [*keys, *([INVALID] if reason is not None else []), *dnames]
+    grouped_lf = lf.select(select).group_by(by).agg(_scan_aggs(renamed, floats))
     try:
         grouped = grouped_lf.collect(engine="streaming")
     except pl.exceptions.PolarsError as e:
         raise _scan_error(recipe, src, label, e) from None
+    if reason is None:
+        grouped = grouped.with_columns(reason_of_groups(list(keys)))
     if progress:
         progress("building the finest partial")
     for m, o in zip(renamed, recipe.measures):
@@ -281,6 +290,8 @@ def _regrouped(recipe: Recipe, p: Partial, mapped: pl.DataFrame,
                  if keep else mapped.select(aggs))
         return Partial(keys=tuple(keep), table=table, pairs={}, hex_res=p.hex_res,
                        time_bin=p.time_bin, accounting=p.accounting)
+    import numpy as np  # only for distinct measures: keeps start-up light
+
     # Keep the old row numbers of each new group, to carry the pairs over by integer ids.
     grouped = (mapped.with_row_index(ROW).group_by(keep).agg([*aggs, pl.col(ROW)])
                if keep else mapped.with_row_index(ROW).select([*aggs, pl.col(ROW).implode()]))
@@ -299,6 +310,8 @@ def _regrouped(recipe: Recipe, p: Partial, mapped: pl.DataFrame,
 
 def _unique_pairs(groups: pl.Series, values: pl.Series) -> pl.DataFrame:
     """Distinct (group, value id) pairs, both UInt32, de-duplicated as one packed UInt64."""
+    import numpy as np  # only for distinct measures: keeps start-up light
+
     packed = (groups.to_numpy().astype(np.uint64) << np.uint64(32)) | values.to_numpy().astype(
         np.uint64)
     u = pl.Series(packed).unique().to_numpy()
@@ -333,6 +346,8 @@ def take(p: Partial, keep: pl.Series) -> Partial:
     """The partial restricted to the rows where the boolean ``keep`` is true."""
     if not p.pairs:
         return replace(p, table=p.table.filter(keep))
+    import numpy as np  # only for distinct measures: keeps start-up light
+
     mask = keep.to_numpy()
     remap = np.cumsum(mask, dtype=np.int64) - 1
     lookup = pl.Series(GROUP, remap.astype(np.uint32))
@@ -412,6 +427,8 @@ def finalize(recipe: Recipe, p: Partial, *, only: Sequence[str] | None = None
         elif m.kind == "max":
             cols.append(pl.col(_max(m)).alias(m.name))
         else:
+            import numpy as np  # only for distinct measures: keeps start-up light
+
             g = p.pairs[m.name].get_column(GROUP).to_numpy()
             counts = np.bincount(g, minlength=p.table.height).astype(np.int64)
             distinct[m.name] = pl.Series(m.name, counts)

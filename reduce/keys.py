@@ -118,11 +118,15 @@ def _boundaries(path: Path, id_property: str) -> Any:
     return geo.load_boundaries(path, id_property)
 
 
-def scan_keys(recipe: Recipe, lf: pl.LazyFrame, label: str) -> tuple[list[pl.Expr], pl.Expr]:
+def scan_keys(recipe: Recipe, lf: pl.LazyFrame,
+              label: str) -> tuple[list[pl.Expr], pl.Expr | None]:
     """Key expressions at the finest level, and the invalid-reason code expression.
 
     Key expressions are null on invalid rows, so all invalid rows collapse into a few groups.
-    Reasons are checked in order; the first failing check names the reason.
+    Reasons are checked in order; the first failing check names the reason. When the only
+    check is that no key is null (plain key columns: no coordinates, time or boundaries),
+    the reason is None: the keys are used as they are, and a group with a null key is
+    invalid for reason "key" (see :func:`reason_of_groups`), which saves a per-row test.
     """
     src = recipe.source
     checks: list[tuple[int, pl.Expr]] = []
@@ -175,6 +179,8 @@ def scan_keys(recipe: Recipe, lf: pl.LazyFrame, label: str) -> tuple[list[pl.Exp
         checks.append((4, pl.all_horizontal([u.is_not_null() for u in unassigned])))
     if named:
         checks.append((3, pl.all_horizontal([e.is_not_null() for _, e in named])))
+    if [code for code, _ in checks] == [3]:
+        return [e.alias(name) for name, e in named], None
     reason = pl.lit(VALID, dtype=pl.UInt8)
     for code, ok in reversed(checks):
         reason = pl.when(~ok).then(pl.lit(code, dtype=pl.UInt8)).otherwise(reason)
@@ -190,6 +196,14 @@ def scan_keys(recipe: Recipe, lf: pl.LazyFrame, label: str) -> tuple[list[pl.Exp
     for name, e in named:
         keys.append(pl.when(valid).then(e).alias(name))
     return keys, reason.alias(INVALID)
+
+
+def reason_of_groups(keys: list[str]) -> pl.Expr:
+    """The invalid-reason code of groups keyed by plain key columns (see :func:`scan_keys`):
+    "key" where any key is null."""
+    return (pl.when(pl.any_horizontal([pl.col(k).is_null() for k in keys]))
+            .then(pl.lit(3, dtype=pl.UInt8)).otherwise(pl.lit(VALID, dtype=pl.UInt8))
+            .alias(INVALID))
 
 
 def coarsen(recipe: Recipe, *, hex_res: int | None, time_bin: TimeBin | None,

@@ -88,6 +88,7 @@ class Reducer:
         self._den: pl.DataFrame | None = None
         self._hex_geoms: dict[int, dict[str, Any]] = {}
         self._ranks: dict[tuple[Any, Any], pl.Series] = {}
+        self._row_counts: dict[tuple[Any, ...], int] = {}
         self._region_geoms: dict[tuple[float, int], dict[str, Any]] = {}
         self._boundaries: Any = None
         n = recipe.normalize
@@ -162,6 +163,12 @@ class Reducer:
         ``min_count``, which can drop any row) the level's rows are computed in full.
         """
         k = (level.get("hex"), level.get("time"), level.get("top"))
+        if k not in self._row_counts:
+            self._row_counts[k] = self._count_rows(level)
+        return self._row_counts[k]
+
+    def _count_rows(self, level: Mapping[str, Any]) -> int:
+        k = (level.get("hex"), level.get("time"), level.get("top"))
         r = self.recipe
         if k in self._rows or r.min_count is not None:
             return self.rows(level).frame.height
@@ -176,8 +183,10 @@ class Reducer:
             return min(n, top) + (1 if n > top else 0)
         if set(prune.within_columns(r, r.top.within)) == set(outer):
             top = int(level["top"])
-            n = p.table.group_by(outer).agg(pl.len().alias("n")).get_column("n")
-            return int((n.clip(upper_bound=top) + (n > top).cast(pl.Int64)).sum())
+            n = pl.col("n")
+            return int(p.table.lazy().group_by(outer).agg(pl.len().alias("n"))
+                       .select((n.clip(upper_bound=top) + (n > top).cast(pl.Int64)).sum())
+                       .collect(engine="streaming").item())
         return self.rows(level).frame.height
 
     def accounting(self, level: Mapping[str, Any]) -> dict[str, int]:

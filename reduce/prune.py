@@ -16,7 +16,6 @@ This module owns both ways a payload gives up rows:
 
 from __future__ import annotations
 
-import numpy as np
 import polars as pl
 
 from reduce.aggregate import N, Partial, finalize, regroup, relabel, take
@@ -84,9 +83,8 @@ def rank_rows(recipe: Recipe, p: Partial) -> pl.Series:
         .cast(pl.UInt32).alias("__rank")).drop("__by")
     if rank_src is p:
         # Scatter the ranks back to the table's row order.
-        out = np.empty(p.table.height, dtype=np.uint32)
-        out[ranked.get_column("__row").to_numpy()] = ranked.get_column("__rank").to_numpy()
-        return pl.Series("__rank", out)
+        out = pl.zeros(p.table.height, dtype=pl.UInt32, eager=True).alias("__rank")
+        return out.scatter(ranked.get_column("__row"), ranked.get_column("__rank"))
     ranked = ranked.drop("__row")
     # Every row of a (within, category) group shares that category's rank.
     return (p.table.select(ranked_keys).join(ranked, on=ranked_keys, how="left",

@@ -195,3 +195,26 @@ def test_filters_agree_with_sql_where(tmp_path: Path, events: pl.DataFrame, name
     assert acc["filtered_rows"] == total - kept
     assert acc["invalid_rows"] == 0
     assert acc["represented_rows"] == kept
+
+
+def test_plain_keys_with_nulls_equal_duckdb_and_count_the_rest_as_invalid(
+        tmp_path: Path, events: pl.DataFrame) -> None:
+    # Plain key columns take the scan's short path (no per-row validity code): rows with a
+    # null key must still be left out of every group and counted under the reason "key".
+    i = pl.int_range(pl.len())
+    holes = events.with_columns(
+        pl.when(i % 7 == 0).then(None).otherwise(pl.col("region")).alias("region"),
+        pl.when(i % 11 == 0).then(None).otherwise(pl.col("kind")).alias("kind"))
+    path = write_case(tmp_path, holes, group={"region": {"column": "region"},
+                                              "category": {"column": "kind"}},
+                      measures=MEASURES)
+    _, p = _pipeline(path)
+    got = aggregate.finalize(reduce.load_recipe(path), p)
+    # Reference: DuckDB GROUP BY over the rows whose keys are both present.
+    want = _sql(tmp_path / "events.parquet", "region, kind", "region, kind",
+                where="region IS NOT NULL AND kind IS NOT NULL")
+    _compare(got, want, ["region", "kind"])
+    nulls = holes.filter(pl.col("region").is_null() | pl.col("kind").is_null()).height
+    assert nulls > 500
+    assert p.accounting.invalid_by_reason == {"key": nulls}
+    assert p.accounting.invalid_rows == nulls
