@@ -553,7 +553,7 @@ def run(recipe: Recipe | str | Path, *, out_dir: Path | None = None,
     path = output_path(r, out_dir)
     from reduce.publish import check_target
 
-    check_target(path)  # fail before the scan, not after it
+    check_target(path, create=False)  # fail before the scan, not after it
     result = fit(r, budget=budget, on=on, use_cache=use_cache, progress=progress)
     if result.level is None:
         msg = smallest_message(result)

@@ -76,14 +76,32 @@ def _is_manifest(man: Path) -> bool:
     return False
 
 
-def check_target(path: Path) -> None:
-    """Fail before any work is lost if ``path`` cannot be written or is not ours."""
+def check_target(path: Path, *, create: bool = True) -> None:
+    """Fail before any work is lost if ``path`` cannot be written or is not ours.
+
+    With ``create=False`` (the check before a scan) a missing output folder is not made,
+    only checked to be creatable, so a run that fails later leaves no empty folder behind.
+    """
     folder = path.parent
-    try:
-        folder.mkdir(parents=True, exist_ok=True)
-    except OSError as e:
-        raise OutputError(f"{folder}: cannot create the output folder ({e.strerror}); choose "
-                          "another --out") from None
+    if create:
+        try:
+            folder.mkdir(parents=True, exist_ok=True)
+        except OSError as e:
+            raise OutputError(f"{folder}: cannot create the output folder ({e.strerror}); "
+                              "choose another --out") from None
+    else:
+        at = folder
+        while not at.exists() and at.parent != at:
+            at = at.parent
+        if not at.is_dir():
+            why = "File exists" if at == folder else "Not a directory"
+            raise OutputError(f"{folder}: cannot create the output folder ({why}); choose "
+                              "another --out")
+        if at != folder:
+            if not os.access(at, os.W_OK | os.X_OK):
+                raise OutputError(f"{folder}: cannot create the output folder (Permission "
+                                  "denied); choose another --out")
+            return
     if not os.access(folder, os.W_OK | os.X_OK):
         raise OutputError(f"{folder}: the output folder is not writable; fix its permissions "
                           "or choose another --out")

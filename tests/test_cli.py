@@ -141,8 +141,7 @@ def test_nothing_fits_exits_1_names_smallest_and_writes_nothing(tmp_path: Path) 
                            "smallest payload is ")
     assert "at hex=5, time=1w, top=1, digits=4; raise budget.max (or --budget), add a coarser " \
            "hex level, add a wider time bin, lower prune.top.k" in line
-    assert not (tmp_path / "out" / "hexmap.json").exists()
-    assert not (tmp_path / "out" / "hexmap.manifest.json").exists()
+    assert not (tmp_path / "out").exists()  # not even an empty output folder
 
 
 def test_write_anyway_writes_smallest_and_still_exits_1(tmp_path: Path) -> None:
