@@ -19,10 +19,11 @@ from __future__ import annotations
 import re
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field, replace
+from pathlib import Path
 
 import polars as pl
 
-from reduce.errors import SourceError
+from reduce.errors import OutputError, SourceError
 from reduce.keys import (
     HEX,
     INVALID,
@@ -144,9 +145,67 @@ def _merge_aggs(measures: Sequence[MeasureSpec], present: Sequence[str]) -> list
     return [a for a in aggs if a.meta.output_name() in present]
 
 
+# A large source is first probed: its first rows are grouped alone. If the groups number more
+# than a quarter of those rows (events too sparse for the finest level to shrink them, so the
+# finest partial would be about as large as the source), the keyed rows are written to a
+# parquet file by a streaming pass ("spilled"), memory holding only the pass's buffers, and
+# every level is aggregated from that file. Otherwise the other rows are grouped in one pass
+# and the two results merged.
+PROBE_ROWS = 1_000_000
+_SPARSE = 0.25
+
+
+def probe_rows() -> int:
+    """Rows of the probe (see above): ``$REDUCE_PROBE_ROWS`` or 1,000,000."""
+    import os
+
+    env = os.environ.get("REDUCE_PROBE_ROWS", "")
+    return int(env) if env.isdigit() and int(env) > 0 else PROBE_ROWS
+
+
+@dataclass(frozen=True)
+class Spilled:
+    """The finest level kept on disk as keyed rows: one row per input row that passed the
+    filters, with its key columns at the finest level, its invalid-reason code and its
+    measure inputs. Every level (the finest included) is one streaming aggregation over it
+    (see :func:`rollup_spilled`). Only for recipes without distinct measures."""
+
+    keys: tuple[str, ...]
+    files: tuple[Path, ...]
+    rows: int  # valid rows in the files
+    hex_res: int | None
+    time_bin: TimeBin | None
+    accounting: Accounting
+
+    def frame(self) -> pl.LazyFrame:
+        """The valid keyed rows."""
+        return pl.scan_parquet([str(f) for f in self.files]).filter(pl.col(INVALID) == 0)
+
+    def moved(self, folder: Path) -> Spilled:
+        return replace(self, files=tuple(folder / f.name for f in self.files))
+
+
+def _scan_measures(recipe: Recipe, float_inputs: set[str]
+                   ) -> tuple[list[MeasureSpec], set[str]]:
+    """Measures reading their renamed input columns (``__in_<name>``, so a measure column may
+    share a name with a key), and which of those inputs are floats."""
+    renamed = [replace(m, column=f"__in_{m.name}")
+               if m.column is not None and m.kind != "distinct" else m
+               for m in recipe.measures]
+    floats = {f"__in_{o.name}" for o in recipe.measures
+              if o.column is not None and o.kind != "distinct" and o.column in float_inputs}
+    return renamed, floats
+
+
 def scan_partial(recipe: Recipe, src: OpenSource, *,
-                 progress: Callable[[str], None] | None = None) -> Partial:
-    """Compute the finest partial with one streaming scan of the source."""
+                 progress: Callable[[str], None] | None = None,
+                 spill_dir: Path | None = None) -> Partial | Spilled:
+    """Compute the finest partial with one streaming scan of the source.
+
+    With ``spill_dir`` (a folder to write to), a large parquet source whose events are too
+    sparse to shrink at the finest level becomes a :class:`Spilled` partial instead (see
+    :data:`PROBE_ROWS`), so memory does not grow with the source.
+    """
     label = _label(src)
     lf = src.frame
     schema = lf.collect_schema()
@@ -159,35 +218,60 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
         if m.column not in dcols:
             dcols.append(m.column)
     dnames = [f"__d{i}" for i in range(len(dcols))]
-    # Measure columns are renamed so that a measure column may share a name with a key.
-    renamed: list[MeasureSpec] = [replace(m, column=f"__in_{m.name}")
-                                  if m.column is not None and m.kind != "distinct" else m
-                                  for m in recipe.measures]
-    floats = {f"__in_{o.name}" for o in recipe.measures
-              if o.column is not None and o.kind != "distinct" and schema[o.column].is_float()}
+    renamed, floats = _scan_measures(recipe, {c for c, t in schema.items() if t.is_float()})
     select = [*key_exprs, *([reason] if reason is not None else []),
               *[pl.col(c).alias(n) for c, n in zip(dcols, dnames)],
               *[pl.col(o.column).alias(f"__in_{o.name}") for o in recipe.measures
                 if o.column is not None and o.kind != "distinct"]]
-    if progress:
-        progress("scanning the source")
     by = [*keys, *([INVALID] if reason is not None else []), *dnames]
-    grouped_lf = lf.select(select).group_by(by).agg(_scan_aggs(renamed, floats))
-    try:
-        grouped = grouped_lf.collect(engine="streaming")
-    except pl.exceptions.PolarsError as e:
-        raise _scan_error(recipe, src, label, e) from None
-    if reason is None:
-        grouped = grouped.with_columns(reason_of_groups(list(keys)))
+    aggs = _scan_aggs(renamed, floats)
+
+    def scan(frame: pl.LazyFrame) -> pl.DataFrame:
+        try:
+            out = frame.select(select).group_by(by).agg(aggs).collect(engine="streaming")
+        except pl.exceptions.PolarsError as e:
+            raise _scan_error(recipe, src, label, e) from None
+        if reason is None:
+            out = out.with_columns(reason_of_groups(list(keys)))
+        _check_overflow(recipe, renamed, label, out)
+        return out.drop([_ovf(m) for m in renamed if _ovf(m) in out.columns])
+
+    input_rows = src.count_rows()
+    probe = probe_rows()
+    if spill_dir is None or dnames or src.format != "parquet" or input_rows <= probe:
+        if progress:
+            progress("scanning the source")
+        grouped = scan(lf)
+    else:
+        if progress:
+            progress(f"scanning the source: the first {probe:,} of {input_rows:,} rows")
+        first = scan(src.rows_frame(0, probe))
+        if first.filter(pl.col(INVALID) == 0).height > _SPARSE * probe:
+            del first
+            if progress:
+                progress(f"scanning the source: writing its {input_rows:,} keyed rows to disk "
+                         "(events too sparse to group in memory)")
+            rows = lf.select(select)
+            if reason is None:
+                rows = rows.with_columns(reason_of_groups(list(keys)))
+            path = spill_dir / "rows.parquet"
+            try:
+                rows.sink_parquet(path, compression="lz4", statistics=False)
+            except pl.exceptions.PolarsError as e:
+                raise _scan_error(recipe, src, label, e) from None
+            except OSError as e:
+                raise OutputError(f"{spill_dir}: cannot write the scan's keyed rows "
+                                  f"({e.strerror}); free disk space or set REDUCE_CACHE_DIR "
+                                  "to another folder") from None
+            return _spilled(recipe, label, keys, path, input_rows, renamed, floats)
+        if progress:
+            progress(f"scanning the source: rows {probe + 1:,} to {input_rows:,}")
+        rest = scan(src.rows_frame(probe, input_rows - probe))
+        both = pl.concat([first, rest], how="vertical_relaxed")
+        del first, rest
+        grouped = both.group_by([*keys, INVALID]).agg(_merge_scanned(both.columns))
     if progress:
         progress("building the finest partial")
-    for m, o in zip(renamed, recipe.measures):
-        if _ovf(m) in grouped.columns:
-            if int(grouped.get_column(_ovf(m)).sum()):
-                raise SourceError(f"{label}: column {o.column!r} (measures.{o.name}) holds "
-                                  "values beyond ±7.7e25 that cannot be summed exactly; "
-                                  "rescale the column (e.g. to thousands)")
-            grouped = grouped.drop(_ovf(m))
     kept = int(grouped.get_column(N).sum()) if grouped.height else 0
     inv = grouped.filter(pl.col(INVALID) != 0).group_by(INVALID).agg(pl.col(N).sum())
     by_reason = {INVALID_REASONS[int(r)]: int(n) for r, n in sorted(inv.iter_rows())}
@@ -213,7 +297,6 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
         table = table.drop([GROUP, *dnames])
     else:
         table = valid
-    input_rows = src.count_rows()
     _check_not_empty(recipe, label, input_rows, kept, by_reason)
     acc = Accounting(input_rows=input_rows, filtered_rows=input_rows - kept,
                      invalid_rows=sum(n for r, n in by_reason.items() if r != "unassigned"),
@@ -221,6 +304,70 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
     return Partial(keys=keys, table=table, pairs=pairs, values=values,
                    hex_res=recipe.hex.levels[0] if recipe.hex else None,
                    time_bin=recipe.time.levels[0] if recipe.time else None, accounting=acc)
+
+
+def _merge_scanned(columns: Sequence[str]) -> list[pl.Expr]:
+    """Aggregations merging scan results of two ranges of rows (same groups, same columns)."""
+    out = []
+    for c in columns:
+        if c.startswith("__min_"):
+            out.append(pl.col(c).min())
+        elif c.startswith("__max_"):
+            out.append(pl.col(c).max())
+        elif c.startswith("__") and c != INVALID:
+            out.append(pl.col(c).sum())
+    return out
+
+
+def _check_overflow(recipe: Recipe, renamed: Sequence[MeasureSpec], label: str,
+                    scanned: pl.DataFrame) -> None:
+    for m, o in zip(renamed, recipe.measures):
+        if _ovf(m) in scanned.columns and int(scanned.get_column(_ovf(m)).sum()):
+            raise SourceError(f"{label}: column {o.column!r} (measures.{o.name}) holds values "
+                              "beyond ±7.7e25 that cannot be summed exactly; rescale the "
+                              "column (e.g. to thousands)")
+
+
+def _spilled(recipe: Recipe, label: str, keys: tuple[str, ...], path: Path, input_rows: int,
+             renamed: Sequence[MeasureSpec], floats: set[str]) -> Spilled:
+    """Account for the keyed rows written to ``path`` (one pass over a few columns)."""
+    aggs = [pl.len().cast(pl.Int64).alias(N),
+            *[a for a in _scan_aggs(renamed, floats) if a.meta.output_name().startswith("__ovf")]]
+    counts = (pl.scan_parquet(str(path)).group_by(INVALID).agg(aggs)
+              .collect(engine="streaming"))
+    _check_overflow(recipe, renamed, label, counts)
+    kept = int(counts.get_column(N).sum()) if counts.height else 0
+    inv = counts.filter(pl.col(INVALID) != 0).sort(INVALID)
+    by_reason = {INVALID_REASONS[int(r)]: int(n)
+                 for r, n in inv.select(INVALID, N).iter_rows()}
+    _check_not_empty(recipe, label, input_rows, kept, by_reason)
+    acc = Accounting(input_rows=input_rows, filtered_rows=input_rows - kept,
+                     invalid_rows=sum(n for r, n in by_reason.items() if r != "unassigned"),
+                     invalid_by_reason=by_reason)
+    return Spilled(keys=keys, files=(path,), rows=kept - sum(by_reason.values()),
+                   hex_res=recipe.hex.levels[0] if recipe.hex else None,
+                   time_bin=recipe.time.levels[0] if recipe.time else None, accounting=acc)
+
+
+def rollup_spilled(recipe: Recipe, s: Spilled, *, hex_res: int | None,
+                   time_bin: TimeBin | None) -> Partial:
+    """The partial at a level (the finest included) from spilled keyed rows: one streaming
+    aggregation over the file, the same one the scan would have done."""
+    mapping = coarsen(recipe, hex_res=hex_res, time_bin=time_bin, from_hex=s.hex_res,
+                      from_time=s.time_bin)
+    lf = s.frame()
+    schema = lf.collect_schema()
+    renamed, _ = _scan_measures(recipe, set())
+    floats = {c for c, t in schema.items() if c.startswith("__in_") and t.is_float()}
+    aggs = [a for a in _scan_aggs(renamed, floats)
+            if not a.meta.output_name().startswith("__ovf")]
+    table = (lf.with_columns(mapping).group_by(list(s.keys)).agg(aggs)
+             .collect(engine="streaming"))
+    return Partial(keys=s.keys, table=table, pairs={},
+                   hex_res=(hex_res if hex_res is not None else s.hex_res) if recipe.hex
+                   else None,
+                   time_bin=(time_bin if time_bin is not None else s.time_bin) if recipe.time
+                   else None, accounting=s.accounting)
 
 
 _PARSE_RE = re.compile(r"could not parse `(.*?)` as dtype `([^`]+)` at column '([^']+)'")
@@ -437,5 +584,5 @@ def finalize(recipe: Recipe, p: Partial, *, only: Sequence[str] | None = None
     return out.with_columns(list(distinct.values())) if distinct else out
 
 
-__all__ = ["HEX", "TIME", "N", "Accounting", "Partial", "finalize", "merge", "regroup",
-           "rollup", "scan_partial"]
+__all__ = ["HEX", "TIME", "N", "Accounting", "Partial", "Spilled", "finalize", "merge",
+           "regroup", "rollup", "rollup_spilled", "scan_partial"]

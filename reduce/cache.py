@@ -23,7 +23,7 @@ import orjson
 import polars as pl
 
 from reduce import __version__
-from reduce.aggregate import Accounting, Partial
+from reduce.aggregate import Accounting, Partial, Spilled
 from reduce.recipe import Recipe, parse_time_bin
 
 
@@ -40,11 +40,47 @@ def cache_key(recipe: Recipe, fingerprint: str) -> str:
     return h.hexdigest()[:40]
 
 
-def load(key: str) -> Partial | None:
+def spill_dir(key: str) -> Path | None:
+    """A fresh folder in the cache for a scan's spill files (moved into the entry by
+    :func:`store`), or None when the cache cannot be written. Spill folders of processes
+    that no longer run are removed on the way."""
+    root = cache_dir()
+    try:
+        root.mkdir(parents=True, exist_ok=True)
+        for old in root.glob(".*.spill"):
+            pid = old.name.rsplit(".", 2)[-2]
+            if pid.isdigit() and not _alive(int(pid)):
+                shutil.rmtree(old, ignore_errors=True)
+        d = root / f".{key}.{os.getpid()}.spill"
+        d.mkdir(exist_ok=True)
+        return d
+    except OSError:
+        return None
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def load(key: str) -> Partial | Spilled | None:
     """The cached partial for ``key``, or None (a damaged entry counts as absent)."""
     d = cache_dir() / key
     try:
         meta = orjson.loads((d / "meta.json").read_bytes())
+        if "parts" in meta:
+            files = tuple(d / name for name in meta["parts"])
+            if not all(f.is_file() for f in files):
+                return None
+            tb = parse_time_bin(meta["time_bin"]) if meta["time_bin"] else None
+            return Spilled(keys=tuple(meta["keys"]), files=files, rows=int(meta["rows"]),
+                           hex_res=meta["hex_res"], time_bin=tb,
+                           accounting=Accounting(**meta["accounting"]))
         table = pl.read_parquet(d / "table.parquet")
         pairs = {name: pl.read_parquet(d / f"pairs-{i}.parquet")
                  for i, name in enumerate(meta["pairs"])}
@@ -59,10 +95,33 @@ def load(key: str) -> Partial | None:
         return None
 
 
-def store(key: str, p: Partial) -> Path | None:
-    """Store a partial; failures are ignored (the cache is an optimisation)."""
+def _meta(p: Partial | Spilled) -> dict[str, object]:
+    return {"keys": list(p.keys), "hex_res": p.hex_res,
+            "time_bin": p.time_bin.text if p.time_bin else None,
+            "accounting": {"input_rows": p.accounting.input_rows,
+                           "filtered_rows": p.accounting.filtered_rows,
+                           "invalid_rows": p.accounting.invalid_rows,
+                           "invalid_by_reason": p.accounting.invalid_by_reason}}
+
+
+def store(key: str, p: Partial | Spilled) -> Partial | Spilled | None:
+    """Store a partial; returns it as stored (a spilled partial's files move into the
+    entry) or None on failure, which is otherwise ignored (the cache is an optimisation)."""
     root = cache_dir()
     final = root / key
+    if isinstance(p, Spilled):
+        folder = p.files[0].parent if p.files else None
+        try:
+            if folder is None or folder.parent.resolve() != root.resolve():
+                return None
+            meta = {**_meta(p), "parts": [f.name for f in p.files], "rows": p.rows}
+            (folder / "meta.json").write_bytes(orjson.dumps(meta))
+            if final.exists():
+                shutil.rmtree(final, ignore_errors=True)
+            os.replace(folder, final)
+            return p.moved(final)
+        except OSError:
+            return None
     tmp = root / f".{key}.{os.getpid()}.tmp"
     try:
         tmp.mkdir(parents=True, exist_ok=True)
@@ -72,17 +131,12 @@ def store(key: str, p: Partial) -> Path | None:
             p.pairs[name].write_parquet(tmp / f"pairs-{i}.parquet", compression="zstd")
             p.values[name].to_frame("v").write_parquet(tmp / f"values-{i}.parquet",
                                                        compression="zstd")
-        meta = {"keys": list(p.keys), "hex_res": p.hex_res,
-                "time_bin": p.time_bin.text if p.time_bin else None, "pairs": names,
-                "accounting": {"input_rows": p.accounting.input_rows,
-                               "filtered_rows": p.accounting.filtered_rows,
-                               "invalid_rows": p.accounting.invalid_rows,
-                               "invalid_by_reason": p.accounting.invalid_by_reason}}
+        meta = {**_meta(p), "pairs": names}
         (tmp / "meta.json").write_bytes(orjson.dumps(meta))
         if final.exists():
             shutil.rmtree(final, ignore_errors=True)
         os.replace(tmp, final)
-        return final
+        return p
     except OSError:
         with contextlib.suppress(OSError):
             shutil.rmtree(tmp, ignore_errors=True)

@@ -14,6 +14,9 @@ and :func:`run` (fit and publish). Every intermediate result is cached per level
 
 from __future__ import annotations
 
+import shutil
+import tempfile
+import weakref
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -23,7 +26,7 @@ import polars as pl
 
 from reduce import aggregate, cache, encode, normalize, prune
 from reduce import budget as bsearch
-from reduce.aggregate import Partial
+from reduce.aggregate import Partial, Spilled
 from reduce.errors import BudgetError, RecipeError
 from reduce.normalize import NormalizeReport
 from reduce.publish import manifest_path, publish, resolve_output, sha256
@@ -82,6 +85,7 @@ class Reducer:
         self.source: OpenSource | None = None
         self.partial_from_cache = False
         self._partial: Partial | None = None
+        self._finest: Partial | Spilled | None = None
         self._rollups: dict[tuple[Any, Any], Partial] = {}
         self._rows: dict[tuple[Any, ...], LevelRows] = {}
         self._payloads: dict[tuple[Any, ...], bytes] = {}
@@ -96,8 +100,10 @@ class Reducer:
             self._den = normalize.load_denominators(n.denominators)
 
     # -- the finest partial -----------------------------------------------------------------
-    def partial(self) -> Partial:
-        if self._partial is None:
+    def finest(self) -> Partial | Spilled:
+        """The finest partial: from the cache, or one scan of the source (kept on disk when
+        the source is large and sparse at the finest level: see ``aggregate.Spilled``)."""
+        if self._finest is None:
             self.progress("checking the source")
             self.source = open_source(self.recipe)
             key = cache.cache_key(self.recipe, self.source.fingerprint)
@@ -106,11 +112,28 @@ class Reducer:
                 self.partial_from_cache = True
                 self.progress("using the cached finest partial")
             else:
-                p = aggregate.scan_partial(self.recipe, self.source, progress=self.progress)
+                spill = cache.spill_dir(key) if self.use_cache else None
+                if spill is None:
+                    spill = Path(tempfile.mkdtemp(prefix="reduce-spill-"))
+                weakref.finalize(self, shutil.rmtree, spill, True)
+                p = aggregate.scan_partial(self.recipe, self.source, progress=self.progress,
+                                           spill_dir=spill)
                 if self.use_cache:
-                    cache.store(key, p)
-            prune.check_rest_label(self.recipe, p)
-            self._partial = p
+                    p = cache.store(key, p) or p
+            if isinstance(p, Spilled):
+                prune.check_rest_label_lazy(self.recipe, p.frame())
+            else:
+                prune.check_rest_label(self.recipe, p)
+            self._finest = p
+        return self._finest
+
+    def partial(self) -> Partial:
+        """The finest partial in memory (merged from its files when it was spilled)."""
+        if self._partial is None:
+            f = self.finest()
+            self._partial = (f if isinstance(f, Partial) else
+                             aggregate.rollup_spilled(self.recipe, f, hex_res=None,
+                                                      time_bin=None))
         return self._partial
 
     # -- levels -----------------------------------------------------------------------------
@@ -126,11 +149,17 @@ class Reducer:
         k = (hex_res, time_text)
         if k in self._rollups:
             return self._rollups[k]
-        finest = self.partial()
-        self._rollups.setdefault((finest.hex_res, _text(finest.time_bin)), finest)
+        finest = self.finest()
+        if isinstance(finest, Partial):
+            self._rollups.setdefault((finest.hex_res, _text(finest.time_bin)), finest)
         tb = parse_time_bin(time_text) if time_text else None
         sources = [(p.table.height, i, p) for i, ((h, t), p) in enumerate(self._rollups.items())
                    if _finer_or_equal(h, t, hex_res, tb)]
+        if not sources:
+            assert isinstance(finest, Spilled)
+            out = aggregate.rollup_spilled(self.recipe, finest, hex_res=hex_res, time_bin=tb)
+            self._rollups[k] = out
+            return out
         src = min(sources, key=lambda x: x[:2])[2]
         out = aggregate.rollup(self.recipe, src, hex_res=hex_res, time_bin=tb)
         self._rollups[k] = out
@@ -190,7 +219,7 @@ class Reducer:
         return self.rows(level).frame.height
 
     def accounting(self, level: Mapping[str, Any]) -> dict[str, int]:
-        acc = self.partial().accounting
+        acc = self.finest().accounting
         lr = self.rows(level)
         r = self.recipe
         uses_boundaries = bool((r.region and r.region.boundaries)
@@ -505,7 +534,7 @@ def build_manifest(result: FitResult, path: Path) -> dict[str, Any]:
     red = result.reducer
     assert result.level is not None and red is not None
     lr = red.rows(result.level)
-    acc = red.partial().accounting
+    acc = red.finest().accounting
     src = result.source
     m: dict[str, Any] = {
         "format": "reduce.manifest/1",

@@ -63,6 +63,19 @@ def check_rest_label(recipe: Recipe, p: Partial) -> None:
                           "another rest label")
 
 
+def check_rest_label_lazy(recipe: Recipe, frame: pl.LazyFrame) -> None:
+    """:func:`check_rest_label` over a partial kept on disk (reads the category columns)."""
+    if recipe.top is None:
+        return
+    rest = recipe.top.rest
+    hit = (frame.filter(pl.all_horizontal([pl.col(c) == rest for c in recipe.categories]))
+           .select(pl.len()).collect(engine="streaming").item())
+    if hit:
+        raise SourceError(f"{recipe.file.name}: prune.top.rest: the label {rest!r} is also a "
+                          f"value of column {recipe.categories[0]!r} in the data; choose "
+                          "another rest label")
+
+
 def rank_rows(recipe: Recipe, p: Partial) -> pl.Series:
     """Each row's category rank within its group (0 = first), aligned with ``p.table``.
 

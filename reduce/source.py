@@ -38,6 +38,16 @@ class OpenSource:
     schema: pl.Schema
     fingerprint: str
     frame: pl.LazyFrame  # needed columns only, recipe filters applied
+    columns: tuple[str, ...] = ()
+    filters: tuple[pl.Expr, ...] = ()
+
+    def rows_frame(self, offset: int, length: int) -> pl.LazyFrame:
+        """Like ``frame``, over input rows ``offset`` to ``offset + length`` only (counted
+        before filters, so consecutive ranges split the input without overlap)."""
+        lf = _scan(self.files, self.format, list(self.columns)).slice(offset, length)
+        for e in self.filters:
+            lf = lf.filter(e)
+        return lf
 
     def count_rows(self) -> int:
         """Rows before filters (parquet: read from file metadata, no data scan)."""
@@ -328,11 +338,14 @@ def open_source(recipe: Recipe) -> OpenSource:
     check_schema(recipe, schema, label)
     cols = needed_columns(recipe)
     lf = _scan(files, fmt, cols)
-    for f in src.filters:
-        # in/not_in and ranges keep rows where the test is true; nulls in the column fail it.
-        lf = lf.filter(_filter_expr(f, schema[f.column], src.naive_zone, label).fill_null(False))
+    # in/not_in and ranges keep rows where the test is true; nulls in the column fail it.
+    filters = tuple(_filter_expr(f, schema[f.column], src.naive_zone, label).fill_null(False)
+                    for f in src.filters)
+    for e in filters:
+        lf = lf.filter(e)
     return OpenSource(files=tuple(files), format=fmt, schema=schema,
-                      fingerprint=fingerprint(files), frame=lf)
+                      fingerprint=fingerprint(files), frame=lf, columns=tuple(cols),
+                      filters=filters)
 
 
 def source_size(files: tuple[Path, ...]) -> int:

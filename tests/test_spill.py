@@ -1,0 +1,127 @@
+"""The spilled scan: a large source too sparse to shrink at the finest level has its keyed rows
+written to a parquet file by a streaming pass, and every level is aggregated from that file;
+a denser one is grouped in two passes (the probe, then the rest) and the results merged.
+
+The reference here is the one-pass scan (itself checked against DuckDB and the ``h3``
+bindings elsewhere): splitting must not change a single byte of any payload, nor the
+accounting.
+"""
+
+from __future__ import annotations
+
+import gc
+import itertools
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import polars as pl
+import pytest
+from conftest import random_events, write_case
+
+import reduce
+from reduce.aggregate import Partial, Spilled
+from reduce.pipeline import Reducer
+
+MEASURES = {"n": "count", "sx": {"sum": "x"}, "sy": {"sum": "y"}, "mx": {"min": "x"},
+            "my": {"max": "y"}, "ax": {"mean": "x"}}
+
+
+def _sparse(tmp: Path, **kw: Any) -> Path:
+    rng = np.random.default_rng(99)
+    df = random_events(rng, 5000, span_days=20, null_fraction=0.1)
+    # A few rows of each kind of invalid input, spread over the ranges.
+    i = pl.int_range(pl.len())
+    df = df.with_columns(pl.when(i % 397 == 5).then(None).otherwise(pl.col("lat")).alias("lat"),
+                         pl.when(i % 613 == 7).then(None).otherwise(pl.col("t")).alias("t"))
+    return write_case(tmp, df, source={"time": "t", "lat": "lat", "lon": "lon", **kw},
+                      group={"hex": {"levels": [10, 8, 6]},
+                             "time": {"levels": ["1h", "1d", "1w"], "zone": "Europe/Berlin"},
+                             "category": {"column": "kind"}},
+                      measures=MEASURES, prune={"top": {"k": [4, 2], "by": "n"}})
+
+
+def _levels(recipe: reduce.Recipe) -> list[dict[str, Any]]:
+    ladder = recipe.ladder()
+    return [dict(zip(ladder, combo)) for combo in itertools.product(*ladder.values())]
+
+
+def _payloads(recipe_path: Path) -> tuple[Reducer, dict[str, bytes]]:
+    recipe = reduce.load_recipe(recipe_path)
+    red = Reducer(recipe, use_cache=False)
+    return red, {str(lv): red.payload(lv) for lv in _levels(recipe)}
+
+
+@pytest.mark.parametrize("filters", [{}, {"filter": [{"column": "kind", "not_in": ["e"]}]}])
+def test_spilled_scan_gives_every_level_byte_for_byte(tmp_path: Path,
+                                                    monkeypatch: pytest.MonkeyPatch,
+                                                    filters: dict[str, Any]) -> None:
+    path = _sparse(tmp_path, **filters)
+    whole, expected = _payloads(path)
+    assert isinstance(whole.finest(), Partial)
+    monkeypatch.setenv("REDUCE_PROBE_ROWS", "1100")
+    spilled, got = _payloads(path)
+    finest = spilled.finest()
+    assert isinstance(finest, Spilled)
+    assert [f.name for f in finest.files] == ["rows.parquet"]
+    acc = finest.accounting
+    assert finest.rows == 5000 - acc.filtered_rows - sum(acc.invalid_by_reason.values())
+    assert finest.accounting == whole.finest().accounting
+    if not filters:  # rows 5, 402, ... lack a latitude; rows 7, 620, ... a time
+        assert finest.accounting.invalid_by_reason == {"coordinates": 13, "time": 9}
+    assert got == expected
+    # The finest level aggregated from the file equals the one-pass partial.
+    keys = list(whole.partial().keys)
+    assert spilled.partial().table.sort(keys).equals(whole.partial().table.sort(keys))
+
+
+def test_dense_source_is_scanned_in_two_passes_not_spilled(tmp_path: Path,
+                                                           monkeypatch: pytest.MonkeyPatch
+                                                           ) -> None:
+    rng = np.random.default_rng(5)
+    path = write_case(tmp_path, random_events(rng, 5000),
+                      group={"region": {"column": "region"}, "category": {"column": "kind"}},
+                      measures=MEASURES)
+    whole, expected = _payloads(path)
+    monkeypatch.setenv("REDUCE_PROBE_ROWS", "1100")
+    split, got = _payloads(path)
+    assert isinstance(split.finest(), Partial)  # 15 groups: far below a quarter of 1,100
+    assert got == expected
+    assert split.finest().accounting == whole.finest().accounting
+
+
+def test_spilled_partial_is_cached_and_refits_give_the_same_payload(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    cache = tmp_path / "cache"
+    monkeypatch.setenv("REDUCE_CACHE_DIR", str(cache))
+    monkeypatch.setenv("REDUCE_PROBE_ROWS", "1100")
+    path = _sparse(tmp_path / "case")
+    first = reduce.fit(path, budget="20KB")
+    again = reduce.fit(path, budget="20KB")
+    assert not first.partial_from_cache and again.partial_from_cache
+    assert again.reducer is not None and isinstance(again.reducer.finest(), Spilled)
+    assert again.payload == first.payload and again.level == first.level
+    entries = [d for d in cache.iterdir() if not d.name.startswith(".")]
+    assert len(entries) == 1
+    assert sorted(f.name for f in entries[0].iterdir()) == ["meta.json", "rows.parquet"]
+    del first, again
+    gc.collect()
+    assert not [d for d in cache.iterdir() if d.name.endswith(".spill")]
+
+
+def test_spill_folder_outside_the_cache_is_removed(tmp_path: Path,
+                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("REDUCE_PROBE_ROWS", "1100")
+    monkeypatch.setenv("TMPDIR", str(tmp_path / "tmp"))
+    (tmp_path / "tmp").mkdir()
+    import tempfile
+
+    monkeypatch.setattr(tempfile, "tempdir", None)  # re-read TMPDIR
+    red = Reducer(reduce.load_recipe(_sparse(tmp_path / "case")), use_cache=False)
+    spilled = red.finest()
+    assert isinstance(spilled, Spilled)
+    folder = spilled.files[0].parent
+    assert folder.parent == tmp_path / "tmp" and folder.is_dir()
+    del red, spilled
+    gc.collect()
+    assert not folder.exists()
