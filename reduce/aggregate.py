@@ -17,7 +17,7 @@ derived from that (much smaller) result without touching the source again.
 from __future__ import annotations
 
 import re
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
@@ -153,6 +153,7 @@ def _merge_aggs(measures: Sequence[MeasureSpec], present: Sequence[str]) -> list
 # and the two results merged.
 PROBE_ROWS = 1_000_000
 _SPARSE = 0.25
+PART_ROWS = 5_000_000  # input rows per part of the spilled rows (at most 64 parts)
 
 
 def probe_rows() -> int:
@@ -167,22 +168,32 @@ def probe_rows() -> int:
 class Spilled:
     """The finest level kept on disk as keyed rows: one row per input row that passed the
     filters, with its key columns at the finest level, its invalid-reason code and its
-    measure inputs. Every level (the finest included) is one streaming aggregation over it
-    (see :func:`rollup_spilled`). Only for recipes without distinct measures."""
+    measure inputs. Every level (the finest included) is a streaming aggregation over them
+    (see :func:`rollup_spilled`). The rows are split into parts by a hash of their keys at
+    the coarsest level of every axis, so a group of any level lies in exactly one part and
+    each part can be aggregated alone, in a fraction of the memory. Only for recipes without
+    distinct measures."""
 
     keys: tuple[str, ...]
-    files: tuple[Path, ...]
+    root: Path
+    parts: tuple[tuple[str, ...], ...]  # file paths relative to ``root``, per part
     rows: int  # valid rows in the files
     hex_res: int | None
     time_bin: TimeBin | None
     accounting: Accounting
 
-    def frame(self) -> pl.LazyFrame:
-        """The valid keyed rows."""
-        return pl.scan_parquet([str(f) for f in self.files]).filter(pl.col(INVALID) == 0)
+    @property
+    def files(self) -> tuple[Path, ...]:
+        return tuple(self.root / f for part in self.parts for f in part)
+
+    def frame(self, part: int | None = None) -> pl.LazyFrame:
+        """The valid keyed rows (of one part, or of all)."""
+        names = [f for p in self.parts for f in p] if part is None else list(self.parts[part])
+        return (pl.scan_parquet([str(self.root / f) for f in names], hive_partitioning=False)
+                .filter(pl.col(INVALID) == 0))
 
     def moved(self, folder: Path) -> Spilled:
-        return replace(self, files=tuple(folder / f.name for f in self.files))
+        return replace(self, root=folder)
 
 
 def _scan_measures(recipe: Recipe, float_inputs: set[str]
@@ -254,16 +265,18 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
             rows = lf.select(select)
             if reason is None:
                 rows = rows.with_columns(reason_of_groups(list(keys)))
-            path = spill_dir / "rows.parquet"
+            n_parts = max(1, min(64, -(-input_rows // PART_ROWS)))
+            target = pl.PartitionBy(spill_dir / "rows", include_key=False,
+                                    key={"__part": _part_of(recipe, keys, n_parts)})
             try:
-                rows.sink_parquet(path, compression="lz4", statistics=False)
+                rows.sink_parquet(target, compression="lz4", statistics=False, mkdir=True)
             except pl.exceptions.PolarsError as e:
                 raise _scan_error(recipe, src, label, e) from None
             except OSError as e:
                 raise OutputError(f"{spill_dir}: cannot write the scan's keyed rows "
                                   f"({e.strerror}); free disk space or set REDUCE_CACHE_DIR "
                                   "to another folder") from None
-            return _spilled(recipe, label, keys, path, input_rows, renamed, floats)
+            return _spilled(recipe, label, keys, spill_dir, input_rows, renamed, floats)
         if progress:
             progress(f"scanning the source: rows {probe + 1:,} to {input_rows:,}")
         rest = scan(src.rows_frame(probe, input_rows - probe))
@@ -328,13 +341,33 @@ def _check_overflow(recipe: Recipe, renamed: Sequence[MeasureSpec], label: str,
                               "column (e.g. to thousands)")
 
 
-def _spilled(recipe: Recipe, label: str, keys: tuple[str, ...], path: Path, input_rows: int,
+def _part_of(recipe: Recipe, keys: Sequence[str], n: int) -> pl.Expr:
+    """The part (0 to n - 1) of a keyed row: a hash of its keys at the coarsest level of
+    every axis, categories left out (so that roll-ups never merge rows of two parts, and
+    all categories of a group, which top-k ranks together, share a part)."""
+    outer = [k for k in keys if k not in recipe.categories] or list(keys)
+    coarse = coarsen(recipe, hex_res=recipe.hex.levels[-1] if recipe.hex else None,
+                     time_bin=recipe.time.levels[-1] if recipe.time else None,
+                     from_hex=recipe.hex.levels[0] if recipe.hex else None,
+                     from_time=recipe.time.levels[0] if recipe.time else None)
+    mapped = {e.meta.output_name(): e for e in coarse}
+    cols = [mapped.get(k, pl.col(k)).alias(k) for k in outer]
+    return (pl.struct(cols).hash(seed=7) % n).cast(pl.UInt32)
+
+
+def _spilled(recipe: Recipe, label: str, keys: tuple[str, ...], root: Path, input_rows: int,
              renamed: Sequence[MeasureSpec], floats: set[str]) -> Spilled:
-    """Account for the keyed rows written to ``path`` (one pass over a few columns)."""
+    """Account for the keyed rows written under ``root`` (one pass over a few columns)."""
+    found: dict[int, list[str]] = {}
+    for f in sorted((root / "rows").glob("__part=*/*.parquet")):
+        found.setdefault(int(f.parent.name.split("=", 1)[1]), []).append(
+            str(f.relative_to(root)))
+    parts = tuple(tuple(found[k]) for k in sorted(found))
     aggs = [pl.len().cast(pl.Int64).alias(N),
             *[a for a in _scan_aggs(renamed, floats) if a.meta.output_name().startswith("__ovf")]]
-    counts = (pl.scan_parquet(str(path)).group_by(INVALID).agg(aggs)
-              .collect(engine="streaming"))
+    counts = (pl.scan_parquet([str(root / f) for p in parts for f in p],
+                              hive_partitioning=False)
+              .group_by(INVALID).agg(aggs).collect(engine="streaming"))
     _check_overflow(recipe, renamed, label, counts)
     kept = int(counts.get_column(N).sum()) if counts.height else 0
     inv = counts.filter(pl.col(INVALID) != 0).sort(INVALID)
@@ -344,25 +377,39 @@ def _spilled(recipe: Recipe, label: str, keys: tuple[str, ...], path: Path, inpu
     acc = Accounting(input_rows=input_rows, filtered_rows=input_rows - kept,
                      invalid_rows=sum(n for r, n in by_reason.items() if r != "unassigned"),
                      invalid_by_reason=by_reason)
-    return Spilled(keys=keys, files=(path,), rows=kept - sum(by_reason.values()),
+    return Spilled(keys=keys, root=root, parts=parts, rows=kept - sum(by_reason.values()),
                    hex_res=recipe.hex.levels[0] if recipe.hex else None,
                    time_bin=recipe.time.levels[0] if recipe.time else None, accounting=acc)
 
 
-def rollup_spilled(recipe: Recipe, s: Spilled, *, hex_res: int | None,
-                   time_bin: TimeBin | None) -> Partial:
-    """The partial at a level (the finest included) from spilled keyed rows: one streaming
-    aggregation over the file, the same one the scan would have done."""
+def rollup_spilled_parts(recipe: Recipe, s: Spilled, *, hex_res: int | None,
+                         time_bin: TimeBin | None, keys_only: bool = False
+                         ) -> Iterator[pl.DataFrame]:
+    """The table of a level (the finest included) from spilled keyed rows, part by part:
+    the same aggregation the scan would have done, in memory for one part at a time
+    (``keys_only``: just the level's distinct keys, which is all a row count needs)."""
     mapping = coarsen(recipe, hex_res=hex_res, time_bin=time_bin, from_hex=s.hex_res,
                       from_time=s.time_bin)
-    lf = s.frame()
-    schema = lf.collect_schema()
     renamed, _ = _scan_measures(recipe, set())
-    floats = {c for c, t in schema.items() if c.startswith("__in_") and t.is_float()}
-    aggs = [a for a in _scan_aggs(renamed, floats)
-            if not a.meta.output_name().startswith("__ovf")]
-    table = (lf.with_columns(mapping).group_by(list(s.keys)).agg(aggs)
-             .collect(engine="streaming"))
+    for i in range(len(s.parts)):
+        lf = s.frame(i)
+        if keys_only:
+            yield (lf.select(s.keys).with_columns(mapping).unique()
+                   .collect(engine="streaming"))
+            continue
+        schema = lf.collect_schema()
+        floats = {c for c, t in schema.items() if c.startswith("__in_") and t.is_float()}
+        aggs = [a for a in _scan_aggs(renamed, floats)
+                if not a.meta.output_name().startswith("__ovf")]
+        yield (lf.with_columns(mapping).group_by(list(s.keys)).agg(aggs)
+               .collect(engine="streaming"))
+
+
+def rollup_spilled(recipe: Recipe, s: Spilled, *, hex_res: int | None,
+                   time_bin: TimeBin | None) -> Partial:
+    """The partial at a level from spilled keyed rows (see :func:`rollup_spilled_parts`)."""
+    tables = list(rollup_spilled_parts(recipe, s, hex_res=hex_res, time_bin=time_bin))
+    table = pl.concat(tables, how="vertical_relaxed") if tables else pl.DataFrame()
     return Partial(keys=s.keys, table=table, pairs={},
                    hex_res=(hex_res if hex_res is not None else s.hex_res) if recipe.hex
                    else None,

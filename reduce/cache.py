@@ -74,12 +74,12 @@ def load(key: str) -> Partial | Spilled | None:
     try:
         meta = orjson.loads((d / "meta.json").read_bytes())
         if "parts" in meta:
-            files = tuple(d / name for name in meta["parts"])
-            if not all(f.is_file() for f in files):
+            parts = tuple(tuple(str(f) for f in part) for part in meta["parts"])
+            if not all((d / f).is_file() for part in parts for f in part):
                 return None
             tb = parse_time_bin(meta["time_bin"]) if meta["time_bin"] else None
-            return Spilled(keys=tuple(meta["keys"]), files=files, rows=int(meta["rows"]),
-                           hex_res=meta["hex_res"], time_bin=tb,
+            return Spilled(keys=tuple(meta["keys"]), root=d, parts=parts,
+                           rows=int(meta["rows"]), hex_res=meta["hex_res"], time_bin=tb,
                            accounting=Accounting(**meta["accounting"]))
         table = pl.read_parquet(d / "table.parquet")
         pairs = {name: pl.read_parquet(d / f"pairs-{i}.parquet")
@@ -110,11 +110,11 @@ def store(key: str, p: Partial | Spilled) -> Partial | Spilled | None:
     root = cache_dir()
     final = root / key
     if isinstance(p, Spilled):
-        folder = p.files[0].parent if p.files else None
+        folder = p.root
         try:
-            if folder is None or folder.parent.resolve() != root.resolve():
+            if folder.parent.resolve() != root.resolve():
                 return None
-            meta = {**_meta(p), "parts": [f.name for f in p.files], "rows": p.rows}
+            meta = {**_meta(p), "parts": [list(part) for part in p.parts], "rows": p.rows}
             (folder / "meta.json").write_bytes(orjson.dumps(meta))
             if final.exists():
                 shutil.rmtree(final, ignore_errors=True)

@@ -93,6 +93,7 @@ class Reducer:
         self._hex_geoms: dict[int, dict[str, Any]] = {}
         self._ranks: dict[tuple[Any, Any], pl.Series] = {}
         self._row_counts: dict[tuple[Any, ...], int] = {}
+        self._histograms: dict[tuple[Any, Any], pl.DataFrame] = {}
         self._region_geoms: dict[tuple[float, int], dict[str, Any]] = {}
         self._boundaries: Any = None
         n = recipe.normalize
@@ -201,22 +202,52 @@ class Reducer:
         r = self.recipe
         if k in self._rows or r.min_count is not None:
             return self.rows(level).frame.height
-        p = self._rollup(level.get("hex"), level.get("time"))
         cats = set(r.categories)
-        outer = [c for c in p.keys if c not in cats]
+        outer = [c for c in self.finest().keys if c not in cats]
+        hist = self._category_histogram(level.get("hex"), level.get("time"), outer)
+        n, groups = hist.get_column("n"), hist.get_column("groups")
         if r.top is None:
-            return p.table.height
-        if not outer:
-            n = p.table.height
-            top = int(level["top"])
-            return min(n, top) + (1 if n > top else 0)
-        if set(prune.within_columns(r, r.top.within)) == set(outer):
-            top = int(level["top"])
-            n = pl.col("n")
-            return int(p.table.lazy().group_by(outer).agg(pl.len().alias("n"))
-                       .select((n.clip(upper_bound=top) + (n > top).cast(pl.Int64)).sum())
-                       .collect(engine="streaming").item())
+            return int((n * groups).sum())
+        top = int(level["top"])
+        if not outer or set(prune.within_columns(r, r.top.within)) == set(outer):
+            return int(((n.clip(upper_bound=top) + (n > top).cast(pl.Int64)) * groups).sum())
         return self.rows(level).frame.height
+
+    def _category_histogram(self, h: int | None, t: str | None,
+                            outer: list[str]) -> pl.DataFrame:
+        """How many groups of the outer (non-category) keys hold ``n`` categories, for each
+        ``n``, at (hex, time): enough to count the rows of every top-k. Taken from the roll-up
+        at hand, or, straight from spilled rows, part by part from their distinct keys (one
+        part's groups in memory at a time; never spanning two parts by construction)."""
+        key = (h, t)
+        if key in self._histograms:
+            return self._histograms[key]
+        finest = self.finest()
+
+        def hist(table: pl.DataFrame) -> pl.DataFrame:
+            per = (table.lazy().group_by(outer).agg(pl.len().alias("n")) if outer
+                   else table.lazy().select(pl.len().alias("n")))
+            return (per.group_by("n").agg(pl.len().cast(pl.Int64).alias("groups"))
+                    .collect(engine="streaming").with_columns(pl.col("n").cast(pl.Int64)))
+
+        if isinstance(finest, Partial) or key in self._rollups or self._finer_at_hand(h, t):
+            out = hist(self._rollup(h, t).table)
+        else:
+            tb = parse_time_bin(t) if t else None
+            parts = [hist(table) for table in aggregate.rollup_spilled_parts(
+                self.recipe, finest, hex_res=h, time_bin=tb, keys_only=True)]
+            both = pl.concat(parts)
+            if outer:
+                out = both.group_by("n").agg(pl.col("groups").sum())
+            else:  # the categories of all parts make up one group
+                out = pl.DataFrame({"n": [int((both["n"] * both["groups"]).sum())],
+                                    "groups": [1]})
+        self._histograms[key] = out
+        return out
+
+    def _finer_at_hand(self, hex_res: int | None, time_text: str | None) -> bool:
+        tb = parse_time_bin(time_text) if time_text else None
+        return any(_finer_or_equal(h, t, hex_res, tb) for h, t in self._rollups)
 
     def accounting(self, level: Mapping[str, Any]) -> dict[str, int]:
         acc = self.finest().accounting

@@ -20,6 +20,7 @@ import pytest
 from conftest import random_events, write_case
 
 import reduce
+from reduce import aggregate
 from reduce.aggregate import Partial, Spilled
 from reduce.pipeline import Reducer
 
@@ -52,25 +53,32 @@ def _payloads(recipe_path: Path) -> tuple[Reducer, dict[str, bytes]]:
     return red, {str(lv): red.payload(lv) for lv in _levels(recipe)}
 
 
-@pytest.mark.parametrize("filters", [{}, {"filter": [{"column": "kind", "not_in": ["e"]}]}])
+@pytest.mark.parametrize(("filters", "part_rows"), [
+    ({}, 5_000_000), ({}, 900), ({"filter": [{"column": "kind", "not_in": ["e"]}]}, 900)])
 def test_spilled_scan_gives_every_level_byte_for_byte(tmp_path: Path,
                                                     monkeypatch: pytest.MonkeyPatch,
-                                                    filters: dict[str, Any]) -> None:
+                                                    filters: dict[str, Any],
+                                                    part_rows: int) -> None:
     path = _sparse(tmp_path, **filters)
     whole, expected = _payloads(path)
     assert isinstance(whole.finest(), Partial)
     monkeypatch.setenv("REDUCE_PROBE_ROWS", "1100")
+    monkeypatch.setattr(aggregate, "PART_ROWS", part_rows)
     spilled, got = _payloads(path)
     finest = spilled.finest()
     assert isinstance(finest, Spilled)
-    assert [f.name for f in finest.files] == ["rows.parquet"]
+    assert len(finest.parts) == -(-5000 // part_rows)  # 1 part, or 6 of about 900 rows
     acc = finest.accounting
     assert finest.rows == 5000 - acc.filtered_rows - sum(acc.invalid_by_reason.values())
     assert finest.accounting == whole.finest().accounting
     if not filters:  # rows 5, 402, ... lack a latitude; rows 7, 620, ... a time
         assert finest.accounting.invalid_by_reason == {"coordinates": 13, "time": 9}
     assert got == expected
-    # The finest level aggregated from the file equals the one-pass partial.
+    # Row counts taken part by part equal the rows of each level.
+    counted = Reducer(reduce.load_recipe(path), use_cache=False)
+    for level in _levels(counted.recipe):
+        assert counted.row_count(level) == spilled.rows(level).frame.height, level
+    # The finest level aggregated from the files equals the one-pass partial.
     keys = list(whole.partial().keys)
     assert spilled.partial().table.sort(keys).equals(whole.partial().table.sort(keys))
 
@@ -103,7 +111,7 @@ def test_spilled_partial_is_cached_and_refits_give_the_same_payload(
     assert again.payload == first.payload and again.level == first.level
     entries = [d for d in cache.iterdir() if not d.name.startswith(".")]
     assert len(entries) == 1
-    assert sorted(f.name for f in entries[0].iterdir()) == ["meta.json", "rows.parquet"]
+    assert sorted(f.name for f in entries[0].iterdir()) == ["meta.json", "rows"]
     del first, again
     gc.collect()
     assert not [d for d in cache.iterdir() if d.name.endswith(".spill")]
@@ -120,7 +128,7 @@ def test_spill_folder_outside_the_cache_is_removed(tmp_path: Path,
     red = Reducer(reduce.load_recipe(_sparse(tmp_path / "case")), use_cache=False)
     spilled = red.finest()
     assert isinstance(spilled, Spilled)
-    folder = spilled.files[0].parent
+    folder = spilled.root
     assert folder.parent == tmp_path / "tmp" and folder.is_dir()
     del red, spilled
     gc.collect()
