@@ -28,6 +28,7 @@ Tasks:
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import os
 import platform
@@ -357,6 +358,10 @@ def refit(bench: Bench, budget: str) -> dict[str, Any]:
                                     "--out", str(d / "out" / "refit")])
     entries = sorted(bench.cache.glob("*/table.parquet"))
     partial_rows = None
+    spilled = sorted(bench.cache.glob("*/meta.json"))
+    if not entries and spilled:  # a spilled partial: keyed rows, counted in its meta.json
+        with contextlib.suppress(OSError, ValueError, KeyError):
+            partial_rows = int(json.loads(spilled[0].read_text())["rows"])
     if entries:
         code = ("import sys, polars as pl; "
                 "print(pl.scan_parquet(sys.argv[1]).select(pl.len()).collect().item())")
@@ -474,7 +479,7 @@ def print_report(rows: int, summary: dict[str, dict[str, Any]], ver: list[dict[s
     if ref:
         cold = summary.get("a", {}).get("median")
         print(f"\nre-fit from the cached partial (budget {ref['budget']}, "
-              f"{_f(ref['finest_partial_rows'], '{:,}')} partial rows):")
+              f"{_f(ref['finest_partial_rows'], '{:,}')} rows in the cached partial):")
         for name, key in (("reduce ladder --budget", "ladder_median"),
                           ("reduce run --budget   ", "run_median")):
             v = ref[key]
