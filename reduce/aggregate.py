@@ -270,12 +270,15 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
                                     key={"__part": _part_of(recipe, keys, n_parts)})
             try:
                 rows.sink_parquet(target, compression="lz4", statistics=False, mkdir=True)
-            except pl.exceptions.PolarsError as e:
-                raise _scan_error(recipe, src, label, e) from None
-            except OSError as e:
-                raise OutputError(f"{spill_dir}: cannot write the scan's keyed rows "
-                                  f"({e.strerror}); free disk space or set REDUCE_CACHE_DIR "
-                                  "to another folder") from None
+            except (pl.exceptions.PolarsError, OSError) as e:
+                full = _disk_full(e)
+                if full is None and isinstance(e, pl.exceptions.PolarsError):
+                    raise _scan_error(recipe, src, label, e) from None
+                why = full or getattr(e, "strerror", None) or _first(e)
+                raise OutputError(f"{spill_dir.parent}: cannot write the scan's keyed rows "
+                                  f"({why}); free space there or point REDUCE_CACHE_DIR (TMPDIR "
+                                  "with --no-cache) at a disk with room for about 16 bytes per "
+                                  "event") from None
             return _spilled(recipe, label, keys, spill_dir, input_rows, renamed, floats)
         if progress:
             progress(f"scanning the source: rows {probe + 1:,} to {input_rows:,}")
@@ -339,6 +342,18 @@ def _check_overflow(recipe: Recipe, renamed: Sequence[MeasureSpec], label: str,
             raise SourceError(f"{label}: column {o.column!r} (measures.{o.name}) holds values "
                               "beyond ±7.7e25 that cannot be summed exactly; rescale the "
                               "column (e.g. to thousands)")
+
+
+def _disk_full(e: BaseException) -> str | None:
+    """The reason when ``e`` says a write ran out of room (or hit a read-only disk)."""
+    import errno
+    import os
+
+    codes = {errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EFBIG}
+    if isinstance(e, OSError):
+        return os.strerror(e.errno) if e.errno in codes else None
+    m = re.search(r"\(os error (\d+)\)", str(e))
+    return os.strerror(int(m.group(1))) if m and int(m.group(1)) in codes else None
 
 
 def _part_of(recipe: Recipe, keys: Sequence[str], n: int) -> pl.Expr:

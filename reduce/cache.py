@@ -58,6 +58,19 @@ def spill_dir(key: str) -> Path | None:
         return None
 
 
+def temp_spill_dir() -> Path:
+    """A fresh temporary folder for a scan's spill files when the cache is not used;
+    folders left by processes that no longer run (killed mid-scan) are removed first."""
+    import tempfile
+
+    tmp = Path(tempfile.gettempdir())
+    for old in tmp.glob("reduce-spill-*-*"):
+        pid = old.name.split("-")[2]
+        if pid.isdigit() and not _alive(int(pid)):
+            shutil.rmtree(old, ignore_errors=True)
+    return Path(tempfile.mkdtemp(prefix=f"reduce-spill-{os.getpid()}-"))
+
+
 def _alive(pid: int) -> bool:
     try:
         os.kill(pid, 0)

@@ -15,7 +15,6 @@ and :func:`run` (fit and publish). Every intermediate result is cached per level
 from __future__ import annotations
 
 import shutil
-import tempfile
 import weakref
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
@@ -115,7 +114,7 @@ class Reducer:
             else:
                 spill = cache.spill_dir(key) if self.use_cache else None
                 if spill is None:
-                    spill = Path(tempfile.mkdtemp(prefix="reduce-spill-"))
+                    spill = cache.temp_spill_dir()
                 weakref.finalize(self, shutil.rmtree, spill, True)
                 p = aggregate.scan_partial(self.recipe, self.source, progress=self.progress,
                                            spill_dir=spill)

@@ -134,6 +134,11 @@ def test_spill_folder_outside_the_cache_is_removed(tmp_path: Path,
     del red, spilled
     gc.collect()
     assert not folder.exists()
+    # A folder left by a process killed mid-scan is removed by the next spilling run.
+    stale = tmp_path / "tmp" / "reduce-spill-999999999-abcd"
+    (stale / "rows").mkdir(parents=True)
+    Reducer(reduce.load_recipe(tmp_path / "case" / "recipe.toml"), use_cache=False).finest()
+    assert not stale.exists()
 
 
 # --- the demo recipes ---------------------------------------------------------------------------
@@ -176,3 +181,31 @@ def test_demo_recipes_give_the_same_payloads_spilled(name: str, always: bool, de
     assert isinstance(split.finest(), Spilled) or not always
     assert [split.payload(lv) for lv in levels] == expected
     assert split.finest().accounting == whole.finest().accounting
+
+
+def test_full_disk_while_spilling_is_one_line_exit_2_and_nothing_left(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from click.testing import CliRunner
+
+    from reduce.cli import main
+
+    cache = tmp_path / "cache"
+    monkeypatch.setenv("REDUCE_CACHE_DIR", str(cache))
+    monkeypatch.setenv("REDUCE_PROBE_ROWS", "1100")
+    path = _sparse(tmp_path / "case")
+
+    def full(self: pl.LazyFrame, *args: Any, **kw: Any) -> None:
+        # What polars raises when the disk fills up mid-write (seen on a 2 MB tmpfs).
+        raise pl.exceptions.ComputeError("parquet: File out of specification: underlying IO "
+                                         "error: No space left on device (os error 28)")
+
+    monkeypatch.setattr(pl.LazyFrame, "sink_parquet", full)
+    res = CliRunner().invoke(main, ["run", str(path), "--quiet"])
+    assert res.exit_code == 2
+    assert res.stderr.strip().splitlines() == [
+        f"error: {cache}: cannot write the scan's keyed rows (No space left on device); free "
+        "space there or point REDUCE_CACHE_DIR (TMPDIR with --no-cache) at a disk with room "
+        "for about 16 bytes per event"]
+    assert not (tmp_path / "case" / "out").exists()
+    gc.collect()
+    assert list(cache.iterdir()) == []
