@@ -27,6 +27,7 @@ from reduce import aggregate, cache, encode, normalize, prune
 from reduce import budget as bsearch
 from reduce.aggregate import Partial, Spilled
 from reduce.errors import BudgetError, RecipeError
+from reduce.keys import coarsen
 from reduce.normalize import NormalizeReport
 from reduce.publish import manifest_path, publish, resolve_output, sha256
 from reduce.recipe import Budget, Recipe, TimeBin, load_recipe, parse_time_bin
@@ -43,6 +44,11 @@ from reduce.sizes import (
 from reduce.source import OpenSource, open_source
 
 Progress = Callable[[str], None]
+
+# The distinct keys of a level counted from spilled rows are kept (per part) up to this many
+# rows, about 160 MB for hex x time x category, so that coarser levels the search counts next
+# come from them instead of another pass over the spilled rows.
+KEEP_KEY_ROWS = 5_000_000
 
 
 @dataclass
@@ -93,6 +99,8 @@ class Reducer:
         self._ranks: dict[tuple[Any, Any], pl.Series] = {}
         self._row_counts: dict[tuple[Any, ...], int] = {}
         self._histograms: dict[tuple[Any, Any], pl.DataFrame] = {}
+        # distinct keys per part of levels counted from spilled rows, when small enough
+        self._keysets: dict[tuple[Any, Any], list[pl.DataFrame]] = {}
         self._region_geoms: dict[tuple[float, int], dict[str, Any]] = {}
         self._boundaries: Any = None
         n = recipe.normalize
@@ -233,8 +241,28 @@ class Reducer:
             out = hist(self._rollup(h, t).table)
         else:
             tb = parse_time_bin(t) if t else None
-            parts = [hist(table) for table in aggregate.rollup_spilled_parts(
-                self.recipe, finest, hex_res=h, time_bin=tb, keys_only=True)]
+            at_hand = [(sum(p.height for p in ks), kh, kt) for (kh, kt), ks
+                       in self._keysets.items() if _finer_or_equal(kh, kt, h, tb)]
+            if at_hand:  # coarsen the distinct keys of a finer level counted before
+                _, kh, kt = min(at_hand, key=lambda x: x[0])
+                mapping = coarsen(self.recipe, hex_res=h, time_bin=tb, from_hex=kh,
+                                  from_time=parse_time_bin(kt) if kt else None)
+                tables: Any = (ks.lazy().with_columns(mapping).unique()
+                               .collect(engine="streaming") for ks in self._keysets[(kh, kt)])
+            else:
+                tables = aggregate.rollup_spilled_parts(self.recipe, finest, hex_res=h,
+                                                        time_bin=tb, keys_only=True)
+            parts: list[pl.DataFrame] = []
+            kept: list[pl.DataFrame] | None = []
+            kept_rows = 0
+            for table in tables:
+                parts.append(hist(table))
+                kept_rows += table.height
+                if kept is not None:
+                    kept = kept + [table] if kept_rows <= KEEP_KEY_ROWS else None
+                del table
+            if kept is not None:
+                self._keysets[key] = kept
             both = pl.concat(parts)
             if outer:
                 out = both.group_by("n").agg(pl.col("groups").sum())

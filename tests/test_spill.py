@@ -21,7 +21,7 @@ import pytest
 from conftest import random_events, write_case
 
 import reduce
-from reduce import aggregate
+from reduce import aggregate, pipeline
 from reduce.aggregate import Partial, Spilled
 from reduce.pipeline import Reducer
 
@@ -75,10 +75,14 @@ def test_spilled_scan_gives_every_level_byte_for_byte(tmp_path: Path,
     if not filters:  # rows 5, 402, ... lack a latitude; rows 7, 620, ... a time
         assert finest.accounting.invalid_by_reason == {"coordinates": 13, "time": 9}
     assert got == expected
-    # Row counts taken part by part equal the rows of each level.
-    counted = Reducer(reduce.load_recipe(path), use_cache=False)
-    for level in _levels(counted.recipe):
-        assert counted.row_count(level) == spilled.rows(level).frame.height, level
+    # Row counts taken part by part (from the spilled rows, or from the distinct keys of a
+    # finer level counted before) equal the rows of each level.
+    for keep in (0, pipeline.KEEP_KEY_ROWS):
+        monkeypatch.setattr(pipeline, "KEEP_KEY_ROWS", keep)
+        counted = Reducer(reduce.load_recipe(path), use_cache=False)
+        for level in _levels(counted.recipe):
+            assert counted.row_count(level) == spilled.rows(level).frame.height, level
+        assert bool(counted._keysets) == bool(keep)
     # The finest level aggregated from the files equals the one-pass partial.
     keys = list(whole.partial().keys)
     assert spilled.partial().table.sort(keys).equals(whole.partial().table.sort(keys))
@@ -202,10 +206,10 @@ def test_full_disk_while_spilling_is_one_line_exit_2_and_nothing_left(
     monkeypatch.setattr(pl.LazyFrame, "sink_parquet", full)
     res = CliRunner().invoke(main, ["run", str(path), "--quiet"])
     assert res.exit_code == 2
-    assert res.stderr.strip().splitlines() == [
+    assert res.stderr.strip().splitlines() == [(
         f"error: {cache}: cannot write the scan's keyed rows (No space left on device); free "
         "space there or point REDUCE_CACHE_DIR (TMPDIR with --no-cache) at a disk with room "
-        "for about 16 bytes per event"]
+        "for about 16 bytes per event")]
     assert not (tmp_path / "case" / "out").exists()
     gc.collect()
     assert list(cache.iterdir()) == []
