@@ -4,8 +4,10 @@ Re-fitting a recipe with another budget, measure or order (``reduce ladder --bud
 ``reduce.fit(...)``) needs only the finest partial, not the source. The partial is stored
 under a key made of the recipe's scan-relevant content (source, grouping keys, measures) and
 the source fingerprint (every input file's path, size and modification time), so changing
-either makes a new entry and the old one is simply never read again. Entries are plain parquet
-and JSON files; the whole folder is safe to delete at any time.
+either makes a new entry; storing it removes the entries of the same recipe over older
+versions of the source, so a nightly job keeps one entry. A large, sparse source's entry
+holds its spilled keyed rows (see ``aggregate.Spilled``). Entries are plain parquet and JSON
+files; the whole folder is safe to delete at any time (not while a run is using it).
 
 Location: ``$REDUCE_CACHE_DIR`` if set, else ``$XDG_CACHE_HOME/reduce``, else
 ``~/.cache/reduce``.
@@ -117,9 +119,14 @@ def _meta(p: Partial | Spilled) -> dict[str, object]:
                            "invalid_by_reason": p.accounting.invalid_by_reason}}
 
 
-def store(key: str, p: Partial | Spilled) -> Partial | Spilled | None:
+def store(key: str, p: Partial | Spilled, *, recipe: str = "") -> Partial | Spilled | None:
     """Store a partial; returns it as stored (a spilled partial's files move into the
-    entry) or None on failure, which is otherwise ignored (the cache is an optimisation)."""
+    entry) or None on failure, which is otherwise ignored (the cache is an optimisation).
+
+    ``recipe`` (the recipe's scan-relevant hash) is recorded, and the entries of the same
+    recipe over other versions of the source are removed: a nightly job keeps one entry, not
+    one per night.
+    """
     root = cache_dir()
     final = root / key
     if isinstance(p, Spilled):
@@ -127,11 +134,13 @@ def store(key: str, p: Partial | Spilled) -> Partial | Spilled | None:
         try:
             if folder.parent.resolve() != root.resolve():
                 return None
-            meta = {**_meta(p), "parts": [list(part) for part in p.parts], "rows": p.rows}
+            meta = {**_meta(p), "recipe": recipe, "parts": [list(part) for part in p.parts],
+                    "rows": p.rows}
             (folder / "meta.json").write_bytes(orjson.dumps(meta))
             if final.exists():
                 shutil.rmtree(final, ignore_errors=True)
             os.replace(folder, final)
+            _drop_others(root, key, recipe)
             return p.moved(final)
         except OSError:
             return None
@@ -144,13 +153,26 @@ def store(key: str, p: Partial | Spilled) -> Partial | Spilled | None:
             p.pairs[name].write_parquet(tmp / f"pairs-{i}.parquet", compression="zstd")
             p.values[name].to_frame("v").write_parquet(tmp / f"values-{i}.parquet",
                                                        compression="zstd")
-        meta = {**_meta(p), "pairs": names}
+        meta = {**_meta(p), "recipe": recipe, "pairs": names}
         (tmp / "meta.json").write_bytes(orjson.dumps(meta))
         if final.exists():
             shutil.rmtree(final, ignore_errors=True)
         os.replace(tmp, final)
+        _drop_others(root, key, recipe)
         return p
     except OSError:
         with contextlib.suppress(OSError):
             shutil.rmtree(tmp, ignore_errors=True)
         return None
+
+
+def _drop_others(root: Path, key: str, recipe: str) -> None:
+    """Remove the entries of ``recipe`` other than ``key`` (older versions of its source)."""
+    if not recipe:
+        return
+    for d in root.iterdir():
+        if d.name == key or d.name.startswith("."):
+            continue
+        with contextlib.suppress(OSError, orjson.JSONDecodeError, AttributeError):
+            if orjson.loads((d / "meta.json").read_bytes()).get("recipe") == recipe:
+                shutil.rmtree(d, ignore_errors=True)

@@ -127,7 +127,7 @@ class Reducer:
                 p = aggregate.scan_partial(self.recipe, self.source, progress=self.progress,
                                            spill_dir=spill)
                 if self.use_cache:
-                    p = cache.store(key, p) or p
+                    p = cache.store(key, p, recipe=self.recipe.scan_hash) or p
             if isinstance(p, Spilled):
                 prune.check_rest_label_lazy(self.recipe, p.frame())
             else:

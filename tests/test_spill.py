@@ -213,3 +213,25 @@ def test_full_disk_while_spilling_is_one_line_exit_2_and_nothing_left(
     assert not (tmp_path / "case" / "out").exists()
     gc.collect()
     assert list(cache.iterdir()) == []
+
+
+@pytest.mark.parametrize("probe", ["1100", "1000000"], ids=["spilled", "in-memory"])
+def test_new_source_version_replaces_the_recipes_cache_entry(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch, probe: str) -> None:
+    cache = tmp_path / "cache"
+    monkeypatch.setenv("REDUCE_CACHE_DIR", str(cache))
+    monkeypatch.setenv("REDUCE_PROBE_ROWS", probe)
+    path = _sparse(tmp_path / "case")
+    other = write_case(tmp_path / "other", random_events(np.random.default_rng(3), 2000),
+                       group={"region": {"column": "region"}}, measures={"n": "count"})
+    reduce.fit(other)
+    first = reduce.fit(path)
+    assert len([d for d in cache.iterdir() if not d.name.startswith(".")]) == 2
+    events = tmp_path / "case" / "events.parquet"
+    pl.read_parquet(events).head(4000).write_parquet(events)  # tonight's source
+    again = reduce.fit(path)
+    assert not again.partial_from_cache
+    entries = [d for d in cache.iterdir() if not d.name.startswith(".")]
+    assert len(entries) == 2  # the new entry replaced last night's; the other recipe's stays
+    assert reduce.fit(other).partial_from_cache
+    assert again.payload != first.payload
