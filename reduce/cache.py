@@ -50,12 +50,13 @@ def spill_dir(key: str) -> Path | None:
     try:
         root.mkdir(parents=True, exist_ok=True)
         for old in root.glob(".*.spill"):
-            pid = old.name.rsplit(".", 2)[-2]
-            if pid.isdigit() and not _alive(int(pid)):
+            parts = old.name.split(".")  # "", key, pid, random, "spill"
+            if len(parts) == 5 and parts[2].isdigit() and not _alive(int(parts[2])):
                 shutil.rmtree(old, ignore_errors=True)
-        d = root / f".{key}.{os.getpid()}.spill"
-        d.mkdir(exist_ok=True)
-        return d
+        import tempfile
+
+        return Path(tempfile.mkdtemp(prefix=f".{key}.{os.getpid()}.", suffix=".spill",
+                                     dir=root))
     except OSError:
         return None
 
@@ -129,6 +130,10 @@ def store(key: str, p: Partial | Spilled, *, recipe: str = "") -> Partial | Spil
     """
     root = cache_dir()
     final = root / key
+    if _usable(final):
+        # Another run stored this entry meanwhile and may be reading it: leave it alone (a
+        # spilled partial keeps its own files, removed when its run ends).
+        return None
     if isinstance(p, Spilled):
         folder = p.root
         try:
@@ -137,7 +142,7 @@ def store(key: str, p: Partial | Spilled, *, recipe: str = "") -> Partial | Spil
             meta = {**_meta(p), "recipe": recipe, "parts": [list(part) for part in p.parts],
                     "rows": p.rows}
             (folder / "meta.json").write_bytes(orjson.dumps(meta))
-            if final.exists():
+            if final.exists():  # damaged
                 shutil.rmtree(final, ignore_errors=True)
             os.replace(folder, final)
             _drop_others(root, key, recipe)
@@ -164,6 +169,13 @@ def store(key: str, p: Partial | Spilled, *, recipe: str = "") -> Partial | Spil
         with contextlib.suppress(OSError):
             shutil.rmtree(tmp, ignore_errors=True)
         return None
+
+
+def _usable(entry: Path) -> bool:
+    """Whether an entry looks complete (its meta.json parses); damaged ones are replaced."""
+    with contextlib.suppress(OSError, orjson.JSONDecodeError):
+        return isinstance(orjson.loads((entry / "meta.json").read_bytes()), dict)
+    return False
 
 
 def _drop_others(root: Path, key: str, recipe: str) -> None:

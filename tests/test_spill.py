@@ -12,6 +12,7 @@ from __future__ import annotations
 import gc
 import itertools
 import re
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
@@ -235,3 +236,31 @@ def test_new_source_version_replaces_the_recipes_cache_entry(
     assert len(entries) == 2  # the new entry replaced last night's; the other recipe's stays
     assert reduce.fit(other).partial_from_cache
     assert again.payload != first.payload
+
+
+def test_an_entry_stored_by_another_run_is_left_alone_and_a_damaged_one_replaced(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from reduce import cache as cache_mod
+
+    cache = tmp_path / "cache"
+    monkeypatch.setenv("REDUCE_CACHE_DIR", str(cache))
+    monkeypatch.setenv("REDUCE_PROBE_ROWS", "1100")
+    path = _sparse(tmp_path / "case")
+    reader = Reducer(reduce.load_recipe(path))  # stores the entry, then reads from it
+    stored = reader.finest()
+    assert isinstance(stored, Spilled) and stored.root.parent == cache
+    before = {f: f.stat().st_mtime_ns for f in stored.files}
+    # A second run that scanned at the same time stores later: the entry is not replaced
+    # under the first run's feet (the late run keeps its own files until it ends).
+    key = stored.root.name
+    late = cache_mod.spill_dir(key)
+    assert late is not None
+    assert cache_mod.store(key, replace(stored, root=late), recipe="r") is None
+    assert {f: f.stat().st_mtime_ns for f in stored.files} == before
+    assert reader.payload(_levels(reader.recipe)[0])
+    # A damaged entry (its meta.json cut short) is replaced by the next run.
+    (stored.root / "meta.json").write_text("{")
+    again = Reducer(reduce.load_recipe(path))
+    assert isinstance(again.finest(), Spilled) and not again.partial_from_cache
+    after = Reducer(reduce.load_recipe(path))
+    assert isinstance(after.finest(), Spilled) and after.partial_from_cache
