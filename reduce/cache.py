@@ -26,6 +26,7 @@ import polars as pl
 
 from reduce import __version__
 from reduce.aggregate import Accounting, Partial, Spilled
+from reduce.publish import process_alive
 from reduce.recipe import Recipe, parse_time_bin
 
 
@@ -51,7 +52,7 @@ def spill_dir(key: str) -> Path | None:
         root.mkdir(parents=True, exist_ok=True)
         for old in root.glob(".*.spill"):
             parts = old.name.split(".")  # "", key, pid, random, "spill"
-            if len(parts) == 5 and parts[2].isdigit() and not _alive(int(parts[2])):
+            if len(parts) == 5 and parts[2].isdigit() and not process_alive(int(parts[2])):
                 shutil.rmtree(old, ignore_errors=True)
         import tempfile
 
@@ -69,19 +70,9 @@ def temp_spill_dir() -> Path:
     tmp = Path(tempfile.gettempdir())
     for old in tmp.glob("reduce-spill-*-*"):
         pid = old.name.split("-")[2]
-        if pid.isdigit() and not _alive(int(pid)):
+        if pid.isdigit() and not process_alive(int(pid)):
             shutil.rmtree(old, ignore_errors=True)
     return Path(tempfile.mkdtemp(prefix=f"reduce-spill-{os.getpid()}-"))
-
-
-def _alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
 
 
 def load(key: str) -> Partial | Spilled | None:

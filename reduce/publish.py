@@ -171,8 +171,11 @@ def _alive(tmp: Path) -> bool:
         pid = int(tmp.name.rsplit(".", 2)[-2])
     except (ValueError, IndexError):
         return False
-    if pid == os.getpid():
-        return False
+    return pid != os.getpid() and process_alive(pid)
+
+
+def process_alive(pid: int) -> bool:
+    """Whether a process with this id runs (one of another user's counts as running)."""
     try:
         os.kill(pid, 0)
     except ProcessLookupError:

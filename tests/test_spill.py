@@ -44,6 +44,15 @@ def _sparse(tmp: Path, **kw: Any) -> Path:
                       measures=MEASURES, prune={"top": {"k": [4, 2], "by": "n"}})
 
 
+@pytest.fixture
+def cached_case(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> tuple[Path, Path]:
+    """A sparse case that spills, with its own cache folder: (cache folder, recipe)."""
+    cache = tmp_path / "cache"
+    monkeypatch.setenv("REDUCE_CACHE_DIR", str(cache))
+    monkeypatch.setenv("REDUCE_PROBE_ROWS", "1100")
+    return cache, _sparse(tmp_path / "case")
+
+
 def _levels(recipe: reduce.Recipe) -> list[dict[str, Any]]:
     ladder = recipe.ladder()
     return [dict(zip(ladder, combo)) for combo in itertools.product(*ladder.values())]
@@ -105,11 +114,8 @@ def test_dense_source_is_scanned_in_two_passes_not_spilled(tmp_path: Path,
 
 
 def test_spilled_partial_is_cached_and_refits_give_the_same_payload(
-        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    cache = tmp_path / "cache"
-    monkeypatch.setenv("REDUCE_CACHE_DIR", str(cache))
-    monkeypatch.setenv("REDUCE_PROBE_ROWS", "1100")
-    path = _sparse(tmp_path / "case")
+        cached_case: tuple[Path, Path]) -> None:
+    cache, path = cached_case
     first = reduce.fit(path, budget="20KB")
     again = reduce.fit(path, budget="20KB")
     assert not first.partial_from_cache and again.partial_from_cache
@@ -189,15 +195,13 @@ def test_demo_recipes_give_the_same_payloads_spilled(name: str, always: bool, de
 
 
 def test_full_disk_while_spilling_is_one_line_exit_2_and_nothing_left(
-        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+        cached_case: tuple[Path, Path]) -> None:
     from click.testing import CliRunner
 
     from reduce.cli import main
 
-    cache = tmp_path / "cache"
-    monkeypatch.setenv("REDUCE_CACHE_DIR", str(cache))
-    monkeypatch.setenv("REDUCE_PROBE_ROWS", "1100")
-    path = _sparse(tmp_path / "case")
+    cache, path = cached_case
 
     def full(self: pl.LazyFrame, *args: Any, **kw: Any) -> None:
         # What polars raises when the disk fills up mid-write (seen on a 2 MB tmpfs).
@@ -239,13 +243,10 @@ def test_new_source_version_replaces_the_recipes_cache_entry(
 
 
 def test_an_entry_stored_by_another_run_is_left_alone_and_a_damaged_one_replaced(
-        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+        cached_case: tuple[Path, Path]) -> None:
     from reduce import cache as cache_mod
 
-    cache = tmp_path / "cache"
-    monkeypatch.setenv("REDUCE_CACHE_DIR", str(cache))
-    monkeypatch.setenv("REDUCE_PROBE_ROWS", "1100")
-    path = _sparse(tmp_path / "case")
+    cache, path = cached_case
     reader = Reducer(reduce.load_recipe(path))  # stores the entry, then reads from it
     stored = reader.finest()
     assert isinstance(stored, Spilled) and stored.root.parent == cache
