@@ -285,7 +285,7 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
         rest = scan(src.rows_frame(probe, input_rows - probe))
         both = pl.concat([first, rest], how="vertical_relaxed")
         del first, rest
-        grouped = both.group_by([*keys, INVALID]).agg(_merge_scanned(both.columns))
+        grouped = both.group_by([*keys, INVALID]).agg(_merge_aggs(renamed, both.columns))
     if progress:
         progress("building the finest partial")
     kept = int(grouped.get_column(N).sum()) if grouped.height else 0
@@ -313,26 +313,10 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
         table = table.drop([GROUP, *dnames])
     else:
         table = valid
-    _check_not_empty(recipe, label, input_rows, kept, by_reason)
-    acc = Accounting(input_rows=input_rows, filtered_rows=input_rows - kept,
-                     invalid_rows=sum(n for r, n in by_reason.items() if r != "unassigned"),
-                     invalid_by_reason=by_reason)
+    acc = _accounting(recipe, label, input_rows, kept, by_reason)
     return Partial(keys=keys, table=table, pairs=pairs, values=values,
                    hex_res=recipe.hex.levels[0] if recipe.hex else None,
                    time_bin=recipe.time.levels[0] if recipe.time else None, accounting=acc)
-
-
-def _merge_scanned(columns: Sequence[str]) -> list[pl.Expr]:
-    """Aggregations merging scan results of two ranges of rows (same groups, same columns)."""
-    out = []
-    for c in columns:
-        if c.startswith("__min_"):
-            out.append(pl.col(c).min())
-        elif c.startswith("__max_"):
-            out.append(pl.col(c).max())
-        elif c.startswith("__") and c != INVALID:
-            out.append(pl.col(c).sum())
-    return out
 
 
 def _check_overflow(recipe: Recipe, renamed: Sequence[MeasureSpec], label: str,
@@ -388,10 +372,7 @@ def _spilled(recipe: Recipe, label: str, keys: tuple[str, ...], root: Path, inpu
     inv = counts.filter(pl.col(INVALID) != 0).sort(INVALID)
     by_reason = {INVALID_REASONS[int(r)]: int(n)
                  for r, n in inv.select(INVALID, N).iter_rows()}
-    _check_not_empty(recipe, label, input_rows, kept, by_reason)
-    acc = Accounting(input_rows=input_rows, filtered_rows=input_rows - kept,
-                     invalid_rows=sum(n for r, n in by_reason.items() if r != "unassigned"),
-                     invalid_by_reason=by_reason)
+    acc = _accounting(recipe, label, input_rows, kept, by_reason)
     return Spilled(keys=keys, root=root, parts=parts, rows=kept - sum(by_reason.values()),
                    hex_res=recipe.hex.levels[0] if recipe.hex else None,
                    time_bin=recipe.time.levels[0] if recipe.time else None, accounting=acc)
@@ -405,19 +386,21 @@ def rollup_spilled_parts(recipe: Recipe, s: Spilled, *, hex_res: int | None,
     (``keys_only``: just the level's distinct keys, which is all a row count needs)."""
     mapping = coarsen(recipe, hex_res=hex_res, time_bin=time_bin, from_hex=s.hex_res,
                       from_time=s.time_bin)
-    renamed, _ = _scan_measures(recipe, set())
+    aggs: list[pl.Expr] = []
+    if not keys_only:
+        renamed, _ = _scan_measures(recipe, set())
+        schema = s.frame(0).collect_schema()
+        floats = {c for c, t in schema.items() if c.startswith("__in_") and t.is_float()}
+        aggs = [a for a in _scan_aggs(renamed, floats)
+                if not a.meta.output_name().startswith("__ovf")]
     for i in range(len(s.parts)):
         lf = s.frame(i)
         if keys_only:
             yield (lf.select(s.keys).with_columns(mapping).unique()
                    .collect(engine="streaming"))
-            continue
-        schema = lf.collect_schema()
-        floats = {c for c, t in schema.items() if c.startswith("__in_") and t.is_float()}
-        aggs = [a for a in _scan_aggs(renamed, floats)
-                if not a.meta.output_name().startswith("__ovf")]
-        yield (lf.with_columns(mapping).group_by(list(s.keys)).agg(aggs)
-               .collect(engine="streaming"))
+        else:
+            yield (lf.with_columns(mapping).group_by(list(s.keys)).agg(aggs)
+                   .collect(engine="streaming"))
 
 
 def rollup_spilled(recipe: Recipe, s: Spilled, *, hex_res: int | None,
@@ -454,6 +437,15 @@ def _scan_error(recipe: Recipe, src: OpenSource, label: str,
                            f"check that the {files} complete and of that format")
     return SourceError(f"{label}: cannot compute the keys ({_first(e)}); check the column "
                        "types named in the recipe")
+
+
+def _accounting(recipe: Recipe, label: str, input_rows: int, kept: int,
+                by_reason: dict[str, int]) -> Accounting:
+    """Where the scanned rows went; refuses a scan that kept nothing usable."""
+    _check_not_empty(recipe, label, input_rows, kept, by_reason)
+    return Accounting(input_rows=input_rows, filtered_rows=input_rows - kept,
+                      invalid_rows=sum(n for r, n in by_reason.items() if r != "unassigned"),
+                      invalid_by_reason=by_reason)
 
 
 def _check_not_empty(recipe: Recipe, label: str, input_rows: int, kept: int,

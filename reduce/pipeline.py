@@ -128,10 +128,7 @@ class Reducer:
                                            spill_dir=spill)
                 if self.use_cache:
                     p = cache.store(key, p, recipe=self.recipe.scan_hash) or p
-            if isinstance(p, Spilled):
-                prune.check_rest_label_lazy(self.recipe, p.frame())
-            else:
-                prune.check_rest_label(self.recipe, p)
+            prune.check_rest_label(self.recipe, p.frame() if isinstance(p, Spilled) else p)
             self._finest = p
         return self._finest
 

@@ -51,26 +51,17 @@ def _relabel(recipe: Recipe, p: Partial, fold: pl.DataFrame, on: list[str]) -> P
     return relabel(recipe, p, mapped)
 
 
-def check_rest_label(recipe: Recipe, p: Partial) -> None:
-    """The rest label must not also be a real category (the two would merge silently)."""
-    if recipe.top is None or not p.table.height:
-        return
-    rest = recipe.top.rest
-    clash = p.table.filter(pl.all_horizontal([pl.col(c) == rest for c in recipe.categories]))
-    if clash.height:
-        raise SourceError(f"{recipe.file.name}: prune.top.rest: the label {rest!r} is also a "
-                          f"value of column {recipe.categories[0]!r} in the data; choose "
-                          "another rest label")
+def check_rest_label(recipe: Recipe, p: Partial | pl.LazyFrame) -> None:
+    """The rest label must not also be a real category (the two would merge silently).
 
-
-def check_rest_label_lazy(recipe: Recipe, frame: pl.LazyFrame) -> None:
-    """:func:`check_rest_label` over a partial kept on disk (reads the category columns)."""
+    ``p`` is a partial, or the lazy rows of one kept on disk (only its category columns are
+    read)."""
     if recipe.top is None:
         return
     rest = recipe.top.rest
-    hit = (frame.filter(pl.all_horizontal([pl.col(c) == rest for c in recipe.categories]))
-           .select(pl.len()).collect(engine="streaming").item())
-    if hit:
+    clash = pl.all_horizontal([pl.col(c) == rest for c in recipe.categories])
+    rows = p.lazy() if isinstance(p, pl.LazyFrame) else p.table.lazy()
+    if rows.filter(clash).select(pl.len()).collect(engine="streaming").item():
         raise SourceError(f"{recipe.file.name}: prune.top.rest: the label {rest!r} is also a "
                           f"value of column {recipe.categories[0]!r} in the data; choose "
                           "another rest label")

@@ -13,7 +13,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import reduce
-from reduce.budget import search
+from reduce.budget import all_levels, search
 from reduce.pipeline import Reducer
 from reduce.sizes import fits_on, measure_all, parse_size, quick_look, size_on
 from tests._builders import HEX_RECIPE, project
@@ -179,10 +179,6 @@ def test_frontier_is_a_polars_frame_with_one_row_per_candidate(tmp_path: Path) -
 # --- judging levels before measuring them exactly ------------------------------------------------
 
 
-def _levels(recipe: reduce.Recipe) -> list[dict[str, object]]:
-    ladder = recipe.ladder()
-    return [dict(zip(ladder, combo)) for combo in itertools.product(*ladder.values())]
-
 
 @pytest.mark.parametrize("prune_table", [
     'top = { k = [4, 2, 1], by = "reports" }',  # ranked within every other key: counted
@@ -194,7 +190,7 @@ def test_row_count_equals_the_rows_of_every_level(tmp_path: Path, prune_table: s
     recipe = reduce.load_recipe(project(tmp_path, text))
     counted = Reducer(recipe, use_cache=False)
     built = Reducer(recipe, use_cache=False)
-    for level in _levels(recipe):
+    for level in all_levels(recipe.ladder()):
         assert counted.row_count(level) == built.rows(level).frame.height, level
 
 
@@ -202,7 +198,7 @@ def test_row_count_equals_the_rows_of_every_level(tmp_path: Path, prune_table: s
 @settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 def test_quick_look_bounds_the_exact_size_and_never_contradicts_it(hex_reducer: Reducer,
                                                                    data: st.DataObject) -> None:
-    level = data.draw(st.sampled_from(_levels(hex_reducer.recipe)))
+    level = data.draw(st.sampled_from(all_levels(hex_reducer.recipe.ladder())))
     on = data.draw(st.sampled_from(["raw", "gzip", "brotli"]))
     payload = hex_reducer.payload(level)
     exact = size_on(payload, on)  # type: ignore[arg-type]

@@ -10,7 +10,6 @@ accounting.
 from __future__ import annotations
 
 import gc
-import itertools
 import re
 from dataclasses import replace
 from pathlib import Path
@@ -24,6 +23,7 @@ from conftest import random_events, write_case
 import reduce
 from reduce import aggregate, pipeline
 from reduce.aggregate import Partial, Spilled
+from reduce.budget import all_levels
 from reduce.pipeline import Reducer
 
 MEASURES = {"n": "count", "sx": {"sum": "x"}, "sy": {"sum": "y"}, "mx": {"min": "x"},
@@ -53,15 +53,11 @@ def cached_case(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> tuple[Path, 
     return cache, _sparse(tmp_path / "case")
 
 
-def _levels(recipe: reduce.Recipe) -> list[dict[str, Any]]:
-    ladder = recipe.ladder()
-    return [dict(zip(ladder, combo)) for combo in itertools.product(*ladder.values())]
-
 
 def _payloads(recipe_path: Path) -> tuple[Reducer, dict[str, bytes]]:
     recipe = reduce.load_recipe(recipe_path)
     red = Reducer(recipe, use_cache=False)
-    return red, {str(lv): red.payload(lv) for lv in _levels(recipe)}
+    return red, {str(lv): red.payload(lv) for lv in all_levels(recipe.ladder())}
 
 
 @pytest.mark.parametrize(("filters", "part_rows"), [
@@ -90,7 +86,7 @@ def test_spilled_scan_gives_every_level_byte_for_byte(tmp_path: Path,
     for keep in (0, pipeline.KEEP_KEY_ROWS):
         monkeypatch.setattr(pipeline, "KEEP_KEY_ROWS", keep)
         counted = Reducer(reduce.load_recipe(path), use_cache=False)
-        for level in _levels(counted.recipe):
+        for level in all_levels(counted.recipe.ladder()):
             assert counted.row_count(level) == spilled.rows(level).frame.height, level
         assert bool(counted._keysets) == bool(keep)
     # The finest level aggregated from the files equals the one-pass partial.
@@ -181,7 +177,7 @@ def test_demo_recipes_give_the_same_payloads_spilled(name: str, always: bool, de
     path = tmp_path / f"{name}.toml"
     path.write_text(_without_distinct((RECIPES / f"{name}.toml").read_text(), demo_root))
     recipe = reduce.load_recipe(path)
-    levels = _levels(recipe)[:40]
+    levels = all_levels(recipe.ladder())[:40]
     whole = Reducer(recipe, use_cache=False)
     expected = [whole.payload(lv) for lv in levels]
     monkeypatch.setenv("REDUCE_PROBE_ROWS", "400")
@@ -258,7 +254,7 @@ def test_an_entry_stored_by_another_run_is_left_alone_and_a_damaged_one_replaced
     assert late is not None
     assert cache_mod.store(key, replace(stored, root=late), recipe="r") is None
     assert {f: f.stat().st_mtime_ns for f in stored.files} == before
-    assert reader.payload(_levels(reader.recipe)[0])
+    assert reader.payload(all_levels(reader.recipe.ladder())[0])
     # A damaged entry (its meta.json cut short) is replaced by the next run.
     (stored.root / "meta.json").write_text("{")
     again = Reducer(reduce.load_recipe(path))
