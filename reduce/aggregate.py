@@ -210,12 +210,13 @@ def _scan_measures(recipe: Recipe, float_inputs: set[str]
 
 def scan_partial(recipe: Recipe, src: OpenSource, *,
                  progress: Callable[[str], None] | None = None,
-                 spill_dir: Path | None = None) -> Partial | Spilled:
+                 spill_dir: Callable[[], Path] | None = None) -> Partial | Spilled:
     """Compute the finest partial with one streaming scan of the source.
 
-    With ``spill_dir`` (a folder to write to), a large parquet source whose events are too
-    sparse to shrink at the finest level becomes a :class:`Spilled` partial instead (see
-    :data:`PROBE_ROWS`), so memory does not grow with the source.
+    With ``spill_dir`` (which makes a folder to write to; called only when needed), a large
+    parquet source whose events are too sparse to shrink at the finest level becomes a
+    :class:`Spilled` partial instead (see :data:`PROBE_ROWS`), so memory does not grow with
+    the source.
     """
     label = _label(src)
     lf = src.frame
@@ -262,11 +263,12 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
             if progress:
                 progress(f"scanning the source: writing its {input_rows:,} keyed rows to disk "
                          "(events too sparse to group in memory)")
+            folder = spill_dir()
             rows = lf.select(select)
             if reason is None:
                 rows = rows.with_columns(reason_of_groups(list(keys)))
             n_parts = max(1, min(64, -(-input_rows // PART_ROWS)))
-            target = pl.PartitionBy(spill_dir / "rows", include_key=False,
+            target = pl.PartitionBy(folder / "rows", include_key=False,
                                     key={"__part": _part_of(recipe, keys, n_parts)})
             try:
                 rows.sink_parquet(target, compression="lz4", statistics=False, mkdir=True)
@@ -275,11 +277,11 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
                 if full is None and isinstance(e, pl.exceptions.PolarsError):
                     raise _scan_error(recipe, src, label, e) from None
                 why = full or getattr(e, "strerror", None) or _first(e)
-                raise OutputError(f"{spill_dir.parent}: cannot write the scan's keyed rows "
+                raise OutputError(f"{folder.parent}: cannot write the scan's keyed rows "
                                   f"({why}); free space there or point REDUCE_CACHE_DIR (TMPDIR "
                                   "with --no-cache) at a disk with room for about 16 bytes per "
                                   "event") from None
-            return _spilled(recipe, label, keys, spill_dir, input_rows, renamed, floats)
+            return _spilled(recipe, label, keys, folder, input_rows, renamed, floats)
         if progress:
             progress(f"scanning the source: rows {probe + 1:,} to {input_rows:,}")
         rest = scan(src.rows_frame(probe, input_rows - probe))

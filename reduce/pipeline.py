@@ -120,10 +120,12 @@ class Reducer:
                 self.partial_from_cache = True
                 self.progress("using the cached finest partial")
             else:
-                spill = cache.spill_dir(key) if self.use_cache else None
-                if spill is None:
-                    spill = cache.temp_spill_dir()
-                weakref.finalize(self, shutil.rmtree, spill, True)
+                def spill() -> Path:  # made only if the source has to spill
+                    d = (cache.spill_dir(key) if self.use_cache else None) \
+                        or cache.temp_spill_dir()
+                    weakref.finalize(self, shutil.rmtree, d, True)
+                    return d
+
                 p = aggregate.scan_partial(self.recipe, self.source, progress=self.progress,
                                            spill_dir=spill)
                 if self.use_cache:
