@@ -28,9 +28,10 @@ from reduce import budget as bsearch
 from reduce.aggregate import Partial, Spilled
 from reduce.errors import BudgetError, RecipeError
 from reduce.keys import HEX, coarsen, hidden_below, is_hidden
+from reduce.levels import Level
 from reduce.normalize import NormalizeReport
 from reduce.publish import manifest_path, publish, resolve_output, sha256
-from reduce.recipe import Budget, Recipe, TimeBin, load_recipe, parse_time_bin
+from reduce.recipe import Budget, Recipe, TimeBin, load_recipe, parse_time_bin, with_budget
 from reduce.sizes import (
     BROTLI_AUTO_MAX,
     MEASURES,
@@ -40,6 +41,7 @@ from reduce.sizes import (
     measure_all,
     parse_size,
     quick_look,
+    quick_verdict,
 )
 from reduce.source import OpenSource, open_source
 
@@ -66,7 +68,7 @@ class FitResult:
     """What :func:`fit` and :func:`ladder` return."""
 
     recipe: Recipe
-    level: dict[str, Any] | None  # None when nothing fits
+    level: Level | None  # None when nothing fits
     payload: bytes | None
     candidates: list[bsearch.Candidate]
     frontier: pl.DataFrame
@@ -107,6 +109,7 @@ class Reducer:
         self._visibles: dict[tuple[Any, Any], Partial] = {}
         self._boundaries: Any = None
         self._key: str | None = None
+        self._fast: dict[tuple[Any, ...], tuple[Any, int | None, int | None]] = {}
         self._store: levels.Store | None = None
         n = recipe.normalize
         if n is not None and n.denominators is not None:
@@ -190,6 +193,11 @@ class Reducer:
         rec = self.record(c.level)
         more = levels.Record(level=rec.level, rows=rec.rows, elements=rec.elements,
                              raw=rec.raw, sha256=rec.sha256, gzip=c.gzip, brotli=c.brotli)
+        fast_on, fast, mid = self._fast.get(bsearch.level_key(c.level), (None, None, None))
+        if fast_on == "gzip":
+            more.gzip_fast, more.gzip_mid = fast, mid
+        elif fast_on == "brotli":
+            more.brotli_fast = fast
         if c.note.startswith(">") and on in ("gzip", "brotli") and limit is not None:
             setattr(more, f"{on}_floor", limit + 1)
         self.store.put(rec.merge(more))
@@ -469,7 +477,7 @@ class Reducer:
             return None
         want_brotli = on == "brotli" or (brotli is True) or (
             brotli is None and rec.raw <= BROTLI_AUTO_MAX)
-        c = bsearch.Candidate(level=dict(level), rows=rec.rows, elements=rec.elements,
+        c = bsearch.Candidate(level=Level.of(level), rows=rec.rows, elements=rec.elements,
                               raw=rec.raw, gzip=rec.gzip, brotli=rec.brotli)
         if exact or on is None or limit is None:
             if rec.gzip is None or (want_brotli and rec.brotli is None):
@@ -479,19 +487,27 @@ class Reducer:
                 c.floor = rec.size(on)
             return c
         verdict = rec.verdict(on, limit)
-        if verdict is None:
+        if verdict is not None:
+            c.fits = verdict
+            c.floor = rec.floor(on)
+            if rec.size(on) is None:
+                c.note = f"> {limit} {on} (measured before)"
+            return c
+        fast = rec.gzip_fast if on == "gzip" else rec.brotli_fast if on == "brotli" else None
+        if fast is None:
             return None
-        c.fits = verdict
-        c.floor = rec.floor(on)
-        if rec.size(on) is None:
-            c.note = f"> {limit} {on} (measured before)"
+        look = quick_verdict(on, limit, fast, rec.gzip_mid if on == "gzip" else None)
+        if look.fits is None:
+            return None
+        c.fits, c.floor, c.note = look.fits, look.floor, QUICK_NOTE
+        c.guess = look.mid or look.fast
         return c
 
     def _measure(self, level: Mapping[str, Any], *, exact: bool, on: Measure | None,
                  limit: int | None, brotli: bool | None) -> bsearch.Candidate:
         data = self.payload(level)
         rec = self.record(level)
-        c = bsearch.Candidate(level=dict(level), rows=rec.rows, elements=rec.elements,
+        c = bsearch.Candidate(level=Level.of(level), rows=rec.rows, elements=rec.elements,
                               raw=len(data))
         if exact or on is None or limit is None:
             s = measure_all(data, brotli=True if on == "brotli" else brotli)
@@ -502,6 +518,8 @@ class Reducer:
         else:
             look = quick_look(data, on, limit)
             c.floor = look.floor
+            c.guess = look.mid or look.fast
+            self._fast[bsearch.level_key(level)] = (on, look.fast, look.mid)
             if look.fits is not None:
                 c.fits = look.fits
                 c.note = QUICK_NOTE
@@ -527,9 +545,10 @@ class Reducer:
         bytes (the least seen on measured levels) times its rows; used only to skip levels
         far over the budget."""
         rows = self.row_count(level)
-        c = bsearch.Candidate(level=dict(level), rows=rows, elements=rows, raw=None)
+        c = bsearch.Candidate(level=Level.of(level), rows=rows, elements=rows, raw=None)
         c.fits = False
         c.estimated = True
+        c.guess = int(per_row * rows)
         c.note = f"~{int(per_row * rows):,} {on} bytes estimated from rows: over {limit:,}"
         return c
 
@@ -568,29 +587,21 @@ def _as_recipe(recipe: Recipe | str | Path, overrides: Mapping[str, str] | None)
 
 def _with_budget(recipe: Recipe, max_: str | int | None, on: str | None,
                  order: Sequence[str] | None) -> Recipe:
-    """Apply budget overrides given as arguments (validated like the file)."""
+    """Apply budget overrides given as arguments (typed, validated like the file)."""
     if max_ is None and on is None and order is None:
         return recipe
-    over: dict[str, str] = {}
+    size: int | None = None
     if max_ is not None:
         try:
-            over["budget.max"] = str(parse_size(max_))
+            size = parse_size(max_)
         except ValueError as e:
             raise RecipeError(f"--budget: {e}") from None
     elif recipe.budget is None:
         raise RecipeError(f"{recipe.file.name}: budget.max: --on and --order need a budget; "
                           "add --budget or a [budget] table")
-    if on is not None:
-        if on not in MEASURES:
-            raise RecipeError(f"--on: {on!r} is not a measure; use raw, gzip or brotli")
-        over["budget.on"] = f'"{on}"'
-    if order is not None:
-        over["budget.order"] = "[" + ", ".join(f'"{a}"' for a in order) + "]"
-    return load_recipe(recipe.file, overrides={**_overrides_of(recipe), **over})
-
-
-def _overrides_of(recipe: Recipe) -> dict[str, str]:
-    return dict(recipe.overrides)
+    if on is not None and on not in MEASURES:
+        raise RecipeError(f"--on: {on!r} is not a measure; use raw, gzip or brotli")
+    return with_budget(recipe, max=size, on=on, order=order)
 
 
 def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
@@ -620,7 +631,9 @@ def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
     margin = 1.5
     use_estimates = not exact and b is not None
 
-    def evaluate(level: dict[str, Any], *, force_exact: bool = False) -> bsearch.Candidate:
+    def evaluate(level: Mapping[str, Any], *, force_exact: bool = False
+                 ) -> bsearch.Candidate:
+        level = Level.of(level)
         k = bsearch.level_key(level)
         c = cands.get(k)
         if c is not None and not (force_exact and (c.estimated or c.gzip is None
@@ -646,16 +659,16 @@ def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
             red.forget(level)  # bounded memory: over-budget levels are never published
         return c
 
-    chosen_level: dict[str, Any] | None
+    chosen_level: Level | None
     if every_level:
         for lv in bsearch.all_levels(ladder_axes):
             evaluate(lv)
     if b is None:
-        chosen_level = r.finest_level()
+        chosen_level = Level.of(r.finest_level())
         evaluate(chosen_level, force_exact=True)
     else:
         res = bsearch.search(ladder_axes, b.order, lambda lv: bool(evaluate(lv).fits))
-        chosen_level = res.chosen
+        chosen_level = Level.of(res.chosen) if res.chosen is not None else None
         if chosen_level is None:
             evaluate(res.coarsest, force_exact=True)
     chosen = None
@@ -695,14 +708,14 @@ QUICK_NOTE = "judged by a fast compression"
 NEIGHBOUR_MARGIN = 0.10
 
 
-def _confirm_neighbours(ladder: Mapping[str, Sequence[Any]], chosen: dict[str, Any],
+def _confirm_neighbours(ladder: Mapping[str, Sequence[Any]], chosen: Level,
                         cands: Mapping[tuple[Any, ...], bsearch.Candidate],
                         evaluate: Callable[..., bsearch.Candidate], on: Measure,
-                        limit: int) -> dict[str, Any]:
+                        limit: int) -> Level:
     """Measure exactly every one-step-finer neighbour of ``chosen`` whose verdict came from a
     fast compression or a row count and whose size could be within 10% of the budget; move
     to one that fits (and check its neighbours in turn)."""
-    current = dict(chosen)
+    current = chosen
     moved = True
     while moved:
         moved = False
@@ -710,11 +723,11 @@ def _confirm_neighbours(ladder: Mapping[str, Sequence[Any]], chosen: dict[str, A
             i = list(lv).index(current[axis])
             if i == 0:
                 continue
-            finer = {**current, axis: lv[i - 1]}
+            finer = current.with_(axis, lv[i - 1])
             c = cands.get(bsearch.level_key(finer))
-            if c is None or c.size(on) is not None:
-                continue  # not evaluated, or its length on the budget's measure is exact
-            if c.floor is not None and c.floor > (1 + NEIGHBOUR_MARGIN) * limit:
+            if c is None or c.size(on) is not None or c.note.startswith(">"):
+                continue  # not evaluated, or its verdict came from an exact compression
+            if c.guess is not None and c.guess > (1 + NEIGHBOUR_MARGIN) * limit:
                 continue
             if evaluate(finer, force_exact=True).fits:
                 current = finer
@@ -741,7 +754,7 @@ def smallest_message(result: FitResult) -> str:
     """The one-line 'nothing fits' message for a result without a chosen level."""
     b = result.budget
     assert b is not None
-    coarsest = {a: lv[-1] for a, lv in result.recipe.ladder().items()}
+    coarsest = Level.of({a: lv[-1] for a, lv in result.recipe.ladder().items()})
     smallest = next(c for c in result.candidates
                     if bsearch.level_key(c.level) == bsearch.level_key(coarsest))
     return bsearch.nothing_fits_message(_recipe_label(result.recipe), b.max, b.on, smallest,
@@ -806,7 +819,7 @@ def build_manifest(result: FitResult, path: Path) -> dict[str, Any]:
                       "(brotli at quality 11 is slow); use a brotli budget to measure it"]}
            if sizes.brotli is None else {}),
         "frontier": [
-            {"level": c.level, "rows": c.rows, "raw": c.raw, "gzip": c.gzip,
+            {"level": dict(c.level), "rows": c.rows, "raw": c.raw, "gzip": c.gzip,
              "brotli": c.brotli, "fits": c.fits, "chosen": c.chosen,
              **({"estimated": True} if c.estimated or c.note == QUICK_NOTE else {})}
             for c in result.candidates],
@@ -841,7 +854,7 @@ def run(recipe: Recipe | str | Path, *, out_dir: Path | None = None,
         msg = smallest_message(result)
         if not write_anyway:
             raise BudgetError(msg)
-        coarsest = {a: lv[-1] for a, lv in result.recipe.ladder().items()}
+        coarsest = Level.of({a: lv[-1] for a, lv in result.recipe.ladder().items()})
         red = result.reducer
         assert red is not None
         forced = next(c for c in result.candidates
