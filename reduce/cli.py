@@ -148,6 +148,7 @@ def run_cmd(recipes: tuple[Path, ...], out_dir: Path | None, write_anyway: bool,
     over = _overrides(sets)
     loaded = [load_recipe(r, overrides=over) for r in recipes]  # validate all first
     summaries = []
+    over_budget = False
     with _progress(quiet or as_json) as progress:
         for rec in loaded:
             res = run(rec, out_dir=out_dir, budget=budget_max, on=on,
@@ -156,15 +157,17 @@ def run_cmd(recipes: tuple[Path, ...], out_dir: Path | None, write_anyway: bool,
                 summaries.append(report.run_json(res))
             elif not quiet:
                 click.echo(report.run_line(res))
-                for line in report.run_notes(res):
-                    click.echo(line)
+            # Warnings go to stderr in every mode: --quiet and --json hide progress, not them.
+            for line in report.run_warnings(res):
+                click.echo(line, err=True)
             if res.over_budget:
                 from reduce.pipeline import smallest_message
 
+                over_budget = True
                 click.echo(f"error: {smallest_message(res.fit)}", err=True)
     if as_json:
         click.echo(orjson.dumps(summaries, option=orjson.OPT_INDENT_2).decode())
-    if any(s.get("over_budget") for s in summaries):
+    if over_budget:  # --write-anyway wrote something, but the budget was not met
         sys.exit(1)
 
 

@@ -599,7 +599,8 @@ def test_zero_denominator_gives_null_rate_and_is_counted(tmp_path: Path) -> None
     assert aaa and all(r is None for r in aaa)
     assert all(r is not None for p, r in zip(prov, rates) if p != "AAA")
     assert manifest["denominators"]["rows_without_denominator"] == len(aaa)
-    assert f"  {len(aaa):,} rows have no usable denominator (rate left empty)" in out.splitlines()
+    assert (f"warning: base: {len(aaa):,} rows have no usable denominator (rate left empty)"
+            in err.splitlines())
 
 
 def test_mean_of_large_integers_does_not_wrap_around(tmp_path: Path) -> None:

@@ -203,3 +203,52 @@ def test_python_dash_m_runs_the_cli() -> None:
                          text=True, check=False)
     assert res.returncode == 0
     assert res.stdout.startswith("reduce, version ")
+
+
+@pytest.mark.parametrize("mode", [[], ["--quiet"], ["--json"]])
+def test_write_anyway_exits_1_in_every_output_mode(tmp_path: Path, mode: list[str]) -> None:
+    recipe = project(tmp_path)
+    code, out, err = invoke("run", str(recipe), "--budget", "300B", "--write-anyway", *mode)
+    assert code == 1
+    assert one_error_line(err).startswith(
+        "error: recipe.toml: no level fits the budget of 300 B gzip: the smallest payload is ")
+    assert (tmp_path / "out" / "hexmap.json").is_file()
+    if mode == ["--json"]:
+        assert json.loads(out)[0]["over_budget"] is True
+
+
+def test_denominators_matching_no_key_is_exit_2_with_samples(tmp_path: Path) -> None:
+    recipe = project(tmp_path, REGION_RECIPE)
+    from tests._builders import write_population
+
+    write_population(tmp_path, {"aaa": 1000, "bbb": 2000, "ccc": 3000, "ddd": 4000, "eee": 1})
+    code, out, err = invoke("run", str(recipe), "--quiet")
+    assert code == 2
+    assert one_error_line(err) == (
+        "error: pop.csv (normalize.denominators): none of its 5 keys in column 'prov' matches "
+        "the 4 prov keys in the data (data: 'AAA', 'BBB', 'CCC' ...; table: 'aaa', 'bbb', "
+        "'ccc' ...); make the table's keys match the data's")
+    assert not (tmp_path / "out").exists()
+
+
+def test_partly_matching_denominators_warn_on_stderr_even_quiet_and_in_json(
+        tmp_path: Path) -> None:
+    recipe = project(tmp_path, REGION_RECIPE)
+    from tests._builders import write_population
+
+    write_population(tmp_path, {"AAA": 1000, "BBB": 2000, "CCC": 3000, "ZZZ": 5})
+    code, out, err = invoke("run", str(recipe), "--quiet")
+    assert code == 0, err
+    assert out == ""
+    lines = err.strip().splitlines()
+    assert "warning: regions: keys in the data but not in the denominators: DDD" in lines
+    assert "warning: regions: keys in the denominators but not in the data: ZZZ" in lines
+    manifest = json.loads((tmp_path / "out" / "regions.manifest.json").read_bytes())
+    assert manifest["denominators"]["data_only_keys"] == ["DDD"]
+    assert manifest["denominators"]["denominator_only_keys"] == ["ZZZ"]
+    code, out, err = invoke("run", str(recipe), "--json")
+    assert code == 0, err
+    doc = json.loads(out)[0]
+    assert doc["denominators"]["data_only_keys"] == ["DDD"]
+    assert doc["denominators"]["denominator_only_keys"] == ["ZZZ"]
+    assert doc["denominators"]["rows_without_denominator"] > 0
