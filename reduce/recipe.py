@@ -716,17 +716,31 @@ def _parse_source(ctx: _Ctx, d: dict[str, Any], base: Path, need_geo: bool,
     zone = ctx.string(d, "source", "time_zone", default="UTC")
     assert zone is not None
     _check_zone(ctx, "source.time_zone", zone)
-    filters = _parse_filters(ctx, d.get("filter", []))
+    filters = _parse_filters(ctx, d.get("filter", []), zone)
     path = display if Path(display).is_absolute() else str(base / display)
     return Source(path=path, display=display, format=fmt, time=time, lat=lat, lon=lon,
                   naive_zone=zone, filters=filters)
+
+
+def filter_instant(v: dt.datetime | dt.date, zone: str, *,
+                   end_of_day: bool = False) -> dt.datetime:
+    """A time filter literal as a naive UTC datetime: an offset date-time is that instant; a
+    local date-time is read on the clock of ``zone`` (source.time_zone; an ambiguous wall
+    time is the earlier instant, a skipped one is read with the offset before the change);
+    a date is its local midnight, or with ``end_of_day`` the next day's (an exclusive end)."""
+    if not isinstance(v, dt.datetime):
+        day = v + dt.timedelta(days=1) if end_of_day else v
+        v = dt.datetime(day.year, day.month, day.day)
+    if v.tzinfo is None:
+        v = v.replace(tzinfo=zoneinfo.ZoneInfo(zone))
+    return v.astimezone(dt.timezone.utc).replace(tzinfo=None)
 
 
 _FILTER_KEYS = ("column", "in", "not_in", "min", "max", "null")
 _SCALARS = (str, int, float, bool, dt.datetime, dt.date)
 
 
-def _parse_filters(ctx: _Ctx, doc: Any) -> tuple[Filter, ...]:
+def _parse_filters(ctx: _Ctx, doc: Any, zone: str) -> tuple[Filter, ...]:
     if isinstance(doc, dict):
         doc = [doc]
     if not isinstance(doc, list):
@@ -772,7 +786,11 @@ def _parse_filters(ctx: _Ctx, doc: Any) -> tuple[Filter, ...]:
                                    f"{_tname(v)} {_short(v)}")
             if lo is not None and hi is not None:
                 try:
-                    bad = lo > hi
+                    if isinstance(lo, dt.date) and isinstance(hi, dt.date):  # as instants
+                        bad = filter_instant(lo, zone) >= filter_instant(hi, zone,
+                                                                         end_of_day=True)
+                    else:
+                        bad = lo > hi
                 except TypeError:
                     raise ctx.fail(key, "min and max must be of the same kind") from None
                 if bad:

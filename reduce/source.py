@@ -24,6 +24,7 @@ import polars as pl
 
 from reduce.errors import SourceError, did_you_mean, shown_path
 from reduce.recipe import Filter, Recipe
+from reduce.recipe import filter_instant as _instant
 
 _EXT = {".parquet": "parquet", ".pq": "parquet", ".csv": "csv", ".ndjson": "ndjson",
         ".jsonl": "ndjson"}
@@ -270,27 +271,29 @@ def check_schema(recipe: Recipe, schema: pl.Schema, label: str) -> None:
             raise wrong(m.column, key, d, "plain values (not lists or structs)")
     for f in src.filters:
         d = need(f.column, f.key + ".column")
-        _filter_expr(f, d, src.naive_zone, label)  # type-checks the literal values
+        _try_filter(f, _filter_expr(f, d, src.naive_zone, label), schema, label)
 
 
-def _coerce_time(v: Any, dtype: pl.DataType, zone: str) -> Any:
-    if isinstance(v, dt.datetime) or isinstance(v, dt.date):
-        if isinstance(dtype, pl.Date):
-            return v.date() if isinstance(v, dt.datetime) else v
-        if not isinstance(v, dt.datetime):
-            v = dt.datetime(v.year, v.month, v.day)
-        import zoneinfo
+def _utc_instants(col: pl.Expr, dtype: pl.DataType, zone: str) -> pl.Expr:
+    """A date or datetime column as UTC instants (naive values read in ``zone``, as the
+    time key reads them; a date is its local midnight)."""
+    if isinstance(dtype, pl.Date):
+        col, dtype = col.cast(pl.Datetime("us")), pl.Datetime("us")
+    assert isinstance(dtype, pl.Datetime)
+    if dtype.time_zone is None:
+        col = col.dt.replace_time_zone(zone, ambiguous="earliest", non_existent="null")
+    return col.dt.convert_time_zone("UTC")
 
-        col_zone = getattr(dtype, "time_zone", None)
-        if col_zone and v.tzinfo is None:
-            v = v.replace(tzinfo=zoneinfo.ZoneInfo(zone))
-        elif not col_zone and v.tzinfo is not None:
-            v = v.astimezone(zoneinfo.ZoneInfo(zone)).replace(tzinfo=None)
-        return v
-    return v
+
+def _utc_lit(v: dt.datetime, dtype: pl.DataType) -> pl.Expr:
+    unit = dtype.time_unit if isinstance(dtype, pl.Datetime) else "us"
+    return pl.lit(v, dtype=pl.Datetime(unit or "us")).dt.replace_time_zone("UTC")
 
 
 def _filter_expr(f: Filter, dtype: pl.DataType, zone: str, label: str) -> pl.Expr:
+    """The filter as an expression. Time literals are compared as instants in UTC, whatever
+    the column's zone: see :func:`reduce.recipe.filter_instant` for how each kind of literal is read; a date
+    ``max`` covers that whole day (up to, not including, the next local midnight)."""
     col = pl.col(f.column)
     is_time_col = isinstance(dtype, (pl.Datetime, pl.Date))
 
@@ -303,12 +306,17 @@ def _filter_expr(f: Filter, dtype: pl.DataType, zone: str, label: str) -> pl.Exp
             or (isinstance(v, (dt.datetime, dt.date)) and is_time_col)
         )
         if not ok:
-            raise SourceError(f"{label}: {key}: value {v!r} cannot be compared with column "
+            shown = v.isoformat() if isinstance(v, (dt.datetime, dt.date)) else repr(v)
+            raise SourceError(f"{label}: {key}: value {shown} cannot be compared with column "
                               f"{f.column!r} of type {dtype}; use a value of the column's type")
-        return _coerce_time(v, dtype, zone) if is_time_col else v
+        return v
 
     if f.op in ("in", "not_in"):
         vals = [check(v, f"{f.key}.{f.op}") for v in f.values]
+        if is_time_col:
+            inst = _utc_instants(col, dtype, zone)
+            e = pl.any_horizontal([inst == _utc_lit(_instant(v, zone), dtype) for v in vals])
+            return e if f.op == "in" else ~e
         if dtype.is_numeric() and any(isinstance(v, float) for v in vals):
             col, vals = col.cast(pl.Float64), [float(v) for v in vals]
         c = col.cast(pl.String) if isinstance(dtype, (pl.Categorical, pl.Enum)) else col
@@ -319,14 +327,36 @@ def _filter_expr(f: Filter, dtype: pl.DataType, zone: str, label: str) -> pl.Exp
     if f.op == "not_null":
         return col.is_not_null()
     conds = []
-    if f.lo is not None:
-        conds.append(col >= check(f.lo, f"{f.key}.min"))
-    if f.hi is not None:
-        conds.append(col <= check(f.hi, f"{f.key}.max"))
+    lo = None if f.lo is None else check(f.lo, f"{f.key}.min")
+    hi = None if f.hi is None else check(f.hi, f"{f.key}.max")
+    if is_time_col:
+        inst = _utc_instants(col, dtype, zone)
+        if lo is not None:
+            conds.append(inst >= _utc_lit(_instant(lo, zone), dtype))
+        if hi is not None and not isinstance(hi, dt.datetime):  # a date: the whole day
+            conds.append(inst < _utc_lit(_instant(hi, zone, end_of_day=True), dtype))
+        elif hi is not None:
+            conds.append(inst <= _utc_lit(_instant(hi, zone), dtype))
+    else:
+        if lo is not None:
+            conds.append(col >= lo)
+        if hi is not None:
+            conds.append(col <= hi)
     e = conds[0]
     for c2 in conds[1:]:
         e = e & c2
     return e
+
+
+def _try_filter(f: Filter, expr: pl.Expr, schema: pl.Schema, label: str) -> None:
+    """Evaluate a filter on an empty frame of the source's schema, so that ``reduce check``
+    finds a literal the column cannot be compared with (not the scan, blaming the file)."""
+    try:
+        pl.DataFrame(schema=schema).lazy().filter(expr).collect()
+    except pl.exceptions.PolarsError as e:
+        raise SourceError(f"{label}: {f.key}: cannot compare column {f.column!r} "
+                          f"({schema[f.column]}) with the filter's values ({_first_line(e)}); "
+                          "use a value of the column's type") from None
 
 
 def open_source(recipe: Recipe) -> OpenSource:
