@@ -23,7 +23,7 @@ from pathlib import Path
 
 import polars as pl
 
-from reduce.errors import OutputError, SourceError
+from reduce.errors import OutputError, SourceError, shown_path
 from reduce.keys import (
     HEX,
     INVALID,
@@ -428,9 +428,13 @@ def _scan_error(recipe: Recipe, src: OpenSource, label: str,
         value, dtype, col = m.groups()
         role = next((k for k, c in column_roles(recipe) if c == col), None)
         frm = f" (from {recipe.file.name}: {role})" if role else ""
-        return SourceError(f"{label}: column {col!r}{frm} holds {value!r}, which cannot be read "
-                           f"as {dtype} like the rows before it; fix that value or convert the "
-                           "column")
+        from reduce.source import locate_value
+
+        at = locate_value(src, col, value)
+        where, line = (shown_path(at[0]), f" at line {at[1]:,}") if at else (label, "")
+        return SourceError(f"{where}: column {col!r}{frm} holds {value!r}{line}, which cannot "
+                           f"be read as {dtype} like the rows before it; fix that value, list "
+                           "it in source.null_values, or convert the column")
     try:  # on the error path only: read the needed columns without computing any key
         src.frame.select(pl.all().null_count()).collect(engine="streaming")
     except pl.exceptions.PolarsError as read_error:

@@ -63,6 +63,7 @@ class Source:
     lon: str | None
     naive_zone: str  # zone in which naive timestamps are read
     filters: tuple[Filter, ...]
+    null_values: tuple[str, ...] = ()  # CSV/NDJSON text read as missing (besides empty)
 
 
 @dataclass(frozen=True, slots=True)
@@ -472,7 +473,8 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
     if "source" not in doc:
         raise ctx.fail("source", "is required; add a [source] table with path = ...")
     src_doc = ctx.table(doc["source"], "source",
-                        ("path", "format", "time", "lat", "lon", "time_zone", "filter"))
+                        ("path", "format", "time", "lat", "lon", "time_zone", "filter",
+                         "null_values"))
     group_doc = ctx.table(doc.get("group", {}), "group",
                           ("hex", "time", "region", "category", "flow"))
     if not group_doc:
@@ -717,9 +719,14 @@ def _parse_source(ctx: _Ctx, d: dict[str, Any], base: Path, need_geo: bool,
     assert zone is not None
     _check_zone(ctx, "source.time_zone", zone)
     filters = _parse_filters(ctx, d.get("filter", []), zone)
+    nv = d.get("null_values", [])
+    if not isinstance(nv, list) or not all(isinstance(x, str) for x in nv):
+        raise ctx.fail("source.null_values", f"must be a list of strings such as [\"NA\", "
+                       f"\"-\"], got {_short(nv)}")
+    null_values = tuple(dict.fromkeys(nv))
     path = display if Path(display).is_absolute() else str(base / display)
     return Source(path=path, display=display, format=fmt, time=time, lat=lat, lon=lon,
-                  naive_zone=zone, filters=filters)
+                  naive_zone=zone, filters=filters, null_values=null_values)
 
 
 def filter_instant(v: dt.datetime | dt.date, zone: str, *,

@@ -424,16 +424,16 @@ CASES = [
                  "share one schema"),
     Bad("csv-text-in-a-measure-column", edits=(SOURCE_CSV,),
         prepare=csv_with_text_in_measure(3000, 2900),
-        expected="error: events.csv: column 'sev' (from bad.toml: measures.severity) is "
-                 "String, but measures.severity needs numbers; convert the column or pick "
-                 "another"),
+        expected="error: events.csv: column 'sev' (from bad.toml: measures.severity) holds "
+                 "'12x' at line 2,902, which cannot be read as a number; fix that value, list "
+                 "it in source.null_values, or convert the column"),
     # Beyond the rows used to infer the column types, "12x" fails the scan: the message must
     # name the value and the recipe key, not "cannot compute the keys".
     Bad("csv-text-in-a-measure-column-far-down", edits=(SOURCE_CSV,),
         prepare=csv_with_text_in_measure(12000, 11000),
         expected="error: events.csv: column 'sev' (from bad.toml: measures.severity) holds "
-                 "'12x', which cannot be read as i64 like the rows before it; fix that value "
-                 "or convert the column"),
+                 "'12x' at line 11,002, which cannot be read as i64 like the rows before it; "
+                 "fix that value, list it in source.null_values, or convert the column"),
     Bad("coordinates-stored-as-text", edits=hex_group(),
         prepare=parquet_events(lambda df: df.with_columns(pl.col("lat").cast(pl.String))),
         expected="error: events.parquet: column 'lat' (from bad.toml: source.lat) is String, "
