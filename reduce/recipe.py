@@ -39,6 +39,10 @@ Layout = Literal["columns", "rows", "csv", "geojson"]
 AXES = ("hex", "time", "top", "simplify", "coords", "digits")
 LAYOUTS: tuple[str, ...] = ("columns", "rows", "csv", "geojson")
 SOURCE_FORMATS = ("parquet", "csv", "ndjson")
+# The file extensions output.path may have for each layout (the first is the default name).
+LAYOUT_EXTENSIONS: dict[str, tuple[str, ...]] = {
+    "columns": (".json",), "rows": (".json",), "csv": (".csv",),
+    "geojson": (".geojson", ".json")}
 
 
 @dataclass(frozen=True, slots=True)
@@ -1055,6 +1059,11 @@ def _parse_output(ctx: _Ctx, doc: Any, base: Path) -> Output:
         raise ctx.fail("output.inline", "must be true or false")
     if inline and layout == "csv":
         raise ctx.fail("output.inline", "applies to JSON layouts only")
+    if path is not None and path.suffix.lower() not in LAYOUT_EXTENSIONS[layout]:
+        want = LAYOUT_EXTENSIONS[layout]
+        raise ctx.fail("output.path", f"{p!r} ends in {path.suffix}, but output.layout "
+                       f"{layout!r} writes {' or '.join(want)} files; name the file "
+                       f"{path.stem}{want[0]} or change output.layout")
     simplify: tuple[float, ...] = (0.0,)
     coords: tuple[int, ...] = (6,)
     if "simplify" in d or "coordinate_digits" in d:

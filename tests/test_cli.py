@@ -252,3 +252,18 @@ def test_partly_matching_denominators_warn_on_stderr_even_quiet_and_in_json(
     assert doc["denominators"]["data_only_keys"] == ["DDD"]
     assert doc["denominators"]["denominator_only_keys"] == ["ZZZ"]
     assert doc["denominators"]["rows_without_denominator"] > 0
+
+
+def test_layout_that_does_not_match_the_output_file_name_is_exit_2_before_the_scan(
+        tmp_path: Path) -> None:
+    recipe = project(tmp_path)
+    (tmp_path / "events.parquet").unlink()  # the scan would fail differently
+    code, _, err = invoke("run", str(recipe), "--set", "output.layout=csv")
+    assert code == 2
+    assert one_error_line(err) == (
+        "error: recipe.toml: output.path: 'out/hexmap.json' ends in .json, but output.layout "
+        "'csv' writes .csv files; name the file hexmap.csv or change output.layout")
+    code, _, err = invoke("run", str(recipe), "--set", "output.layout=csv",
+                          "--set", "output.path=out/hexmap.csv", "--quiet")
+    assert code == 2
+    assert "events.parquet" in one_error_line(err)  # past the recipe: the missing source
