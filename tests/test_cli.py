@@ -267,3 +267,44 @@ def test_layout_that_does_not_match_the_output_file_name_is_exit_2_before_the_sc
                           "--set", "output.path=out/hexmap.csv", "--quiet")
     assert code == 2
     assert "events.parquet" in one_error_line(err)  # past the recipe: the missing source
+
+
+def test_check_lists_every_problem_of_every_recipe(tmp_path: Path) -> None:
+    good = project(tmp_path)
+    bad_key = write_recipe(tmp_path, HEX_RECIPE.replace("[budget]", "[budget]\nmaxx = 3"),
+                           name="bad1.toml")
+    bad_col = write_recipe(tmp_path, HEX_RECIPE.replace('distinct = "who"', 'distinct = "whom"'),
+                           name="bad2.toml")
+    code, out, err = invoke("check", str(bad_key), str(good), str(bad_col))
+    assert code == 2
+    assert out.splitlines() == [f"{good}: ok (hexmap: 1 source file, columns ts, lat, lon, "
+                                "kind, who, sev)"]
+    assert err.splitlines() == [
+        "error: bad1.toml: budget.maxx: unknown key (did you mean 'max'?); allowed here: max, "
+        "on, order",
+        "error: events.parquet: column 'whom' (from bad2.toml: measures.observers) is not in "
+        "the source (did you mean 'who'?); columns are: ts, lat, lon, kind, prov, sev, conf, "
+        "who"]
+
+
+def test_run_publishes_nothing_when_any_recipe_is_bad(tmp_path: Path) -> None:
+    good = project(tmp_path)
+    bad = write_recipe(tmp_path, HEX_RECIPE.replace('distinct = "who"', 'distinct = "whom"')
+                       .replace("out/hexmap.json", "out/other.json"), name="bad.toml")
+    code, out, err = invoke("run", str(good), str(bad))
+    assert code == 2
+    assert one_error_line(err).startswith("error: events.parquet: column 'whom' (from "
+                                          "bad.toml: measures.observers)")
+    assert not (tmp_path / "out").exists()
+
+
+def test_run_refuses_two_recipes_writing_one_file(tmp_path: Path) -> None:
+    first = project(tmp_path)
+    second = write_recipe(tmp_path, HEX_RECIPE.replace('name = "hexmap"', 'name = "again"'),
+                          name="second.toml")
+    code, out, err = invoke("run", str(first), str(second))
+    assert code == 2
+    assert one_error_line(err) == (
+        "error: second.toml: output.path: writes out/hexmap.json, like recipe.toml; give each "
+        "recipe its own output file")
+    assert not (tmp_path / "out").exists()
