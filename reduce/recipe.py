@@ -695,9 +695,88 @@ def _check_zone(ctx: _Ctx, key: str, zone: str) -> None:
     try:
         zoneinfo.ZoneInfo(zone)
     except (zoneinfo.ZoneInfoNotFoundError, ValueError, OSError):  # a folder name is an OSError
-        close = did_you_mean(zone, zoneinfo.available_timezones())
-        raise ctx.fail(key, f"unknown time zone {zone!r}{close}; use an IANA name such as "
-                       "UTC or Europe/Paris") from None
+        raise ctx.fail(key, f"unknown time zone {zone!r}{zone_hint(zone)}; use an IANA name "
+                       "such as UTC or Europe/Paris") from None
+
+
+_OFFSET_RE = re.compile(r"^(?:UTC|GMT|Z)?\s*([+-])(\d{1,2})(?::?(\d\d))?$", re.IGNORECASE)
+_HINT_YEAR = 2025  # the year whose offsets define "the same clock" (fixed: same hint always)
+_CONTINENTS = ("Africa/", "America/", "Antarctica/", "Asia/", "Atlantic/", "Australia/",
+               "Europe/", "Indian/", "Pacific/")
+
+
+def _clocks() -> dict[str, tuple[tuple[int, ...], frozenset[str]]]:
+    """Every zone's UTC offset (seconds) at noon UTC of each day of ``_HINT_YEAR`` (its
+    offset and DST rule, as far as one year shows them) and the abbreviations it uses."""
+    days = [dt.datetime(_HINT_YEAR, 1, 1, 12, tzinfo=dt.timezone.utc) + dt.timedelta(days=i)
+            for i in range(365)]
+    out = {}
+    for name in sorted(zoneinfo.available_timezones()):
+        try:
+            z = zoneinfo.ZoneInfo(name)
+        except (zoneinfo.ZoneInfoNotFoundError, ValueError, OSError):
+            continue
+        local = [d.astimezone(z) for d in days]
+        out[name] = (tuple(int(t.utcoffset().total_seconds()) for t in local),  # type: ignore[union-attr]
+                     frozenset(t.tzname() or "" for t in local))
+    return out
+
+
+def _tz_table(name: str) -> str:
+    """A text file of the time-zone database (the tzdata package's, else the system's)."""
+    try:
+        from importlib.resources import files
+
+        return (files("tzdata.zoneinfo") / name).read_text(encoding="utf-8")
+    except (ImportError, OSError, ValueError):
+        for folder in zoneinfo.TZPATH:
+            try:
+                return (Path(folder) / name).read_text(encoding="utf-8")
+            except OSError:
+                continue
+    return ""
+
+
+def _pick(names: Sequence[str]) -> str:
+    """One name for a clock: a main zone of the database (zone1970.tab) before the others,
+    then the one most other names link to (tzdata.zi), then by name."""
+    main = {ln.split("\t")[2] for ln in _tz_table("zone1970.tab").splitlines()
+            if ln and not ln.startswith("#") and ln.count("\t") >= 2}
+    links: dict[str, int] = {}
+    for ln in _tz_table("tzdata.zi").splitlines():
+        if ln.startswith("L "):
+            target = ln.split()[1]
+            links[target] = links.get(target, 0) + 1
+    return min(names, key=lambda n: (n not in main, not n.startswith(_CONTINENTS),
+                                     n.count("/"), -links.get(n, 0), n))
+
+
+def zone_hint(zone: str) -> str:
+    """``" (did you mean 'x'?)"`` naming only zones on the clock ``zone`` stands for: the
+    same UTC offset and DST rule over a year (compared with ``zoneinfo``). An offset such as
+    ``UTC-8`` gets a zone fixed at that offset, an abbreviation such as ``PST`` one zone per
+    distinct clock using it, and an IANA-style name with a typo its close match; anything
+    else no hint rather than a different clock."""
+    m = _OFFSET_RE.match(zone.strip())
+    clocks = _clocks()
+    if m:
+        sign = -1 if m.group(1) == "-" else 1
+        seconds = sign * (int(m.group(2)) * 3600 + int(m.group(3) or 0) * 60)
+        same = [n for n, (offs, _) in clocks.items() if set(offs) == {seconds}]
+        etc = [n for n in same if n.startswith("Etc/GMT") and n not in ("Etc/GMT", "Etc/GMT0")]
+        pick = (min(etc, key=len) if etc else _pick(same)) if same else None
+        return f" (did you mean {pick!r}?)" if pick else ""
+    groups: dict[tuple[int, ...], list[str]] = {}
+    for n, (offs, abbrs) in clocks.items():
+        if zone.upper() in abbrs:
+            groups.setdefault(offs, []).append(n)
+    if groups:
+        picks = sorted((_pick(g) for g in groups.values()), key=lambda n: min(
+            clocks[n][0]))[:3]
+        return " (did you mean " + " or ".join(repr(p) for p in picks) + "?)"
+    if "/" in zone:
+        return did_you_mean(zone, clocks)
+    return ""
 
 
 def _parse_source(ctx: _Ctx, d: dict[str, Any], base: Path, need_geo: bool,

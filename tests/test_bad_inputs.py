@@ -297,8 +297,8 @@ CASES = [
     # A zone name that is a folder of the time-zone database (a continent) is refused like
     # any other unknown zone, not left to zoneinfo's IsADirectoryError (exit 3).
     Bad("time-zone-naming-a-continent", edits=(('zone = "UTC"', 'zone = "America"'),),
-        expected="error: bad.toml: group.time.zone: unknown time zone 'America' (did you mean "
-                 "'America/Nuuk'?); use an IANA name such as UTC or Europe/Paris"),
+        expected="error: bad.toml: group.time.zone: unknown time zone 'America'; use an "
+                 "IANA name such as UTC or Europe/Paris"),
     Bad("top-k-zero", edits=(("k = [3, 2]", "k = [3, 0]"),),
         expected="error: bad.toml: prune.top.k: 0 is out of range; use >= 1"),
     Bad("top-k-negative", edits=(("k = [3, 2]", "k = -1"),),
