@@ -123,6 +123,12 @@ class RegionKey:
     boundaries_display: str = ""
     id_property: str | None = None
     outside: str | None = None  # label for events outside every polygon; None: unassigned
+    label_property: str | None = None  # a polygon property carried into payloads
+
+    @property
+    def label_column(self) -> str | None:
+        """The payload column (GeoJSON property) holding each region's label."""
+        return f"{self.column}_label" if self.label_property else None
 
 
 @dataclass(frozen=True, slots=True)
@@ -518,7 +524,8 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
 
     # --- measures ----------------------------------------------------------------------------
     measures = _parse_measures(ctx, doc.get("measures"))
-    reserved = {"time", "hex", *(k for k in ([region.column] if region else [])), *categories}
+    reserved = {"time", "hex", *(k for k in ([region.column] if region else [])), *categories,
+                *([region.label_column] if region and region.label_column else [])}
     for m in measures:
         if m.name in reserved:
             raise ctx.fail(f"measures.{m.name}", "has the same name as a key column; rename "
@@ -588,12 +595,13 @@ def _rel(base: Path, p: str) -> Path:
 
 
 def _parse_region(ctx: _Ctx, doc: Any, base: Path) -> RegionKey:
-    r = ctx.table(doc, "group.region", ("column", "boundaries", "id", "name", "outside"))
+    r = ctx.table(doc, "group.region", ("column", "boundaries", "id", "name", "outside",
+                                        "label"))
     if ("column" in r) == ("boundaries" in r):
         raise ctx.fail("group.region", "give exactly one of column = \"...\" (a source column) "
                        "or boundaries = \"file.geojson\" with id = \"property\"")
     if "column" in r:
-        for k in ("id", "outside"):
+        for k in ("id", "outside", "label"):
             if k in r:
                 raise ctx.fail(f"group.region.{k}", "applies to boundaries only")
         col = ctx.string(r, "group.region", "column", required=True)
@@ -604,9 +612,10 @@ def _parse_region(ctx: _Ctx, doc: Any, base: Path) -> RegionKey:
     idp = ctx.string(r, "group.region", "id", required=True)
     name = ctx.string(r, "group.region", "name", default="region")
     outside = ctx.string(r, "group.region", "outside")
+    label = ctx.string(r, "group.region", "label")
     assert path is not None and idp is not None and name is not None
     return RegionKey(column=name, boundaries=_rel(base, path), boundaries_display=path,
-                     id_property=idp, outside=outside)
+                     id_property=idp, outside=outside, label_property=label)
 
 
 def _flow_end(ctx: _Ctx, v: Any, key: str) -> FlowEnd:

@@ -67,6 +67,9 @@ def check(recipes: Sequence[str | Path], *, overrides: Mapping[str, str] | None 
             src = open_source(rec)
             if rec.normalize and rec.normalize.denominators:
                 load_denominators(rec.normalize.denominators)
+            from reduce.encode import region_labels
+
+            region_labels(rec)  # group.region.label: every polygon has one
             target = None
             if outputs:
                 from reduce.pipeline import output_path
