@@ -114,6 +114,9 @@ def _scan_aggs(measures: Sequence[MeasureSpec], floats: set[str]) -> list[pl.Exp
     """Partial aggregations over source rows; ``floats`` names the float measure inputs."""
     aggs = [pl.len().cast(pl.Int64).alias(N)]
     for m in measures:
+        if m.kind == "count" and m.where:  # its input is the row mask: a sum of 0s and 1s
+            aggs.append(pl.col(_in(m)).cast(pl.Int128).sum().alias(_sum(m)))
+            continue
         if m.column is None:
             continue
         c = pl.col(m.column)
@@ -136,7 +139,7 @@ def _merge_aggs(measures: Sequence[MeasureSpec], present: Sequence[str]) -> list
     """Aggregations that merge partial columns (used for roll-ups and merges)."""
     aggs = [pl.col(N).sum()]
     for m in measures:
-        if m.kind in ("sum", "mean"):
+        if m.kind in ("sum", "mean") or (m.kind == "count" and m.where):
             aggs += [pl.col(_sum(m)).sum(), pl.col(_fsum(m)).sum(), pl.col(_cnt(m)).sum()]
         elif m.kind == "min":
             aggs.append(pl.col(_min(m)).min())
@@ -196,6 +199,32 @@ class Spilled:
         return replace(self, root=folder)
 
 
+def _in(m: MeasureSpec) -> str:
+    """The scan's input column of a measure (see :func:`_scan_measures`)."""
+    return f"__in_{m.name}"
+
+
+def _measure_inputs(recipe: Recipe, schema: pl.Schema, label: str) -> list[pl.Expr]:
+    """The measure input columns the scan selects. A measure with ``where`` reads its
+    column only on the rows the filters keep (null elsewhere, which sums, means, minima
+    and maxima skip); a count with ``where`` reads the row mask itself. Both are per-row
+    values, so they merge exactly at every level, spilled or not."""
+    from reduce.source import where_mask
+
+    out = []
+    for o in recipe.measures:
+        if o.kind == "distinct":
+            continue
+        mask = where_mask(recipe, o.where, schema, label) if o.where else None
+        if o.column is None:
+            if mask is not None:
+                out.append(mask.alias(_in(o)))
+            continue
+        e = pl.col(o.column)
+        out.append((e if mask is None else pl.when(mask).then(e)).alias(_in(o)))
+    return out
+
+
 def _scan_measures(recipe: Recipe, float_inputs: set[str]
                    ) -> tuple[list[MeasureSpec], set[str]]:
     """Measures reading their renamed input columns (``__in_<name>``, so a measure column may
@@ -233,8 +262,7 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
     renamed, floats = _scan_measures(recipe, {c for c, t in schema.items() if t.is_float()})
     select = [*key_exprs, *([reason] if reason is not None else []),
               *[pl.col(c).alias(n) for c, n in zip(dcols, dnames)],
-              *[pl.col(o.column).alias(f"__in_{o.name}") for o in recipe.measures
-                if o.column is not None and o.kind != "distinct"]]
+              *_measure_inputs(recipe, schema, label)]
     by = [*keys, *([INVALID] if reason is not None else []), *dnames]
     aggs = _scan_aggs(renamed, floats)
 
@@ -621,7 +649,9 @@ def finalize(recipe: Recipe, p: Partial, *, only: Sequence[str] | None = None
     for m in recipe.measures:
         if only is not None and m.name not in only:
             continue
-        if m.kind == "count":
+        if m.kind == "count" and m.where:
+            cols.append(pl.col(_sum(m)).cast(pl.Int64).alias(m.name))
+        elif m.kind == "count":
             cols.append(pl.col(N).alias(m.name))
         elif m.kind in ("sum", "mean"):
             total = (pl.col(_fsum(m)).cast(pl.Float64) / FIXED_SCALE

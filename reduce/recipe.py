@@ -157,6 +157,7 @@ class MeasureSpec:
     name: str
     kind: MeasureKind
     column: str | None  # None for count
+    where: tuple[Filter, ...] = ()  # rows the measure counts (structured filters, all true)
 
 
 @dataclass(frozen=True, slots=True)
@@ -523,7 +524,7 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
     source = _parse_source(ctx, src_doc, base, need_geo, time_key is not None)
 
     # --- measures ----------------------------------------------------------------------------
-    measures = _parse_measures(ctx, doc.get("measures"))
+    measures = _parse_measures(ctx, doc.get("measures"), source.naive_zone)
     reserved = {"time", "hex", *(k for k in ([region.column] if region else [])), *categories,
                 *([region.label_column] if region and region.label_column else [])}
     for m in measures:
@@ -839,15 +840,16 @@ _FILTER_KEYS = ("column", "in", "not_in", "min", "max", "null")
 _SCALARS = (str, int, float, bool, dt.datetime, dt.date)
 
 
-def _parse_filters(ctx: _Ctx, doc: Any, zone: str) -> tuple[Filter, ...]:
+def _parse_filters(ctx: _Ctx, doc: Any, zone: str,
+                   where: str = "source.filter") -> tuple[Filter, ...]:
     if isinstance(doc, dict):
         doc = [doc]
     if not isinstance(doc, list):
-        raise ctx.fail("source.filter", "must be a list of tables such as "
+        raise ctx.fail(where, "must be a list of tables such as "
                        "[{ column = \"kind\", in = [\"hail\"] }]")
     out: list[Filter] = []
     for i, f in enumerate(doc):
-        key = f"source.filter[{i}]"
+        key = f"{where}[{i}]"
         f = ctx.table(f, key, _FILTER_KEYS)
         col = ctx.string(f, key, "column", required=True)
         assert col is not None
@@ -901,7 +903,7 @@ def _parse_filters(ctx: _Ctx, doc: Any, zone: str) -> tuple[Filter, ...]:
 _MEASURE_KINDS: tuple[MeasureKind, ...] = ("count", "sum", "min", "max", "mean", "distinct")
 
 
-def _parse_measures(ctx: _Ctx, doc: Any) -> tuple[MeasureSpec, ...]:
+def _parse_measures(ctx: _Ctx, doc: Any, zone: str = "UTC") -> tuple[MeasureSpec, ...]:
     if doc is None:
         return (MeasureSpec("count", "count", None),)
     if not isinstance(doc, dict):
@@ -920,17 +922,34 @@ def _parse_measures(ctx: _Ctx, doc: Any) -> tuple[MeasureSpec, ...]:
         if isinstance(spec, str):
             raise ctx.fail(key, f"{spec!r} is not a measure{did_you_mean(spec, _MEASURE_KINDS)};"
                            " use \"count\" or a table such as { sum = \"column\" }")
+        where: tuple[Filter, ...] = ()
+        if isinstance(spec, dict) and "where" in spec:
+            spec = dict(spec)
+            where = _parse_filters(ctx, spec.pop("where"), zone, f"{key}.where")
+            if not where:
+                raise ctx.fail(f"{key}.where", "is empty; list at least one filter")
+            if spec.get("count") is True:
+                out.append(MeasureSpec(name, "count", None, where))
+                if len(spec) != 1:
+                    raise ctx.fail(key, "a count with where takes no other key")
+                continue
         if not isinstance(spec, dict) or len(spec) != 1:
             raise ctx.fail(key, "must be \"count\" or a table with one key, e.g. "
-                           "{ sum = \"column\" }")
+                           "{ sum = \"column\" } (plus where = [...])")
         ((kind, col),) = spec.items()
+        if kind == "count" and col is True and not where:
+            out.append(MeasureSpec(name, "count", None))
+            continue
+        if where and kind == "distinct":
+            raise ctx.fail(f"{key}.where", "applies to count, sum, mean, min and max "
+                           "measures, not distinct")
         if kind not in _MEASURE_KINDS or kind == "count":
             raise ctx.fail(f"{key}.{kind}", f"unknown measure kind"
                            f"{did_you_mean(kind, _MEASURE_KINDS)}; use one of sum, min, max, "
                            "mean, distinct (or \"count\")")
         if not isinstance(col, str) or not col:
             raise ctx.fail(f"{key}.{kind}", "must name a column")
-        out.append(MeasureSpec(name, kind, col))
+        out.append(MeasureSpec(name, kind, col, where))
     return tuple(out)
 
 

@@ -250,7 +250,8 @@ def needed_columns(recipe: Recipe) -> list[str]:
     for c in (src.time if recipe.time else None, src.lat if geo else None,
               src.lon if geo else None,
               recipe.region.source if recipe.region else None, *recipe.category_sources,
-              *flow_cols, *(m.column for m in recipe.measures), *(f.column for f in src.filters)):
+              *flow_cols, *(m.column for m in recipe.measures), *(f.column for f in src.filters),
+              *(f.column for m in recipe.measures for f in m.where)):
         if c is not None and c not in cols:
             cols.append(c)
     return cols
@@ -328,9 +329,17 @@ def check_schema(recipe: Recipe, schema: pl.Schema, label: str) -> None:
             raise wrong(m.column, key, d, "numbers")
         if m.kind == "distinct" and d.is_nested():
             raise wrong(m.column, key, d, "plain values (not lists or structs)")
-    for f in src.filters:
+    for f in (*src.filters, *(f for m in recipe.measures for f in m.where)):
         d = need(f.column, f.key + ".column")
         _try_filter(f, _filter_expr(f, d, src.naive_zone, label), schema, label)
+
+
+def where_mask(recipe: Recipe, where: tuple[Filter, ...], schema: pl.Schema,
+               label: str) -> pl.Expr:
+    """A measure's ``where``: true on rows every filter keeps (a null compares false, as in
+    source.filter)."""
+    return pl.all_horizontal([_filter_expr(f, schema[f.column], recipe.source.naive_zone,
+                                           label).fill_null(False) for f in where])
 
 
 def _utc_instants(col: pl.Expr, dtype: pl.DataType, zone: str) -> pl.Expr:
