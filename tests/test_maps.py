@@ -12,18 +12,14 @@ import shapely
 
 import reduce
 from reduce.geojson import ring_area
-from tests._builders import write_recipe
+from tests._builders import FIXTURES, write_recipe
 
 
 def _squares(folder: Path) -> Path:
-    """Four unit squares tiling [0, 2] x [0, 2] degrees, ids A..D (A bottom-left)."""
-    feats = []
-    for rid, (x, y) in {"A": (0, 0), "B": (1, 0), "C": (0, 1), "D": (1, 1)}.items():
-        ring = [[x, y], [x + 1, y], [x + 1, y + 1], [x, y + 1], [x, y]]
-        feats.append({"type": "Feature", "properties": {"code": rid},
-                      "geometry": {"type": "Polygon", "coordinates": [ring]}})
+    """Four unit squares tiling [0, 2] x [0, 2] degrees, ids A..D (A bottom-left):
+    fixtures/squares.geojson."""
     path = folder / "squares.geojson"
-    path.write_text(json.dumps({"type": "FeatureCollection", "features": feats}))
+    path.write_bytes((FIXTURES / "squares.geojson").read_bytes())
     return path
 
 

@@ -15,7 +15,7 @@ import pytest
 from click.testing import CliRunner
 
 from reduce.cli import main
-from tests._builders import write_recipe
+from tests._builders import FIXTURES, write_recipe
 
 NAMES = {"A": "Avra", "B": "Brell", "C": "Cosk", "D": "Dunmere"}
 
@@ -28,14 +28,10 @@ def _in_tmp(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
 
 def _case(folder: Path, layout: str, label: str = "name", names: dict[str, object] | None = None,
           outside: str = "") -> Path:
-    feats = []
-    for rid, (x, y) in {"A": (0, 0), "B": (1, 0), "C": (0, 1), "D": (1, 1)}.items():
-        ring = [[x, y], [x + 1, y], [x + 1, y + 1], [x, y + 1], [x, y]]
-        props = {"code": rid, "name": (names or NAMES).get(rid)}
-        feats.append({"type": "Feature", "properties": props,
-                      "geometry": {"type": "Polygon", "coordinates": [ring]}})
-    (folder / "squares.geojson").write_text(json.dumps({"type": "FeatureCollection",
-                                                        "features": feats}))
+    doc = json.loads((FIXTURES / "squares.geojson").read_bytes())  # codes A..D, names
+    for f in doc["features"]:
+        f["properties"]["name"] = (names or NAMES).get(f["properties"]["code"])
+    (folder / "squares.geojson").write_text(json.dumps(doc))
     rng = np.random.default_rng(4)
     n = 3000
     pl.DataFrame({"lat": rng.uniform(-0.2, 2.0, n), "lon": rng.uniform(0.0, 2.0, n)}
