@@ -37,6 +37,7 @@ FilterOp = Literal["in", "not_in", "range", "null", "not_null"]
 MeasureKind = Literal["count", "sum", "min", "max", "mean", "distinct"]
 Layout = Literal["columns", "rows", "csv", "geojson"]
 AXES = ("hex", "time", "top", "simplify", "coords", "digits")
+FLOW_KEYS = ("origin", "destination")  # a flow's key columns
 LAYOUTS: tuple[str, ...] = ("columns", "rows", "csv", "geojson")
 SOURCE_FORMATS = ("parquet", "csv", "ndjson")
 # The file extensions output.path may have for each layout (the first is the default name).
@@ -293,8 +294,9 @@ class Recipe:
 
     @property
     def category_sources(self) -> tuple[str, ...]:
-        """Source columns read as categories (none for flows, whose keys are computed)."""
-        return () if self.flow else self.categories
+        """Source columns read as categories (not a flow's ends, whose keys are computed)."""
+        return tuple(c for c in self.categories if c not in FLOW_KEYS) if self.flow \
+            else self.categories
 
     def finest_level(self) -> dict[str, Any]:
         return {axis: levels[0] for axis, levels in self.ladder().items()}
@@ -498,11 +500,7 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
     categories: tuple[str, ...] = ()
     flow = None
     if "flow" in group_doc:
-        if "category" in group_doc:
-            raise ctx.fail("group.flow", "cannot be combined with group.category (the flow's "
-                           "origin and destination are its categories); drop one")
         flow = _parse_flow(ctx, group_doc["flow"], base)
-        categories = ("origin", "destination")
     if "category" in group_doc:
         c = ctx.table(group_doc["category"], "group.category", ("column", "columns"))
         if ("column" in c) == ("columns" in c):
@@ -513,10 +511,13 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
                                         allow_single=False))
         if not categories:
             raise ctx.fail("group.category.columns", "is empty; list at least one column")
+        taken = ("time", "hex", *(FLOW_KEYS if flow else ()))
         for cname in categories:
-            if cname in ("time", "hex") or (region and cname == region.column):
+            if cname in taken or (region and cname == region.column):
                 raise ctx.fail("group.category", f"column {cname!r} has the name of another "
                                "key; rename the column in the source")
+    if flow is not None:  # the flow's ends are categories too, ranked and folded together
+        categories = (*FLOW_KEYS, *categories)
     if region and region.column in ("time", "hex"):
         raise ctx.fail("group.region", f"the key name {region.column!r} is taken by another "
                        "key; set group.region.name")

@@ -878,3 +878,9 @@ def test_sibling_manifest_belongs_to_its_own_payload(tmp_path: Path) -> None:
     problems = audit_one(csv_file).problems
     assert "manifest x.manifest.json key 'rows': 3, but the payload has 1 rows" in problems
     assert any(p.startswith("manifest x.manifest.json key 'sha256'") for p in problems)
+
+
+def test_brotli_auto_limit_is_the_one_run_uses() -> None:
+    from reduce import sizes
+
+    assert audit_module.BROTLI_AUTO_MAX_BYTES == sizes.BROTLI_AUTO_MAX
