@@ -342,3 +342,11 @@ def test_bytes_per_field_are_shown_on_the_budget_measure(tmp_path: Path) -> None
     assert fields["noise"]["measured"]["bytes"] > 5 * fields["same"]["measured"]["bytes"]
     table = run(path, "--budget", "1MB", "--on", "gzip")
     assert "gzip bytes" in table.stdout
+
+
+def test_command_line_budget_wins_over_the_budgets_file(tmp_path: Path) -> None:
+    small, big, budgets = _site(tmp_path)
+    budgets.write_text('[[file]]\nglob = "data/*.json"\nmax = "1KB"\n[total]\nmax = 10\n')
+    result = run(small, big, "--budgets", budgets, "--budget", "1MB", "--total", "1MB")
+    assert result.exit_code == 0, result.stderr  # the file's 1 KB and 10 B are not used
+    assert "[--budget]" in result.stdout and "[--total]" in result.stdout
