@@ -29,7 +29,7 @@ from reduce.recipe import Recipe, load_recipe  # noqa: E402
 from reduce.validate import CheckReport, check  # noqa: E402
 
 __all__ = [
-    "AuditError", "BudgetError", "CheckReport", "DenominatorError", "FitResult", "OutputError", "Recipe",
-    "RecipeError", "ReduceError", "RunResult", "SourceError", "__version__", "check", "fit", "ladder",
-    "load_recipe", "run",
+    "AuditError", "BudgetError", "CheckReport", "DenominatorError", "FitResult", "OutputError",
+    "Recipe", "RecipeError", "ReduceError", "RunResult", "SourceError", "__version__", "check",
+    "fit", "ladder", "load_recipe", "run",
 ]

@@ -12,8 +12,9 @@ negative or NaN) and three derived measures computed on the finalized rows of a 
   hex cell) j, within each time bin when the recipe has one.
 
 Keys present only in the data or only in the denominators are reported (run summary,
-``--json`` and manifest) as warnings; a table none of whose keys is in the data is an error. Denominators keyed by H3 cell are summed to the parent cell at the
-level's resolution.
+``--json`` and manifest) as warnings; a table none of whose keys is in the data is an
+error. Denominators keyed by H3 cell are summed to the parent cell at the level's
+resolution.
 """
 
 from __future__ import annotations

@@ -728,8 +728,9 @@ def _clocks() -> dict[str, tuple[tuple[int, ...], frozenset[str]]]:
         except (zoneinfo.ZoneInfoNotFoundError, ValueError, OSError):
             continue
         local = [d.astimezone(z) for d in days]
-        out[name] = (tuple(int(t.utcoffset().total_seconds()) for t in local),  # type: ignore[union-attr]
-                     frozenset(t.tzname() or "" for t in local))
+        offsets = tuple(int(t.utcoffset().total_seconds())  # type: ignore[union-attr]
+                        for t in local)
+        out[name] = (offsets, frozenset(t.tzname() or "" for t in local))
     return out
 
 

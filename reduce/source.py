@@ -360,8 +360,9 @@ def _utc_lit(v: dt.datetime, dtype: pl.DataType) -> pl.Expr:
 
 def _filter_expr(f: Filter, dtype: pl.DataType, zone: str, label: str) -> pl.Expr:
     """The filter as an expression. Time literals are compared as instants in UTC, whatever
-    the column's zone: see :func:`reduce.recipe.filter_instant` for how each kind of literal is read; a date
-    ``max`` covers that whole day (up to, not including, the next local midnight)."""
+    the column's zone (see :func:`reduce.recipe.filter_instant` for how each kind of literal
+    is read); a date ``max`` covers that whole day (up to, not including, the next local
+    midnight)."""
     col = pl.col(f.column)
     is_time_col = isinstance(dtype, (pl.Datetime, pl.Date))
 
