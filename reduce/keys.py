@@ -60,6 +60,7 @@ def _time_expr(recipe: Recipe, lf: pl.LazyFrame, label: str) -> pl.Expr:
 # Text that looks like an ISO 8601 date or date-time; anything else ("n/a", "-", "unknown")
 # cannot be read as a time and makes its row invalid (reason "time").
 _TIMELIKE_RE = re.compile(r"^\d{4}-\d\d-\d\d")
+_DATE_ONLY_RE = re.compile(r"^\d{4}-\d\d-\d\d$")
 
 
 def parse_time_text(lf: pl.LazyFrame, col: str, label: str) -> tuple[pl.Expr, pl.DataType]:
@@ -78,6 +79,10 @@ def parse_time_text(lf: pl.LazyFrame, col: str, label: str) -> tuple[pl.Expr, pl
             f"{sample.filter(~aware)[0]!r}); write them all with an offset or all without")
     text = pl.col(col).str.strip_chars()
     text = pl.when(text.str.contains(_TIMELIKE_RE.pattern)).then(text)
+    if len(sample) and bool(sample.str.contains(_DATE_ONLY_RE.pattern).all()):
+        # dates alone stay dates: their days are read on the grouping clock, as a date
+        # column's are
+        return text.str.to_date("%Y-%m-%d", strict=False), pl.Date()
     if n_aware:
         return (text.str.to_datetime(time_zone="UTC", strict=False, time_unit="us"),
                 pl.Datetime("us", "UTC"))

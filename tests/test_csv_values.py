@@ -177,3 +177,21 @@ def test_null_marker_in_coordinates_is_an_invalid_row(tmp_path: Path) -> None:
     assert code == 0, err
     manifest = json.loads((tmp_path / "out" / "case.manifest.json").read_bytes())
     assert manifest["accounting"]["invalid_by_reason"] == {"coordinates": 1}
+
+
+def test_csv_dates_alone_are_days_on_the_grouping_clock(tmp_path: Path) -> None:
+    """A date-only CSV time column keeps day semantics: 2013-02-01 is the local day in
+    group.time.zone (midnight in America/Chicago is 06:00 UTC in February, per zoneinfo)."""
+    import datetime as dt
+    from zoneinfo import ZoneInfo
+
+    (tmp_path / "ev.csv").write_text("day,k\n2013-02-01,a\n2013-02-02,b\nn/a,c\n2013-02-02,a\n")
+    recipe = _recipe(tmp_path, {"path": "ev.csv", "time": "day"},
+                     {"time": {"levels": ["1d"], "zone": "America/Chicago"}}, {"n": "count"})
+    code, _, err = invoke("run", str(recipe), "--quiet", "--no-cache")
+    assert code == 0, err
+    doc = json.loads((tmp_path / "out" / "case.json").read_bytes())
+    midnight = [int(dt.datetime(2013, 2, d, tzinfo=ZoneInfo("America/Chicago")).timestamp())
+                for d in (1, 2)]
+    assert doc["columns"] == {"time": midnight, "n": [1, 2]}
+    assert doc["accounting"]["invalid_rows"] == 1
