@@ -32,44 +32,10 @@ import pytest
 from click.testing import CliRunner
 
 from reduce.cli import main
-from tests._builders import events
+from tests._builders import FIXTURES, events
 
-GOOD = textwrap.dedent("""\
-    name = "base"
-
-    [source]
-    path = "events.parquet"
-    time = "ts"
-    lat = "lat"
-    lon = "lon"
-
-    [group]
-    time = { levels = ["1d", "1w"], zone = "UTC" }
-    region = { column = "prov" }
-    category = { column = "kind" }
-
-    [measures]
-    reports = "count"
-    observers = { distinct = "who" }
-    severity = { mean = "sev" }
-
-    [normalize]
-    denominators = { path = "pop.csv", key = "prov", value = "pop" }
-    per = 100000
-    measures = ["reports"]
-
-    [prune]
-    top = { k = [3, 2], by = "reports" }
-
-    [budget]
-    max = "1MB"
-    on = "gzip"
-
-    [output]
-    path = "out/base.json"
-    """)
-
-POPULATION = "prov,pop\nAAA,120000\nBBB,45000\nCCC,300000\nDDD,80000\n"
+GOOD = (FIXTURES / "recipes" / "base.toml").read_text(encoding="utf-8")
+POPULATION = (FIXTURES / "population.csv").read_text(encoding="utf-8")
 CACHE = "cache"
 
 
