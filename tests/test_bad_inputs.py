@@ -21,7 +21,6 @@ from __future__ import annotations
 import datetime as dt
 import json
 import os
-import textwrap
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
