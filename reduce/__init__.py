@@ -6,7 +6,9 @@ Library entry points (the command line calls the same functions):
 - :func:`fit` computes the finest partial once and picks the finest level whose payload fits
   the budget, returning the payload and the frontier of evaluated levels as a DataFrame;
 - :func:`ladder` does the same with raw, gzip and brotli sizes measured for every candidate;
-- :func:`run` fits and publishes the payload and its manifest atomically.
+- :func:`run` fits and publishes the payload and its manifest atomically;
+- :func:`check` validates many recipes, their sources and denominators without scanning,
+  listing every problem.
 """
 
 from __future__ import annotations
@@ -24,9 +26,10 @@ from reduce.errors import (  # noqa: E402
 )
 from reduce.pipeline import FitResult, RunResult, fit, ladder, run  # noqa: E402
 from reduce.recipe import Recipe, load_recipe  # noqa: E402
+from reduce.validate import CheckReport, check  # noqa: E402
 
 __all__ = [
-    "AuditError", "BudgetError", "DenominatorError", "FitResult", "OutputError", "Recipe",
-    "RecipeError", "ReduceError", "RunResult", "SourceError", "__version__", "fit", "ladder",
-    "load_recipe", "run",
+    "AuditError", "BudgetError", "CheckReport", "DenominatorError", "FitResult", "OutputError",
+    "Recipe", "RecipeError", "ReduceError", "RunResult", "SourceError", "__version__", "check",
+    "fit", "ladder", "load_recipe", "run",
 ]

@@ -64,8 +64,9 @@ def audit(
     """Audit payload files (or folders, walked recursively) before publishing them.
 
     Reports raw, gzip and brotli bytes, rows and drawn elements, bytes per column, numbers
-    with more than 6 decimals, a drawing-surface hint and a slow-3G transfer estimate; checks
-    reduce.columns/1 payloads against their contract and manifest; applies byte budgets.
+    with more than 6 decimals, a drawing-surface hint and a transfer estimate on a slow
+    link (1 Mbit/s assumed); checks reduce.columns/1 payloads against their contract and
+    manifest; applies byte budgets.
     """
     try:
         if as_json and markdown:

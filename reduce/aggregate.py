@@ -23,7 +23,7 @@ from pathlib import Path
 
 import polars as pl
 
-from reduce.errors import OutputError, SourceError
+from reduce.errors import OutputError, SourceError, shown_path
 from reduce.keys import (
     HEX,
     INVALID,
@@ -123,6 +123,9 @@ def _scan_aggs(measures: Sequence[MeasureSpec], floats: set[str]) -> list[pl.Exp
     """Partial aggregations over source rows; ``floats`` names the float measure inputs."""
     aggs = [pl.len().cast(pl.Int64).alias(N)]
     for m in measures:
+        if m.kind == "count" and m.where:  # its input is the row mask: a sum of 0s and 1s
+            aggs.append(pl.col(_in(m)).cast(pl.Int128).sum().alias(_sum(m)))
+            continue
         if m.column is None:
             continue
         c = pl.col(m.column)
@@ -145,7 +148,7 @@ def _merge_aggs(measures: Sequence[MeasureSpec], present: Sequence[str]) -> list
     """Aggregations that merge partial columns (used for roll-ups and merges)."""
     aggs = [pl.col(N).sum()]
     for m in measures:
-        if m.kind in ("sum", "mean"):
+        if m.kind in ("sum", "mean") or (m.kind == "count" and m.where):
             aggs += [pl.col(_sum(m)).sum(), pl.col(_fsum(m)).sum(), pl.col(_cnt(m)).sum()]
         elif m.kind == "min":
             aggs.append(pl.col(_min(m)).min())
@@ -205,6 +208,32 @@ class Spilled:
         return replace(self, root=folder)
 
 
+def _in(m: MeasureSpec) -> str:
+    """The scan's input column of a measure (see :func:`_scan_measures`)."""
+    return f"__in_{m.name}"
+
+
+def _measure_inputs(recipe: Recipe, schema: pl.Schema, label: str) -> list[pl.Expr]:
+    """The measure input columns the scan selects. A measure with ``where`` reads its
+    column only on the rows the filters keep (null elsewhere, which sums, means, minima
+    and maxima skip); a count with ``where`` reads the row mask itself. Both are per-row
+    values, so they merge exactly at every level, spilled or not."""
+    from reduce.source import where_mask
+
+    out = []
+    for o in recipe.measures:
+        if o.kind == "distinct":
+            continue
+        mask = where_mask(recipe, o.where, schema, label) if o.where else None
+        if o.column is None:
+            if mask is not None:
+                out.append(mask.alias(_in(o)))
+            continue
+        e = pl.col(o.column)
+        out.append((e if mask is None else pl.when(mask).then(e)).alias(_in(o)))
+    return out
+
+
 def _scan_measures(recipe: Recipe, float_inputs: set[str]
                    ) -> tuple[list[MeasureSpec], set[str]]:
     """Measures reading their renamed input columns (``__in_<name>``, so a measure column may
@@ -244,8 +273,7 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
     renamed, floats = _scan_measures(recipe, {c for c, t in schema.items() if t.is_float()})
     select = [*key_exprs, *([reason] if reason is not None else []),
               *[pl.col(c).alias(n) for c, n in zip(dcols, dnames)],
-              *[pl.col(o.column).alias(f"__in_{o.name}") for o in recipe.measures
-                if o.column is not None and o.kind != "distinct"]]
+              *_measure_inputs(recipe, schema, label)]
     by = [*keys, *hidden, *([INVALID] if reason is not None else []), *dnames]
     aggs = _scan_aggs(renamed, floats)
 
@@ -458,9 +486,13 @@ def _scan_error(recipe: Recipe, src: OpenSource, label: str,
         value, dtype, col = m.groups()
         role = next((k for k, c in column_roles(recipe) if c == col), None)
         frm = f" (from {recipe.file.name}: {role})" if role else ""
-        return SourceError(f"{label}: column {col!r}{frm} holds {value!r}, which cannot be read "
-                           f"as {dtype} like the rows before it; fix that value or convert the "
-                           "column")
+        from reduce.source import locate_value
+
+        at = locate_value(src, col, value)
+        where, line = (shown_path(at[0]), f" at line {at[1]:,}") if at else (label, "")
+        return SourceError(f"{where}: column {col!r}{frm} holds {value!r}{line}, which cannot "
+                           f"be read as {dtype} like the rows before it; fix that value, list "
+                           "it in source.null_values, or convert the column")
     try:  # on the error path only: read the needed columns without computing any key
         src.frame.select(pl.all().null_count()).collect(engine="streaming")
     except pl.exceptions.PolarsError as read_error:
@@ -666,7 +698,9 @@ def finalize(recipe: Recipe, p: Partial, *, only: Sequence[str] | None = None
     for m in recipe.measures:
         if only is not None and m.name not in only:
             continue
-        if m.kind == "count":
+        if m.kind == "count" and m.where:
+            cols.append(pl.col(_sum(m)).cast(pl.Int64).alias(m.name))
+        elif m.kind == "count":
             cols.append(pl.col(N).alias(m.name))
         elif m.kind in ("sum", "mean"):
             total = (pl.col(_fsum(m)).cast(pl.Float64) / FIXED_SCALE

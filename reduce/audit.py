@@ -34,7 +34,7 @@ import re
 import tomllib
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from concurrent.futures import Future, ThreadPoolExecutor
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -49,6 +49,7 @@ import pyarrow.ipc as paipc
 
 from reduce.errors import AuditError, did_you_mean
 from reduce.sizes import (
+    BROTLI_AUTO_MAX,
     MEASURES,
     Measure,
     Sizes,
@@ -66,7 +67,8 @@ __all__ = [
     "MANIFEST_FORMAT",
     "MAX_SAFE_INTEGER",
     "PRECISION_DECIMALS",
-    "SLOW_3G_BITS_PER_SECOND",
+    "SLOW_LINK_BITS_PER_SECOND",
+    "SLOW_LINK_NAME",
     "SVG_MAX_ELEMENTS",
     "AuditReport",
     "Budgets",
@@ -101,13 +103,16 @@ PRECISION_DECIMALS = 6
 SVG_MAX_ELEMENTS = 1_000
 CANVAS_MAX_ELEMENTS = 100_000
 
-# Transfer estimate on a slow mobile connection: "slow 3G" at 400 kbit/s downstream is the
-# usual throttling preset (common practice). Latency and TLS set-up are not included.
-SLOW_3G_BITS_PER_SECOND = 400_000
-TRANSFER_ASSUMPTION = "slow 3G, 400 kbit/s assumed"
+# Transfer estimate on a slow link: our own round assumption of 1 Mbit/s downstream, about
+# what a weak mobile connection gives (an assumption, not a measurement). Latency and TLS
+# set-up are not included.
+SLOW_LINK_NAME = "slow link"
+SLOW_LINK_BITS_PER_SECOND = 1_000_000
+TRANSFER_ASSUMPTION = f"a {SLOW_LINK_NAME} of 1 Mbit/s assumed"
 
-# Brotli quality 11 costs about 2 s per megabyte: measured exactly up to this size unless asked.
-BROTLI_AUTO_MAX_BYTES = 1_000_000
+# Brotli quality 11 costs about 2 s per megabyte: measured exactly up to this size unless
+# asked; the same limit as ``reduce run`` (one constant, in reduce.sizes).
+BROTLI_AUTO_MAX_BYTES = BROTLI_AUTO_MAX
 
 _JSON_SUFFIXES = frozenset({".json", ".geojson"})
 _CSV_SUFFIXES = frozenset({".csv"})
@@ -154,6 +159,8 @@ class FieldCost:
     name: str
     bytes: int
     too_precise: int = 0
+    on: Measure = "raw"  # the measure of ``share``: the file's budget measure
+    share: int | None = None  # bytes on ``on`` the field adds (see field_shares)
 
 
 @dataclass(frozen=True, slots=True)
@@ -264,8 +271,8 @@ def advice(elements: int) -> str:
 
 
 def transfer_seconds(nbytes: int) -> float:
-    """Seconds to transfer ``nbytes`` at the slow-3G bandwidth (400 kbit/s, no latency)."""
-    return nbytes * 8 / SLOW_3G_BITS_PER_SECOND
+    """Seconds to transfer ``nbytes`` on the assumed slow link (1 Mbit/s, no latency)."""
+    return nbytes * 8 / SLOW_LINK_BITS_PER_SECOND
 
 
 # --------------------------------------------------------------------------------------------
@@ -455,9 +462,12 @@ def audit_paths(
 ) -> AuditReport:
     """Audit files and folders (walked recursively, sorted) and return the report.
 
-    ``budget`` applies to every file on ``on``; a ``budgets_file`` (TOML) gives per-glob
-    budgets whose first match wins, falling back to ``budget``. ``total`` (or the budgets
-    file's ``[total]``; ``total`` wins) caps the sum over all files. Brotli is measured for
+    Precedence, one rule: the command line wins over the budgets file. ``budget`` applies
+    to every file on ``on`` (the ``[[file]]`` rules are then not used); without it, a
+    ``budgets_file`` (TOML) gives per-glob budgets, the first matching rule winning, and
+    each of its globs must match at least one audited file. ``total`` (else the file's
+    ``[total]``) caps the sum over all files. Bytes per field are given on the measure of
+    the file's budget (see :func:`field_shares`). Brotli is measured for
     every file, however large, with ``brotli=True``, with ``on="brotli"`` and wherever a
     brotli budget or total applies; otherwise only for files up to ``BROTLI_AUTO_MAX_BYTES``.
     Folders are walked top-down: a folder's files in name order, then its subfolders in name
@@ -473,15 +483,17 @@ def audit_paths(
         total_rule = (*budgets.total, f"{budgets_file} [total]")
 
     files = _collect(paths)
+    if budgets is not None:
+        _check_globs_match(budgets, files)
     results = []
     with ThreadPoolExecutor(max_workers=2, thread_name_prefix="reduce-audit") as pool:
         for given, path in files:
             verdict_rule: tuple[int, Measure, str] | None = None
             rule = budgets.rule_for(path, given) if budgets is not None else None
-            if rule is not None:
-                verdict_rule = (rule.limit, rule.on, rule.source)
-            elif limit is not None:
+            if limit is not None:  # the command line wins over the budgets file
                 verdict_rule = (limit, measure, "--budget")
+            elif rule is not None:
+                verdict_rule = (rule.limit, rule.on, rule.source)
             needs_brotli = (
                 brotli
                 or measure == "brotli"
@@ -498,6 +510,26 @@ def audit_paths(
             limit=t_limit, on=t_on, size=sum(s or 0 for s in sizes), source=t_source
         )
     return AuditReport(files=tuple(results), on=measure, total=total_verdict)
+
+
+def _check_globs_match(budgets: Budgets, files: Sequence[tuple[str, Path]]) -> None:
+    """A ``[[file]]`` glob matching none of the audited files is a mistake (a renamed folder,
+    a typo) that would otherwise let every file pass unchecked."""
+    for rule in budgets.rules:
+        if not any(rule.matches(_candidates(budgets, path, given)) for given, path in files):
+            n = len(files)
+            raise AuditError(f"{rule.source} matches none of the {n:,} audited "
+                             f"file{'s' if n != 1 else ''}; fix the glob (relative to the "
+                             "budgets file's folder) or remove the rule")
+
+
+def _candidates(budgets: Budgets, path: Path, given: str) -> list[str]:
+    out = [_posix(given)]
+    try:
+        out.insert(0, path.resolve().relative_to(budgets.path.parent.resolve()).as_posix())
+    except ValueError:
+        pass
+    return out
 
 
 def _collect(paths: Sequence[str | os.PathLike[str]]) -> list[tuple[str, Path]]:
@@ -591,6 +623,12 @@ def _audit_file(
         verdict = Verdict(limit=limit, on=on, size=size, source=source)
 
     fields = tuple(sorted(out.fields, key=lambda f: (-f.bytes, f.name)))
+    share_on: Measure = rule[1] if rule is not None else "gzip"
+    shares = field_shares(data, out.kind, share_on, [f.name for f in fields])
+    if shares is not None:
+        fields = tuple(sorted((replace(f, on=share_on, share=shares.get(f.name))
+                               for f in fields),
+                              key=lambda f: (-(f.share or 0), -f.bytes, f.name)))
     return FileAudit(
         path=given,
         kind=out.kind,
@@ -605,6 +643,78 @@ def _audit_file(
         notes=tuple(out.notes),
         budget=verdict,
     )
+
+
+# Field shares are measured by compressing the file once per field: up to this size.
+FIELD_SHARE_MAX_BYTES = BROTLI_AUTO_MAX
+
+
+def field_shares(data: bytes, kind: str, on: Measure,
+                 names: Sequence[str]) -> dict[str, int] | None:
+    """The bytes on ``on`` (gzip level 9, brotli quality 11, or raw) each field adds to the
+    file: the size of the file re-encoded whole minus its size re-encoded without that
+    field (columns payloads: the column, or its dictionary for ``name (dictionary)``; row
+    JSON and CSV: the key or column; GeoJSON: the property). Compression works on repeats
+    across fields, so shares need not add up to the file's size; they say which field to
+    trim first. ``None`` for other layouts and files over ``FIELD_SHARE_MAX_BYTES``."""
+    if len(data) > FIELD_SHARE_MAX_BYTES or kind not in ("columns", "rows", "geojson", "csv"):
+        return None
+    size = {"raw": len, "gzip": lambda b: len(gzip_bytes(b)),
+            "brotli": lambda b: len(brotli_bytes(b))}[on]
+    try:
+        if kind == "csv":
+            import csv
+            import io
+
+            table = list(csv.reader(io.StringIO(data.decode("utf-8", "replace"))))
+            if not table:
+                return None
+
+            def without(name: str | None) -> bytes:
+                keep = [i for i, h in enumerate(table[0]) if h != name]
+                buf = io.StringIO()
+                csv.writer(buf, lineterminator="\n").writerows([[r[i] for i in keep if i < len(r)]
+                                                                 for r in table])
+                return buf.getvalue().encode()
+        else:
+            doc = orjson.loads(data)
+
+            def without(name: str | None) -> bytes:
+                return orjson.dumps(_drop_field(doc, kind, name))
+    except (ValueError, UnicodeError):
+        return None
+    whole = size(without(None))
+    return {n: max(0, whole - size(without(n))) for n in names}
+
+
+def _drop_field(doc: Any, kind: str, name: str | None) -> Any:
+    if name is None:
+        return doc
+    if kind == "columns" and isinstance(doc, dict):
+        dicts = doc.get("dictionaries")
+        if name.endswith(" (dictionary)") and isinstance(dicts, dict):
+            base = name.removesuffix(" (dictionary)")
+            return {**doc, "dictionaries": {k: v for k, v in dicts.items() if k != base}}
+        cols = doc.get("columns")
+        if isinstance(cols, dict):
+            return {**doc, "columns": {k: v for k, v in cols.items() if k != name}}
+        return doc
+    if kind == "rows" and isinstance(doc, list):
+        return [{k: v for k, v in r.items() if k != name} if isinstance(r, dict) else r
+                for r in doc]
+    if kind == "geojson" and isinstance(doc, dict) and isinstance(doc.get("features"), list):
+        def feature(f: Any) -> Any:
+            if not isinstance(f, dict):
+                return f
+            if name in ("geometry", "id") and name in f:
+                return {k: v for k, v in f.items() if k != name}
+            prop = name.removeprefix("properties.")  # a property named like a member
+            props = f.get("properties")
+            if isinstance(props, dict):
+                return {**f, "properties": {k: v for k, v in props.items() if k != prop}}
+            return f
+        return {**doc, "features": [feature(f) for f in doc["features"]]}
+    return doc
 
 
 def _read(path: Path, given: str) -> bytes:
@@ -1292,7 +1402,8 @@ _SURFACE_NOTE = (
     "WebGL (GPU) beyond."
 )
 _TRANSFER_NOTE = (
-    f"Transfer time: gzip bytes on {TRANSFER_ASSUMPTION} (common practice), latency not included."
+    f"Transfer time: gzip bytes on {TRANSFER_ASSUMPTION} (our assumption), latency not "
+    "included."
 )
 _PRECISION_NOTE = (
     f"More than {PRECISION_DECIMALS} decimals is finer than about 0.1 m in degrees "
@@ -1341,13 +1452,15 @@ def render_table(report: AuditReport) -> str:
         if f.budget is not None:
             lines.append(f"  budget     {_verdict_text(f.budget)}")
         if f.fields:
-            total = sum(c.bytes for c in f.fields) or 1
+            on, total = _share_basis(f)
             width = max(len("field"), *(len(c.name) for c in f.fields))
-            lines.append(f"  {'field':<{width}}  {'bytes':>13}  {'share':>6}  >6 decimals")
+            lines.append(f"  {'field':<{width}}  {'raw bytes':>13}  {on + ' bytes':>13}  "
+                         f"{'share':>6}  >6 decimals")
             for c in f.fields:
+                part = _share_of(c, on)
                 lines.append(
-                    f"  {c.name:<{width}}  {c.bytes:>13,}  {c.bytes / total:>6.1%}  "
-                    f"{c.too_precise:>11,}"
+                    f"  {c.name:<{width}}  {c.bytes:>13,}  {_num_text(part):>13}  "
+                    f"{_pct(part, total):>6}  {c.too_precise:>11,}"
                 )
         if f.too_precise_fields:
             lines.append(
@@ -1369,13 +1482,32 @@ def render_table(report: AuditReport) -> str:
     return "\n".join(lines) + "\n"
 
 
+def _share_basis(f: FileAudit) -> tuple[str, int]:
+    """The measure bytes per field are shown on, and their sum (for the share column)."""
+    on = next((c.on for c in f.fields if c.share is not None), "raw")
+    return on, sum(_share_of(c, on) or 0 for c in f.fields) or 1
+
+
+def _share_of(c: FieldCost, on: str) -> int | None:
+    return c.bytes if on == "raw" else c.share
+
+
+def _num_text(n: int | None) -> str:
+    return "-" if n is None else f"{n:,}"
+
+
+def _pct(n: int | None, total: int) -> str:
+    return "-" if n is None else f"{n / total:.1%}"
+
+
 def _md(text: str) -> str:
     return text.replace("|", "\\|")
 
 
 def render_markdown(report: AuditReport) -> str:
     """A Markdown summary to paste into a pull request."""
-    head = "| file | layout | raw | gzip | brotli | elements | surface | slow 3G | budget |"
+    head = ("| file | layout | raw | gzip | brotli | elements | surface | "
+            f"{SLOW_LINK_NAME} | budget |")
     rule = "| --- | --- | ---: | ---: | ---: | ---: | --- | ---: | --- |"
     lines = ["### reduce audit", "", head, rule]
     for f in report.files:
@@ -1400,16 +1532,18 @@ def render_markdown(report: AuditReport) -> str:
     for f in report.files:
         if not f.fields:
             continue
-        total = sum(c.bytes for c in f.fields) or 1
+        on, total = _share_basis(f)
         lines += [
             f"<details><summary><code>{html.escape(f.path)}</code>: bytes per field</summary>",
             "",
-            "| field | bytes | share | >6 decimals |",
-            "| --- | ---: | ---: | ---: |",
+            f"| field | raw bytes | {on} bytes | share | >6 decimals |",
+            "| --- | ---: | ---: | ---: | ---: |",
         ]
         for c in f.fields:
+            part = _share_of(c, on)
             lines.append(
-                f"| {_md(c.name)} | {c.bytes:,} | {c.bytes / total:.1%} | {c.too_precise:,} |"
+                f"| {_md(c.name)} | {c.bytes:,} | {_num_text(part)} | {_pct(part, total)} | "
+                f"{c.too_precise:,} |"
             )
         lines += ["", "</details>", ""]
     findings = report.findings
@@ -1442,8 +1576,8 @@ def report_to_json(report: AuditReport) -> bytes:
         "ok": report.ok,
         "assumptions": {
             "transfer": {
-                "name": "slow 3G",
-                "bits_per_second": SLOW_3G_BITS_PER_SECOND,
+                "name": SLOW_LINK_NAME,
+                "bits_per_second": SLOW_LINK_BITS_PER_SECOND,
                 "on": "gzip",
             },
             "surface": {"svg_dom_max": SVG_MAX_ELEMENTS, "canvas_2d_max": CANVAS_MAX_ELEMENTS},
@@ -1460,7 +1594,8 @@ def report_to_json(report: AuditReport) -> bytes:
                 "surface": f.surface,
                 "transfer_seconds": round(f.transfer_seconds, 3),
                 "fields": [
-                    {"name": c.name, "bytes": c.bytes, "too_precise": c.too_precise}
+                    {"name": c.name, "bytes": c.bytes, "too_precise": c.too_precise,
+                     "measured": {"on": c.on, "bytes": c.share}}
                     for c in f.fields
                 ],
                 "budget": _verdict_json(f.budget),

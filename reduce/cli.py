@@ -63,7 +63,7 @@ class _Group(click.Group):
         except ReduceError as e:
             if ctx.obj and ctx.obj.get("debug"):
                 raise
-            click.echo(f"error: {e.message}", err=True)
+            click.echo(error_line(e), err=True)
             ctx.exit(e.exit_code)
         except KeyboardInterrupt:
             click.echo("error: interrupted; nothing was published by the unfinished step",
@@ -78,6 +78,20 @@ class _Group(click.Group):
             click.echo(f"error: internal error ({type(e).__name__}: {first}); rerun with "
                        "--debug and report it", err=True)
             ctx.exit(3)
+
+
+def error_line(e: ReduceError) -> str:
+    """The one line on stderr for an error."""
+    return f"error: {e.message}"
+
+
+def _fail_on(report: Any) -> None:
+    """Print every problem of a :class:`reduce.validate.CheckReport`, one line each, and exit
+    with the highest exit code among them (nothing published)."""
+    if not report.ok:
+        for e in report.errors:
+            click.echo(error_line(e), err=True)
+        sys.exit(report.exit_code)
 
 
 @click.group(cls=_Group, context_settings={"help_option_names": ["-h", "--help"]})
@@ -143,11 +157,14 @@ def run_cmd(recipes: tuple[Path, ...], out_dir: Path | None, write_anyway: bool,
     """Run recipes: fit each to its budget and write payload and manifest."""
     from reduce import report
     from reduce.pipeline import run
-    from reduce.recipe import load_recipe
+    from reduce.validate import check
 
     over = _overrides(sets)
-    loaded = [load_recipe(r, overrides=over) for r in recipes]  # validate all first
+    checked = check(recipes, overrides=over, outputs=True, out_dir=out_dir)
+    _fail_on(checked)  # every recipe, source and output checked before any is published
+    loaded = checked.recipes
     summaries = []
+    over_budget = False
     with _progress(quiet or as_json) as progress:
         for rec in loaded:
             res = run(rec, out_dir=out_dir, budget=budget_max, on=on,
@@ -156,15 +173,17 @@ def run_cmd(recipes: tuple[Path, ...], out_dir: Path | None, write_anyway: bool,
                 summaries.append(report.run_json(res))
             elif not quiet:
                 click.echo(report.run_line(res))
-                for line in report.run_notes(res):
-                    click.echo(line)
+            # Warnings go to stderr in every mode: --quiet and --json hide progress, not them.
+            for line in report.run_warnings(res):
+                click.echo(line, err=True)
             if res.over_budget:
                 from reduce.pipeline import smallest_message
 
+                over_budget = True
                 click.echo(f"error: {smallest_message(res.fit)}", err=True)
     if as_json:
         click.echo(orjson.dumps(summaries, option=orjson.OPT_INDENT_2).decode())
-    if any(s.get("over_budget") for s in summaries):
+    if over_budget:  # --write-anyway wrote something, but the budget was not met
         sys.exit(1)
 
 
@@ -207,17 +226,13 @@ def ladder_cmd(recipe: Path, order: str | None, every: bool, as_json: bool,
 def check_cmd(recipes: tuple[Path, ...], sets: tuple[str, ...]) -> None:
     """Validate recipes and their sources' schemas without scanning the data."""
     from reduce import report
-    from reduce.normalize import load_denominators
-    from reduce.recipe import load_recipe
-    from reduce.source import needed_columns, open_source
+    from reduce.validate import check
 
-    over = _overrides(sets)
-    for r in recipes:
-        rec = load_recipe(r, overrides=over)
-        src = open_source(rec)
-        if rec.normalize and rec.normalize.denominators:
-            load_denominators(rec.normalize.denominators)
-        click.echo(report.check_line(r, rec.name, len(src.files), needed_columns(rec)))
+    checked = check(recipes, overrides=_overrides(sets))
+    for c in checked.results:
+        if c.error is None and c.recipe is not None:
+            click.echo(report.check_line(c.file, c.recipe.name, c.source_files, c.columns))
+    _fail_on(checked)  # every problem of every recipe, one line each
 
 
 @main.command("demo")

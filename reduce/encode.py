@@ -12,8 +12,10 @@ Encoding is deterministic: the same rows give the same bytes.
 
 from __future__ import annotations
 
+import functools
 import io
 from collections.abc import Callable, Mapping, Sequence
+from pathlib import Path
 from typing import Any
 
 import orjson
@@ -121,12 +123,47 @@ def inline_safe(data: bytes) -> bytes:
     return data
 
 
+@functools.lru_cache(maxsize=8)
+def _labels_of(path: str, mtime_ns: int, id_property: str,
+               label_property: str) -> dict[str, str]:
+    from reduce import geo
+
+    return geo.region_labels(Path(path), id_property, label_property)
+
+
+def region_labels(recipe: Recipe) -> dict[str, str] | None:
+    """The labels of a recipe's boundary regions (``group.region.label``), or None."""
+    r = recipe.region
+    if r is None or r.label_property is None or r.boundaries is None:
+        return None
+    assert r.id_property is not None
+    try:
+        mtime = r.boundaries.stat().st_mtime_ns
+    except OSError:
+        mtime = 0  # load_boundaries says what is wrong with the file
+    return _labels_of(str(r.boundaries), mtime, r.id_property, r.label_property)
+
+
+def _with_labels(recipe: Recipe, plain: pl.DataFrame) -> pl.DataFrame:
+    """The region label column, right after the region column (null for a region that is
+    no polygon, such as ``outside``)."""
+    labels = region_labels(recipe)
+    r = recipe.region
+    if labels is None or r is None or r.label_column is None or r.column not in plain.columns:
+        return plain
+    label = pl.col(r.column).replace_strict(labels, default=None, return_dtype=pl.String)
+    cols = plain.columns
+    at = cols.index(r.column) + 1
+    return plain.with_columns(label.alias(r.label_column)).select(
+        [*cols[:at], r.label_column, *cols[at:]])
+
+
 def encode(recipe: Recipe, df: pl.DataFrame, *, level: Mapping[str, Any],
            accounting: Mapping[str, int], digits: int,
            meta: Mapping[str, Any] | None = None,
            geometry: Callable[[pl.DataFrame], list[Any]] | None = None) -> bytes:
     """Encode finalized, sorted rows in the recipe's layout."""
-    plain = _plain(recipe, df, digits)
+    plain = _with_labels(recipe, _plain(recipe, df, digits))
     _check_ints(plain, recipe)
     layout = recipe.output.layout
     if layout == "geojson":
@@ -152,6 +189,8 @@ def encode(recipe: Recipe, df: pl.DataFrame, *, level: Mapping[str, Any],
     columns: dict[str, list[Any]] = {}
     dictionaries: dict[str, list[str]] = {}
     string_keys = {recipe.region.column} if recipe.region else set()
+    if recipe.region and recipe.region.label_column:
+        string_keys.add(recipe.region.label_column)
     string_keys |= set(recipe.categories)
     for c in plain.columns:
         values = plain.get_column(c).to_list()

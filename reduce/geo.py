@@ -45,7 +45,7 @@ import polars as pl
 import shapely
 from shapely.geometry import shape
 
-from reduce.errors import SourceError
+from reduce.errors import SourceError, shown_path
 
 __all__ = ["Boundaries", "assign", "assign_expr", "load_boundaries"]
 
@@ -126,6 +126,24 @@ def load_boundaries(path: Path, id_property: str) -> Boundaries:
     regions.sort(key=lambda r: r[0])
     return Boundaries(ids=tuple(r[0] for r in regions), geoms=tuple(r[1] for r in regions),
                       path=path)
+
+
+def region_labels(path: Path, id_property: str, label_property: str) -> dict[str, str]:
+    """Each region id's label: the ``label_property`` of its feature (text, or a number as
+    its decimal text). Raises :class:`SourceError` naming a feature without one."""
+    b = load_boundaries(path, id_property)  # every check of the polygons and their ids
+    doc = orjson.loads(Path(path).read_bytes())
+    out: dict[str, str] = {}
+    for i, feature in enumerate(doc["features"]):
+        region_id = _feature_id(path, i, feature, id_property)
+        value = (feature.get("properties") or {}).get(label_property)
+        if isinstance(value, bool) or not isinstance(value, (str, int, float)):
+            raise SourceError(f"{shown_path(path)}: feature {i} ({region_id!r}) has no text "
+                              f"{label_property!r} property (group.region.label); give every "
+                              "feature one or name another property")
+        out[region_id] = value if isinstance(value, str) else str(value)
+    del b
+    return out
 
 
 def _feature_id(path: Path, i: int, feature: Any, id_property: str) -> str:

@@ -76,27 +76,51 @@ def _time_expr(recipe: Recipe, lf: pl.LazyFrame, label: str) -> pl.Expr:
     dtype = lf.collect_schema()[col]
     e = pl.col(col)
     if dtype == pl.String:
-        sample = (lf.select(pl.col(col)).drop_nulls().head(10000).collect()
-                  .get_column(col).str.strip_chars())
-        aware = sample.str.contains(_AWARE_RE.pattern)
-        n_aware = int(aware.sum())
-        if 0 < n_aware < len(sample):
-            raise SourceError(
-                f"{label}: column {col!r} (source.time) mixes timestamps with a zone and "
-                f"without one (e.g. {sample.filter(aware)[0]!r} and "
-                f"{sample.filter(~aware)[0]!r}); write them all with an offset or all without")
-        if n_aware:
-            e = e.str.strip_chars().str.to_datetime(time_zone="UTC", strict=False,
-                                                    time_unit="us")
-            return e.dt.convert_time_zone(zone)
-        e = e.str.strip_chars().str.to_datetime(strict=False, time_unit="us")
-        dtype = pl.Datetime("us")
+        e, dtype = parse_time_text(lf, col, label)
     if isinstance(dtype, pl.Date):
         return e.cast(pl.Datetime("us")).dt.replace_time_zone(zone, ambiguous="earliest",
                                                              non_existent="null")
     if isinstance(dtype, pl.Datetime) and dtype.time_zone is None:
         e = e.dt.replace_time_zone(naive, ambiguous="earliest", non_existent="null")
     return e.dt.convert_time_zone(zone)
+
+
+# Text that looks like an ISO 8601 date or date-time; anything else ("n/a", "-", "unknown")
+# cannot be read as a time and makes its row invalid (reason "time").
+_TIMELIKE_RE = re.compile(r"^\d{4}-\d\d-\d\d")
+_DATE_ONLY_RE = re.compile(r"^\d{4}-\d\d-\d\d$")
+
+
+def parse_time_text(lf: pl.LazyFrame, col: str, label: str) -> tuple[pl.Expr, pl.DataType]:
+    """ISO 8601 text as datetimes: UTC instants when the text carries offsets, naive wall
+    times otherwise. Text that cannot be read as a time gives null (an invalid row, reason
+    "time"), never an error; text mixing offsets and none is an error."""
+    sample = (lf.select(pl.col(col)).drop_nulls().head(10000).collect()
+              .get_column(col).str.strip_chars())
+    sample = sample.filter(sample.str.contains(_TIMELIKE_RE.pattern))
+    aware = sample.str.contains(_AWARE_RE.pattern)
+    n_aware = int(aware.sum())
+    if 0 < n_aware < len(sample):
+        raise SourceError(
+            f"{label}: column {col!r} (source.time) mixes timestamps with a zone and "
+            f"without one (e.g. {sample.filter(aware)[0]!r} and "
+            f"{sample.filter(~aware)[0]!r}); write them all with an offset or all without")
+    text = pl.col(col).str.strip_chars()
+    text = pl.when(text.str.contains(_TIMELIKE_RE.pattern)).then(text)
+    if len(sample) and bool(sample.str.contains(_DATE_ONLY_RE.pattern).all()):
+        # dates alone stay dates: their days are read on the grouping clock, as a date
+        # column's are
+        return text.str.to_date("%Y-%m-%d", strict=False), pl.Date()
+    if n_aware:
+        return (text.str.to_datetime(time_zone="UTC", strict=False, time_unit="us"),
+                pl.Datetime("us", "UTC"))
+    return text.str.to_datetime(strict=False, time_unit="us"), pl.Datetime("us")
+
+
+def parse_coordinate_text(col: str) -> pl.Expr:
+    """Coordinates read from text: a value that is not a number gives null (an invalid row,
+    reason "coordinates"), like an out-of-range one."""
+    return pl.col(col).cast(pl.String).str.strip_chars().cast(pl.Float64, strict=False)
 
 
 def _fixed_offset(zone: str) -> bool:

@@ -11,9 +11,10 @@ negative or NaN) and three derived measures computed on the finalized rows of a 
 - ``<m>_lq``: the location quotient (e_ij / e_j) / (E_i / E) of category i in region (or
   hex cell) j, within each time bin when the recipe has one.
 
-Keys present only in the data or only in the denominators are reported (run summary and
-manifest), not errors. Denominators keyed by H3 cell are summed to the parent cell at the
-level's resolution.
+Keys present only in the data or only in the denominators are reported (run summary,
+``--json`` and manifest) as warnings; a table none of whose keys is in the data is an
+error. Denominators keyed by H3 cell are summed to the parent cell at the level's
+resolution.
 """
 
 from __future__ import annotations
@@ -147,6 +148,9 @@ def apply(recipe: Recipe, final: pl.DataFrame, *, den: pl.DataFrame | None,
         data_keys = set(left.get_column("__key").unique().to_list())
         den_keys = set(dl.get_column("key").to_list())
         fmt = (lambda k: plh3_str(k)) if d.on == "hex" else str  # noqa: E731
+        data_keys.discard(None)
+        if data_keys and den_keys and not data_keys & den_keys:
+            raise _no_match(d, key_col, sorted(map(fmt, data_keys)), sorted(map(fmt, den_keys)))
         report = NormalizeReport(
             rows_without_denominator=missing,
             data_only_keys=tuple(sorted(fmt(k) for k in data_keys - den_keys)),
@@ -171,6 +175,19 @@ def apply(recipe: Recipe, final: pl.DataFrame, *, den: pl.DataFrame | None,
         ok = (e_j > 0) & (e_i > 0) & (e_all > 0)
         out = out.with_columns(pl.when(ok).then((e / e_j) / (e_i / e_all)).alias(f"{m}_lq"))
     return out, report
+
+
+def _no_match(d: Denominators, key_col: str, data: list[str],
+              table: list[str]) -> DenominatorError:
+    """A denominators table none of whose keys occurs in the data: every rate would be
+    empty, so it is an error (not a warning)."""
+    def sample(keys: list[str]) -> str:
+        return ", ".join(repr(k) for k in keys[:3]) + (" ..." if len(keys) > 3 else "")
+
+    return DenominatorError(
+        f"{shown_path(d.path)} (normalize.denominators): none of its {len(table):,} keys in "
+        f"column {d.key!r} matches the {len(data):,} {key_col} keys in the data (data: "
+        f"{sample(data)}; table: {sample(table)}); make the table's keys match the data's")
 
 
 def plh3_str(cell: int) -> str:

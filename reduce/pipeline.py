@@ -264,8 +264,9 @@ class RunResult:
 
 def output_path(recipe: Recipe, out_dir: Path | None) -> Path:
     """Where a recipe's payload goes: ``--out DIR`` wins over ``output.path``."""
-    ext = {"columns": ".json", "rows": ".json", "csv": ".csv",
-           "geojson": ".geojson"}[recipe.output.layout]
+    from reduce.recipe import LAYOUT_EXTENSIONS
+
+    ext = LAYOUT_EXTENSIONS[recipe.output.layout][0]
     if out_dir is not None:
         name = recipe.output.path.name if recipe.output.path else f"{recipe.name}{ext}"
         return resolve_output(Path(out_dir), name)

@@ -37,8 +37,13 @@ FilterOp = Literal["in", "not_in", "range", "null", "not_null"]
 MeasureKind = Literal["count", "sum", "min", "max", "mean", "distinct"]
 Layout = Literal["columns", "rows", "csv", "geojson"]
 AXES = ("hex", "time", "top", "simplify", "coords", "digits")
+FLOW_KEYS = ("origin", "destination")  # a flow's key columns
 LAYOUTS: tuple[str, ...] = ("columns", "rows", "csv", "geojson")
 SOURCE_FORMATS = ("parquet", "csv", "ndjson")
+# The file extensions output.path may have for each layout (the first is the default name).
+LAYOUT_EXTENSIONS: dict[str, tuple[str, ...]] = {
+    "columns": (".json",), "rows": (".json",), "csv": (".csv",),
+    "geojson": (".geojson", ".json")}
 
 
 @dataclass(frozen=True, slots=True)
@@ -63,6 +68,7 @@ class Source:
     lon: str | None
     naive_zone: str  # zone in which naive timestamps are read
     filters: tuple[Filter, ...]
+    null_values: tuple[str, ...] = ()  # CSV/NDJSON text read as missing (besides empty)
 
 
 @dataclass(frozen=True, slots=True)
@@ -118,6 +124,12 @@ class RegionKey:
     boundaries_display: str = ""
     id_property: str | None = None
     outside: str | None = None  # label for events outside every polygon; None: unassigned
+    label_property: str | None = None  # a polygon property carried into payloads
+
+    @property
+    def label_column(self) -> str | None:
+        """The payload column (GeoJSON property) holding each region's label."""
+        return f"{self.column}_label" if self.label_property else None
 
 
 @dataclass(frozen=True, slots=True)
@@ -146,6 +158,7 @@ class MeasureSpec:
     name: str
     kind: MeasureKind
     column: str | None  # None for count
+    where: tuple[Filter, ...] = ()  # rows the measure counts (structured filters, all true)
 
 
 @dataclass(frozen=True, slots=True)
@@ -281,8 +294,9 @@ class Recipe:
 
     @property
     def category_sources(self) -> tuple[str, ...]:
-        """Source columns read as categories (none for flows, whose keys are computed)."""
-        return () if self.flow else self.categories
+        """Source columns read as categories (not a flow's ends, whose keys are computed)."""
+        return tuple(c for c in self.categories if c not in FLOW_KEYS) if self.flow \
+            else self.categories
 
     def finest_level(self) -> dict[str, Any]:
         return {axis: levels[0] for axis, levels in self.ladder().items()}
@@ -491,7 +505,8 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
     if "source" not in doc:
         raise ctx.fail("source", "is required; add a [source] table with path = ...")
     src_doc = ctx.table(doc["source"], "source",
-                        ("path", "format", "time", "lat", "lon", "time_zone", "filter"))
+                        ("path", "format", "time", "lat", "lon", "time_zone", "filter",
+                         "null_values"))
     group_doc = ctx.table(doc.get("group", {}), "group",
                           ("hex", "time", "region", "category", "flow"))
     if not group_doc:
@@ -504,11 +519,7 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
     categories: tuple[str, ...] = ()
     flow = None
     if "flow" in group_doc:
-        if "category" in group_doc:
-            raise ctx.fail("group.flow", "cannot be combined with group.category (the flow's "
-                           "origin and destination are its categories); drop one")
         flow = _parse_flow(ctx, group_doc["flow"], base)
-        categories = ("origin", "destination")
     if "category" in group_doc:
         c = ctx.table(group_doc["category"], "group.category", ("column", "columns"))
         if ("column" in c) == ("columns" in c):
@@ -519,10 +530,13 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
                                         allow_single=False))
         if not categories:
             raise ctx.fail("group.category.columns", "is empty; list at least one column")
+        taken = ("time", "hex", *(FLOW_KEYS if flow else ()))
         for cname in categories:
-            if cname in ("time", "hex") or (region and cname == region.column):
+            if cname in taken or (region and cname == region.column):
                 raise ctx.fail("group.category", f"column {cname!r} has the name of another "
                                "key; rename the column in the source")
+    if flow is not None:  # the flow's ends are categories too, ranked and folded together
+        categories = (*FLOW_KEYS, *categories)
     if region and region.column in ("time", "hex"):
         raise ctx.fail("group.region", f"the key name {region.column!r} is taken by another "
                        "key; set group.region.name")
@@ -530,8 +544,9 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
     source = _parse_source(ctx, src_doc, base, need_geo, time_key is not None)
 
     # --- measures ----------------------------------------------------------------------------
-    measures = _parse_measures(ctx, doc.get("measures"))
-    reserved = {"time", "hex", *(k for k in ([region.column] if region else [])), *categories}
+    measures = _parse_measures(ctx, doc.get("measures"), source.naive_zone)
+    reserved = {"time", "hex", *(k for k in ([region.column] if region else [])), *categories,
+                *([region.label_column] if region and region.label_column else [])}
     for m in measures:
         if m.name in reserved:
             raise ctx.fail(f"measures.{m.name}", "has the same name as a key column; rename "
@@ -601,12 +616,13 @@ def _rel(base: Path, p: str) -> Path:
 
 
 def _parse_region(ctx: _Ctx, doc: Any, base: Path) -> RegionKey:
-    r = ctx.table(doc, "group.region", ("column", "boundaries", "id", "name", "outside"))
+    r = ctx.table(doc, "group.region", ("column", "boundaries", "id", "name", "outside",
+                                        "label"))
     if ("column" in r) == ("boundaries" in r):
         raise ctx.fail("group.region", "give exactly one of column = \"...\" (a source column) "
                        "or boundaries = \"file.geojson\" with id = \"property\"")
     if "column" in r:
-        for k in ("id", "outside"):
+        for k in ("id", "outside", "label"):
             if k in r:
                 raise ctx.fail(f"group.region.{k}", "applies to boundaries only")
         col = ctx.string(r, "group.region", "column", required=True)
@@ -617,9 +633,10 @@ def _parse_region(ctx: _Ctx, doc: Any, base: Path) -> RegionKey:
     idp = ctx.string(r, "group.region", "id", required=True)
     name = ctx.string(r, "group.region", "name", default="region")
     outside = ctx.string(r, "group.region", "outside")
+    label = ctx.string(r, "group.region", "label")
     assert path is not None and idp is not None and name is not None
     return RegionKey(column=name, boundaries=_rel(base, path), boundaries_display=path,
-                     id_property=idp, outside=outside)
+                     id_property=idp, outside=outside, label_property=label)
 
 
 def _flow_end(ctx: _Ctx, v: Any, key: str) -> FlowEnd:
@@ -708,9 +725,89 @@ def _check_zone(ctx: _Ctx, key: str, zone: str) -> None:
     try:
         zoneinfo.ZoneInfo(zone)
     except (zoneinfo.ZoneInfoNotFoundError, ValueError, OSError):  # a folder name is an OSError
-        close = did_you_mean(zone, zoneinfo.available_timezones())
-        raise ctx.fail(key, f"unknown time zone {zone!r}{close}; use an IANA name such as "
-                       "UTC or Europe/Paris") from None
+        raise ctx.fail(key, f"unknown time zone {zone!r}{zone_hint(zone)}; use an IANA name "
+                       "such as UTC or Europe/Paris") from None
+
+
+_OFFSET_RE = re.compile(r"^(?:UTC|GMT|Z)?\s*([+-])(\d{1,2})(?::?(\d\d))?$", re.IGNORECASE)
+_HINT_YEAR = 2025  # the year whose offsets define "the same clock" (fixed: same hint always)
+_CONTINENTS = ("Africa/", "America/", "Antarctica/", "Asia/", "Atlantic/", "Australia/",
+               "Europe/", "Indian/", "Pacific/")
+
+
+def _clocks() -> dict[str, tuple[tuple[int, ...], frozenset[str]]]:
+    """Every zone's UTC offset (seconds) at noon UTC of each day of ``_HINT_YEAR`` (its
+    offset and DST rule, as far as one year shows them) and the abbreviations it uses."""
+    days = [dt.datetime(_HINT_YEAR, 1, 1, 12, tzinfo=dt.timezone.utc) + dt.timedelta(days=i)
+            for i in range(365)]
+    out = {}
+    for name in sorted(zoneinfo.available_timezones()):
+        try:
+            z = zoneinfo.ZoneInfo(name)
+        except (zoneinfo.ZoneInfoNotFoundError, ValueError, OSError):
+            continue
+        local = [d.astimezone(z) for d in days]
+        offsets = tuple(int(t.utcoffset().total_seconds())  # type: ignore[union-attr]
+                        for t in local)
+        out[name] = (offsets, frozenset(t.tzname() or "" for t in local))
+    return out
+
+
+def _tz_table(name: str) -> str:
+    """A text file of the time-zone database (the tzdata package's, else the system's)."""
+    try:
+        from importlib.resources import files
+
+        return (files("tzdata.zoneinfo") / name).read_text(encoding="utf-8")
+    except (ImportError, OSError, ValueError):
+        for folder in zoneinfo.TZPATH:
+            try:
+                return (Path(folder) / name).read_text(encoding="utf-8")
+            except OSError:
+                continue
+    return ""
+
+
+def _pick(names: Sequence[str]) -> str:
+    """One name for a clock: a main zone of the database (zone1970.tab) before the others,
+    then the one most other names link to (tzdata.zi), then by name."""
+    main = {ln.split("\t")[2] for ln in _tz_table("zone1970.tab").splitlines()
+            if ln and not ln.startswith("#") and ln.count("\t") >= 2}
+    links: dict[str, int] = {}
+    for ln in _tz_table("tzdata.zi").splitlines():
+        if ln.startswith("L "):
+            target = ln.split()[1]
+            links[target] = links.get(target, 0) + 1
+    return min(names, key=lambda n: (n not in main, not n.startswith(_CONTINENTS),
+                                     n.count("/"), -links.get(n, 0), n))
+
+
+def zone_hint(zone: str) -> str:
+    """``" (did you mean 'x'?)"`` naming only zones on the clock ``zone`` stands for: the
+    same UTC offset and DST rule over a year (compared with ``zoneinfo``). An offset such as
+    ``UTC-8`` gets a zone fixed at that offset, an abbreviation such as ``PST`` one zone per
+    distinct clock using it, and an IANA-style name with a typo its close match; anything
+    else no hint rather than a different clock."""
+    m = _OFFSET_RE.match(zone.strip())
+    clocks = _clocks()
+    if m:
+        sign = -1 if m.group(1) == "-" else 1
+        seconds = sign * (int(m.group(2)) * 3600 + int(m.group(3) or 0) * 60)
+        same = [n for n, (offs, _) in clocks.items() if set(offs) == {seconds}]
+        etc = [n for n in same if n.startswith("Etc/GMT") and n not in ("Etc/GMT", "Etc/GMT0")]
+        pick = (min(etc, key=len) if etc else _pick(same)) if same else None
+        return f" (did you mean {pick!r}?)" if pick else ""
+    groups: dict[tuple[int, ...], list[str]] = {}
+    for n, (offs, abbrs) in clocks.items():
+        if zone.upper() in abbrs:
+            groups.setdefault(offs, []).append(n)
+    if groups:
+        picks = sorted((_pick(g) for g in groups.values()), key=lambda n: min(
+            clocks[n][0]))[:3]
+        return " (did you mean " + " or ".join(repr(p) for p in picks) + "?)"
+    if "/" in zone:
+        return did_you_mean(zone, clocks)
+    return ""
 
 
 def _parse_source(ctx: _Ctx, d: dict[str, Any], base: Path, need_geo: bool,
@@ -735,25 +832,45 @@ def _parse_source(ctx: _Ctx, d: dict[str, Any], base: Path, need_geo: bool,
     zone = ctx.string(d, "source", "time_zone", default="UTC")
     assert zone is not None
     _check_zone(ctx, "source.time_zone", zone)
-    filters = _parse_filters(ctx, d.get("filter", []))
+    filters = _parse_filters(ctx, d.get("filter", []), zone)
+    nv = d.get("null_values", [])
+    if not isinstance(nv, list) or not all(isinstance(x, str) for x in nv):
+        raise ctx.fail("source.null_values", f"must be a list of strings such as [\"NA\", "
+                       f"\"-\"], got {_short(nv)}")
+    null_values = tuple(dict.fromkeys(nv))
     path = display if Path(display).is_absolute() else str(base / display)
     return Source(path=path, display=display, format=fmt, time=time, lat=lat, lon=lon,
-                  naive_zone=zone, filters=filters)
+                  naive_zone=zone, filters=filters, null_values=null_values)
+
+
+def filter_instant(v: dt.datetime | dt.date, zone: str, *,
+                   end_of_day: bool = False) -> dt.datetime:
+    """A time filter literal as a naive UTC datetime: an offset date-time is that instant; a
+    local date-time is read on the clock of ``zone`` (source.time_zone; an ambiguous wall
+    time is the earlier instant, a skipped one is read with the offset before the change);
+    a date is its local midnight, or with ``end_of_day`` the next day's (an exclusive end)."""
+    if not isinstance(v, dt.datetime):
+        day = v + dt.timedelta(days=1) if end_of_day else v
+        v = dt.datetime(day.year, day.month, day.day)
+    if v.tzinfo is None:
+        v = v.replace(tzinfo=zoneinfo.ZoneInfo(zone))
+    return v.astimezone(dt.timezone.utc).replace(tzinfo=None)
 
 
 _FILTER_KEYS = ("column", "in", "not_in", "min", "max", "null")
 _SCALARS = (str, int, float, bool, dt.datetime, dt.date)
 
 
-def _parse_filters(ctx: _Ctx, doc: Any) -> tuple[Filter, ...]:
+def _parse_filters(ctx: _Ctx, doc: Any, zone: str,
+                   where: str = "source.filter") -> tuple[Filter, ...]:
     if isinstance(doc, dict):
         doc = [doc]
     if not isinstance(doc, list):
-        raise ctx.fail("source.filter", "must be a list of tables such as "
+        raise ctx.fail(where, "must be a list of tables such as "
                        "[{ column = \"kind\", in = [\"hail\"] }]")
     out: list[Filter] = []
     for i, f in enumerate(doc):
-        key = f"source.filter[{i}]"
+        key = f"{where}[{i}]"
         f = ctx.table(f, key, _FILTER_KEYS)
         col = ctx.string(f, key, "column", required=True)
         assert col is not None
@@ -791,7 +908,11 @@ def _parse_filters(ctx: _Ctx, doc: Any) -> tuple[Filter, ...]:
                                    f"{_tname(v)} {_short(v)}")
             if lo is not None and hi is not None:
                 try:
-                    bad = lo > hi
+                    if isinstance(lo, dt.date) and isinstance(hi, dt.date):  # as instants
+                        bad = filter_instant(lo, zone) >= filter_instant(hi, zone,
+                                                                         end_of_day=True)
+                    else:
+                        bad = lo > hi
                 except TypeError:
                     raise ctx.fail(key, "min and max must be of the same kind") from None
                 if bad:
@@ -803,7 +924,7 @@ def _parse_filters(ctx: _Ctx, doc: Any) -> tuple[Filter, ...]:
 _MEASURE_KINDS: tuple[MeasureKind, ...] = ("count", "sum", "min", "max", "mean", "distinct")
 
 
-def _parse_measures(ctx: _Ctx, doc: Any) -> tuple[MeasureSpec, ...]:
+def _parse_measures(ctx: _Ctx, doc: Any, zone: str = "UTC") -> tuple[MeasureSpec, ...]:
     if doc is None:
         return (MeasureSpec("count", "count", None),)
     if not isinstance(doc, dict):
@@ -822,17 +943,34 @@ def _parse_measures(ctx: _Ctx, doc: Any) -> tuple[MeasureSpec, ...]:
         if isinstance(spec, str):
             raise ctx.fail(key, f"{spec!r} is not a measure{did_you_mean(spec, _MEASURE_KINDS)};"
                            " use \"count\" or a table such as { sum = \"column\" }")
+        where: tuple[Filter, ...] = ()
+        if isinstance(spec, dict) and "where" in spec:
+            spec = dict(spec)
+            where = _parse_filters(ctx, spec.pop("where"), zone, f"{key}.where")
+            if not where:
+                raise ctx.fail(f"{key}.where", "is empty; list at least one filter")
+            if spec.get("count") is True:
+                out.append(MeasureSpec(name, "count", None, where))
+                if len(spec) != 1:
+                    raise ctx.fail(key, "a count with where takes no other key")
+                continue
         if not isinstance(spec, dict) or len(spec) != 1:
             raise ctx.fail(key, "must be \"count\" or a table with one key, e.g. "
-                           "{ sum = \"column\" }")
+                           "{ sum = \"column\" } (plus where = [...])")
         ((kind, col),) = spec.items()
+        if kind == "count" and col is True and not where:
+            out.append(MeasureSpec(name, "count", None))
+            continue
+        if where and kind == "distinct":
+            raise ctx.fail(f"{key}.where", "applies to count, sum, mean, min and max "
+                           "measures, not distinct")
         if kind not in _MEASURE_KINDS or kind == "count":
             raise ctx.fail(f"{key}.{kind}", f"unknown measure kind"
                            f"{did_you_mean(kind, _MEASURE_KINDS)}; use one of sum, min, max, "
                            "mean, distinct (or \"count\")")
         if not isinstance(col, str) or not col:
             raise ctx.fail(f"{key}.{kind}", "must name a column")
-        out.append(MeasureSpec(name, kind, col))
+        out.append(MeasureSpec(name, kind, col, where))
     return tuple(out)
 
 
@@ -1049,6 +1187,11 @@ def _parse_output(ctx: _Ctx, doc: Any, base: Path) -> Output:
         raise ctx.fail("output.inline", "must be true or false")
     if inline and layout == "csv":
         raise ctx.fail("output.inline", "applies to JSON layouts only")
+    if path is not None and path.suffix.lower() not in LAYOUT_EXTENSIONS[layout]:
+        want = LAYOUT_EXTENSIONS[layout]
+        raise ctx.fail("output.path", f"{p!r} ends in {path.suffix}, but output.layout "
+                       f"{layout!r} writes {' or '.join(want)} files; name the file "
+                       f"{path.stem}{want[0]} or change output.layout")
     simplify: tuple[float, ...] = (0.0,)
     coords: tuple[int, ...] = (6,)
     if "simplify" in d or "coordinate_digits" in d:

@@ -48,20 +48,21 @@ def shown(path: Path | None) -> str:
     return "-" if path is None else shown_path(path)
 
 
-def run_notes(res: RunResult) -> list[str]:
-    """Extra lines worth a user's attention (unmatched denominator keys)."""
+def run_warnings(res: RunResult) -> list[str]:
+    """Warning lines (for stderr) worth a user's attention: unmatched denominator keys."""
     f = res.fit
     out = []
     rep = f.record.denominators if f.record is not None else None
     if rep and f.recipe.normalize and f.recipe.normalize.rate_measures:
+        name = f.recipe.name
         if rep["rows_without_denominator"]:
-            out.append(f"  {rep['rows_without_denominator']:,} rows have no usable denominator "
-                       "(rate left empty)")
+            out.append(f"warning: {name}: {rep['rows_without_denominator']:,} rows have no "
+                       "usable denominator (rate left empty)")
         if rep["data_only_keys"]:
-            out.append(f"  keys in the data but not in the denominators: "
+            out.append(f"warning: {name}: keys in the data but not in the denominators: "
                        f"{_few(rep['data_only_keys'])}")
         if rep["denominator_only_keys"]:
-            out.append(f"  keys in the denominators but not in the data: "
+            out.append(f"warning: {name}: keys in the denominators but not in the data: "
                        f"{_few(rep['denominator_only_keys'])}")
     return out
 
@@ -80,6 +81,9 @@ def run_json(res: RunResult) -> dict[str, Any]:
             "elements": c.elements, "bytes": {"raw": c.raw, "gzip": c.gzip,
                                               "brotli": c.brotli},
             "over_budget": res.over_budget, "accounting": f.accounting,
+            **({"denominators": f.record.denominators}
+               if f.record is not None and f.record.denominators is not None
+               and f.recipe.normalize and f.recipe.normalize.rate_measures else {}),
             "manifest": res.manifest}
 
 

@@ -23,7 +23,9 @@ from typing import Any
 import polars as pl
 
 from reduce.errors import SourceError, did_you_mean, shown_path
+from reduce.keys import parse_coordinate_text, parse_time_text
 from reduce.recipe import Filter, Recipe
+from reduce.recipe import filter_instant as _instant
 
 _EXT = {".parquet": "parquet", ".pq": "parquet", ".csv": "csv", ".ndjson": "ndjson",
         ".jsonl": "ndjson"}
@@ -40,11 +42,17 @@ class OpenSource:
     frame: pl.LazyFrame  # needed columns only, recipe filters applied
     columns: tuple[str, ...] = ()
     filters: tuple[pl.Expr, ...] = ()
+    null_values: tuple[str, ...] = ()
+    text_columns: tuple[str, ...] = ()  # read as text, then converted by ``casts``
+    casts: tuple[pl.Expr, ...] = ()
 
     def rows_frame(self, offset: int, length: int) -> pl.LazyFrame:
         """Like ``frame``, over input rows ``offset`` to ``offset + length`` only (counted
         before filters, so consecutive ranges split the input without overlap)."""
-        lf = _scan(self.files, self.format, list(self.columns)).slice(offset, length)
+        lf = _scan(self.files, self.format, list(self.columns), null_values=self.null_values,
+                   text_columns=self.text_columns).slice(offset, length)
+        if self.casts:
+            lf = lf.with_columns(self.casts)
         for e in self.filters:
             lf = lf.filter(e)
         return lf
@@ -52,7 +60,8 @@ class OpenSource:
     def count_rows(self) -> int:
         """Rows before filters (parquet: read from file metadata, no data scan)."""
         try:
-            return int(_scan(self.files, self.format, None).select(pl.len()).collect().item())
+            return int(_scan(self.files, self.format, None, null_values=self.null_values)
+                       .select(pl.len()).collect().item())
         except pl.exceptions.PolarsError as e:
             raise SourceError(f"{_files_label(self.files)}: cannot read ({_first_line(e)})") \
                 from None
@@ -120,21 +129,72 @@ def _hive(files: list[Path] | tuple[Path, ...]) -> bool:
     return len(files) > 1 and any("=" in part for f in files for part in f.parent.parts[-3:])
 
 
-def _scan(files: list[Path] | tuple[Path, ...], fmt: str,
-          columns: list[str] | None) -> pl.LazyFrame:
+def _scan(files: list[Path] | tuple[Path, ...], fmt: str, columns: list[str] | None, *,
+          null_values: tuple[str, ...] = (), text_columns: tuple[str, ...] = ()
+          ) -> pl.LazyFrame:
+    """The files as a lazy frame. Text equal to one of the markers (see :func:`_markers`) is
+    null: CSV fields, quoted or not, and NDJSON strings (JSON has its own null too).
+    CSV ``text_columns`` are read as text (converted afterwards, see :func:`_text_casts`)."""
     srcs = [str(f) for f in files]
+    markers = _markers(null_values)
     if fmt == "parquet":
         lf = pl.scan_parquet(srcs, hive_partitioning=_hive(files))
     elif fmt == "csv":
         # Invalid UTF-8 in text becomes U+FFFD (the documented policy), never a crash.
         lf = pl.scan_csv(srcs, try_parse_dates=True, infer_schema_length=10000,
-                         encoding="utf8-lossy")
+                         encoding="utf8-lossy", null_values=markers,
+                         schema_overrides={c: pl.String for c in text_columns} or None)
     else:
         lf = pl.scan_ndjson(srcs, infer_schema_length=10000)
+        text = [c for c, d in lf.collect_schema().items()
+                if d == pl.String and (columns is None or c in columns)]
+        if text:
+            lf = lf.with_columns(pl.when(~pl.col(c).is_in(markers)).then(pl.col(c)).alias(c)
+                                 for c in text)
     return lf if columns is None else lf.select(columns)
 
 
-def _schema(files: list[Path], fmt: str, display: str) -> pl.Schema:
+def _markers(null_values: tuple[str, ...]) -> list[str]:
+    """Text read as missing: the empty string always, and ``source.null_values``."""
+    return list(dict.fromkeys(("", *null_values)))
+
+
+def _text_casts(recipe: Recipe, fmt: str, schema: pl.Schema, label: str,
+                files: list[Path], null_values: tuple[str, ...]
+                ) -> tuple[tuple[str, ...], tuple[pl.Expr, ...], pl.Schema]:
+    """CSV coordinates and times read as text and converted here, so that a value that
+    cannot be read (``n/a`` in a latitude, ``unknown`` in a time) makes its row invalid (by
+    reason, like an out-of-range value) instead of failing the scan or turning the whole
+    column into text. Returns the text columns, their conversions and the schema after."""
+    if fmt != "csv":
+        return (), (), schema
+    src = recipe.source
+    coords: list[str] = []
+    if recipe.needs_coordinates and src.lat and src.lon:
+        coords += [src.lat, src.lon]
+    if recipe.flow:
+        coords += [c for end in (recipe.flow.origin, recipe.flow.destination)
+                   for c in (end.lat, end.lon) if c]
+    coords = [c for c in dict.fromkeys(coords) if c in schema
+              and (schema[c] == pl.String or schema[c].is_numeric())]
+    casts = [parse_coordinate_text(c).alias(c) for c in coords]
+    fixed = dict(schema.items())
+    for c in coords:
+        fixed[c] = pl.Float64
+    text = list(coords)
+    t = src.time if recipe.time else None
+    if t and t in schema and (schema[t] == pl.String or isinstance(schema[t],
+                                                                   (pl.Datetime, pl.Date))):
+        raw = _scan(files, fmt, [t], null_values=null_values, text_columns=(t,))
+        e, dtype = parse_time_text(raw, t, label)
+        casts.append(e.alias(t))
+        fixed[t] = dtype
+        text.append(t)
+    return tuple(text), tuple(casts), pl.Schema(fixed)
+
+
+def _schema(files: list[Path], fmt: str, display: str,
+            null_values: tuple[str, ...] = ()) -> pl.Schema:
     """The common schema; every parquet file must agree (checked from metadata)."""
     try:
         if fmt == "parquet":
@@ -150,7 +210,7 @@ def _schema(files: list[Path], fmt: str, display: str) -> pl.Schema:
                         f"make every file of "
                         f"source.path {display!r} share one schema")
             return pl.Schema(_scan(files, fmt, None).collect_schema())
-        return pl.Schema(_scan(files, fmt, None).collect_schema())
+        return pl.Schema(_scan(files, fmt, None, null_values=null_values).collect_schema())
     except SourceError:
         raise
     except (pl.exceptions.PolarsError, OSError) as e:
@@ -190,7 +250,8 @@ def needed_columns(recipe: Recipe) -> list[str]:
     for c in (src.time if recipe.time else None, src.lat if geo else None,
               src.lon if geo else None,
               recipe.region.source if recipe.region else None, *recipe.category_sources,
-              *flow_cols, *(m.column for m in recipe.measures), *(f.column for f in src.filters)):
+              *flow_cols, *(m.column for m in recipe.measures), *(f.column for f in src.filters),
+              *(f.column for m in recipe.measures for f in m.where)):
         if c is not None and c not in cols:
             cols.append(c)
     return cols
@@ -268,29 +329,40 @@ def check_schema(recipe: Recipe, schema: pl.Schema, label: str) -> None:
             raise wrong(m.column, key, d, "numbers")
         if m.kind == "distinct" and d.is_nested():
             raise wrong(m.column, key, d, "plain values (not lists or structs)")
-    for f in src.filters:
+    for f in (*src.filters, *(f for m in recipe.measures for f in m.where)):
         d = need(f.column, f.key + ".column")
-        _filter_expr(f, d, src.naive_zone, label)  # type-checks the literal values
+        _try_filter(f, _filter_expr(f, d, src.naive_zone, label), schema, label)
 
 
-def _coerce_time(v: Any, dtype: pl.DataType, zone: str) -> Any:
-    if isinstance(v, dt.datetime) or isinstance(v, dt.date):
-        if isinstance(dtype, pl.Date):
-            return v.date() if isinstance(v, dt.datetime) else v
-        if not isinstance(v, dt.datetime):
-            v = dt.datetime(v.year, v.month, v.day)
-        import zoneinfo
+def where_mask(recipe: Recipe, where: tuple[Filter, ...], schema: pl.Schema,
+               label: str) -> pl.Expr:
+    """A measure's ``where``: true on rows every filter keeps (a null compares false, as in
+    source.filter)."""
+    return pl.all_horizontal([_filter_expr(f, schema[f.column], recipe.source.naive_zone,
+                                           label).fill_null(False) for f in where])
 
-        col_zone = getattr(dtype, "time_zone", None)
-        if col_zone and v.tzinfo is None:
-            v = v.replace(tzinfo=zoneinfo.ZoneInfo(zone))
-        elif not col_zone and v.tzinfo is not None:
-            v = v.astimezone(zoneinfo.ZoneInfo(zone)).replace(tzinfo=None)
-        return v
-    return v
+
+def _utc_instants(col: pl.Expr, dtype: pl.DataType, zone: str) -> pl.Expr:
+    """A date or datetime column as UTC instants (naive values read in ``zone``, as the
+    time key reads them; a date is its local midnight)."""
+    if isinstance(dtype, pl.Date):
+        col, dtype = col.cast(pl.Datetime("us")), pl.Datetime("us")
+    assert isinstance(dtype, pl.Datetime)
+    if dtype.time_zone is None:
+        col = col.dt.replace_time_zone(zone, ambiguous="earliest", non_existent="null")
+    return col.dt.convert_time_zone("UTC")
+
+
+def _utc_lit(v: dt.datetime, dtype: pl.DataType) -> pl.Expr:
+    unit = dtype.time_unit if isinstance(dtype, pl.Datetime) else "us"
+    return pl.lit(v, dtype=pl.Datetime(unit or "us")).dt.replace_time_zone("UTC")
 
 
 def _filter_expr(f: Filter, dtype: pl.DataType, zone: str, label: str) -> pl.Expr:
+    """The filter as an expression. Time literals are compared as instants in UTC, whatever
+    the column's zone (see :func:`reduce.recipe.filter_instant` for how each kind of literal
+    is read); a date ``max`` covers that whole day (up to, not including, the next local
+    midnight)."""
     col = pl.col(f.column)
     is_time_col = isinstance(dtype, (pl.Datetime, pl.Date))
 
@@ -303,12 +375,17 @@ def _filter_expr(f: Filter, dtype: pl.DataType, zone: str, label: str) -> pl.Exp
             or (isinstance(v, (dt.datetime, dt.date)) and is_time_col)
         )
         if not ok:
-            raise SourceError(f"{label}: {key}: value {v!r} cannot be compared with column "
+            shown = v.isoformat() if isinstance(v, (dt.datetime, dt.date)) else repr(v)
+            raise SourceError(f"{label}: {key}: value {shown} cannot be compared with column "
                               f"{f.column!r} of type {dtype}; use a value of the column's type")
-        return _coerce_time(v, dtype, zone) if is_time_col else v
+        return v
 
     if f.op in ("in", "not_in"):
         vals = [check(v, f"{f.key}.{f.op}") for v in f.values]
+        if is_time_col:
+            inst = _utc_instants(col, dtype, zone)
+            e = pl.any_horizontal([inst == _utc_lit(_instant(v, zone), dtype) for v in vals])
+            return e if f.op == "in" else ~e
         if dtype.is_numeric() and any(isinstance(v, float) for v in vals):
             col, vals = col.cast(pl.Float64), [float(v) for v in vals]
         c = col.cast(pl.String) if isinstance(dtype, (pl.Categorical, pl.Enum)) else col
@@ -319,14 +396,36 @@ def _filter_expr(f: Filter, dtype: pl.DataType, zone: str, label: str) -> pl.Exp
     if f.op == "not_null":
         return col.is_not_null()
     conds = []
-    if f.lo is not None:
-        conds.append(col >= check(f.lo, f"{f.key}.min"))
-    if f.hi is not None:
-        conds.append(col <= check(f.hi, f"{f.key}.max"))
+    lo = None if f.lo is None else check(f.lo, f"{f.key}.min")
+    hi = None if f.hi is None else check(f.hi, f"{f.key}.max")
+    if is_time_col:
+        inst = _utc_instants(col, dtype, zone)
+        if lo is not None:
+            conds.append(inst >= _utc_lit(_instant(lo, zone), dtype))
+        if hi is not None and not isinstance(hi, dt.datetime):  # a date: the whole day
+            conds.append(inst < _utc_lit(_instant(hi, zone, end_of_day=True), dtype))
+        elif hi is not None:
+            conds.append(inst <= _utc_lit(_instant(hi, zone), dtype))
+    else:
+        if lo is not None:
+            conds.append(col >= lo)
+        if hi is not None:
+            conds.append(col <= hi)
     e = conds[0]
     for c2 in conds[1:]:
         e = e & c2
     return e
+
+
+def _try_filter(f: Filter, expr: pl.Expr, schema: pl.Schema, label: str) -> None:
+    """Evaluate a filter on an empty frame of the source's schema, so that ``reduce check``
+    finds a literal the column cannot be compared with (not the scan, blaming the file)."""
+    try:
+        pl.DataFrame(schema=schema).lazy().filter(expr).collect()
+    except pl.exceptions.PolarsError as e:
+        raise SourceError(f"{label}: {f.key}: cannot compare column {f.column!r} "
+                          f"({schema[f.column]}) with the filter's values ({_first_line(e)}); "
+                          "use a value of the column's type") from None
 
 
 def open_source(recipe: Recipe) -> OpenSource:
@@ -334,10 +433,18 @@ def open_source(recipe: Recipe) -> OpenSource:
     src = recipe.source
     files, fmt = resolve_files(src.path, src.display, src.format)
     label = _files_label(files)
-    schema = _schema(files, fmt, src.display)
+    if src.null_values and fmt == "parquet":
+        raise SourceError(f"{label}: source.null_values applies to CSV and NDJSON text; "
+                          "parquet stores missing values as nulls, so remove the key")
+    schema = _schema(files, fmt, src.display, src.null_values)
+    text, casts, schema = _text_casts(recipe, fmt, schema, label, files, src.null_values)
+    if fmt == "csv":
+        _check_csv_numbers(recipe, schema, files, src.null_values)
     check_schema(recipe, schema, label)
     cols = needed_columns(recipe)
-    lf = _scan(files, fmt, cols)
+    lf = _scan(files, fmt, cols, null_values=src.null_values, text_columns=text)
+    if casts:
+        lf = lf.with_columns(casts)
     # in/not_in and ranges keep rows where the test is true; nulls in the column fail it.
     filters = tuple(_filter_expr(f, schema[f.column], src.naive_zone, label).fill_null(False)
                     for f in src.filters)
@@ -345,7 +452,51 @@ def open_source(recipe: Recipe) -> OpenSource:
         lf = lf.filter(e)
     return OpenSource(files=tuple(files), format=fmt, schema=schema,
                       fingerprint=fingerprint(files), frame=lf, columns=tuple(cols),
-                      filters=filters)
+                      filters=filters, null_values=src.null_values, text_columns=text,
+                      casts=casts)
+
+
+def _check_csv_numbers(recipe: Recipe, schema: pl.Schema, files: list[Path],
+                       null_values: tuple[str, ...]) -> None:
+    """A CSV measure column read as text because some value in it is not a number: name the
+    file, the first such value and its line (the column cannot be read at all)."""
+    for m in recipe.measures:
+        if m.kind not in ("sum", "min", "max", "mean") or m.column is None \
+                or schema.get(m.column) != pl.String:
+            continue
+        c = pl.col(m.column)
+        for f in files:
+            hit = (pl.scan_csv(str(f), infer_schema=False, encoding="utf8-lossy",
+                               null_values=_markers(null_values))
+                   .select(c).with_row_index("__line", offset=2)
+                   .filter(c.is_not_null() & c.str.strip_chars().cast(pl.Float64, strict=False)
+                           .is_null()).head(1).collect())
+            if hit.height:
+                line, value = hit.row(0)
+                raise SourceError(
+                    f"{shown_path(f)}: column {m.column!r} (from {recipe.file.name}: "
+                    f"measures.{m.name}) holds {value!r} at line {line:,}, which cannot be read "
+                    "as a number; fix that value, list it in source.null_values, or convert "
+                    "the column")
+
+
+def locate_value(src: OpenSource, column: str, value: str) -> tuple[Path, int] | None:
+    """The file and line (the header is line 1; a quoted field holding a line break makes
+    later lines one off) of the first CSV field of ``column`` holding ``value``: on the error
+    path only, to say where a value that cannot be read is."""
+    if src.format != "csv":
+        return None
+    for f in src.files:
+        try:
+            hit = (pl.scan_csv(str(f), infer_schema=False, encoding="utf8-lossy",
+                               null_values=_markers(src.null_values))
+                   .select(pl.col(column)).with_row_index("__line", offset=2)
+                   .filter(pl.col(column) == value).select("__line").head(1).collect())
+        except pl.exceptions.PolarsError:
+            continue
+        if hit.height:
+            return f, int(hit.item())
+    return None
 
 
 def source_size(files: tuple[Path, ...]) -> int:

@@ -42,69 +42,19 @@ def write_events(folder: Path, df: pl.DataFrame | None = None, name: str = "even
 
 
 def write_population(folder: Path, rows: dict[str, int] | None = None) -> Path:
-    rows = rows if rows is not None else {"AAA": 120000, "BBB": 45000, "CCC": 300000,
-                                          "DDD": 80000}
+    """``pop.csv`` in ``folder``: ``rows``, else fixtures/population.csv."""
     path = folder / "pop.csv"
-    pl.DataFrame({"prov": list(rows), "pop": list(rows.values())}).write_csv(path)
+    if rows is None:
+        path.write_bytes((FIXTURES / "population.csv").read_bytes())
+    else:
+        pl.DataFrame({"prov": list(rows), "pop": list(rows.values())}).write_csv(path)
     return path
 
 
-HEX_RECIPE = """
-name = "hexmap"
-
-[source]
-path = "events.parquet"
-time = "ts"
-lat = "lat"
-lon = "lon"
-
-[group]
-hex = { levels = [8, 7, 6, 5] }
-time = { levels = ["1h", "1d", "1w"], zone = "UTC" }
-category = { column = "kind" }
-
-[measures]
-reports = "count"
-observers = { distinct = "who" }
-severity = { mean = "sev" }
-
-[prune]
-top = { k = [4, 2, 1], by = "reports" }
-
-[budget]
-max = "40KB"
-on = "gzip"
-order = ["top", "time", "hex"]
-
-[output]
-path = "out/hexmap.json"
-"""
-
-REGION_RECIPE = """
-name = "regions"
-
-[source]
-path = "events.parquet"
-
-[group]
-region = { column = "prov" }
-category = { column = "kind" }
-
-[measures]
-reports = "count"
-observers = { distinct = "who" }
-
-[normalize]
-denominators = { path = "pop.csv", key = "prov", value = "pop" }
-per = 100000
-measures = ["reports"]
-
-[prune]
-top = { k = 3, by = "reports", within = ["region"] }
-
-[output]
-path = "out/regions.json"
-"""
+# Static inputs live in the tracked fixtures/ folder (see fixtures/README.md).
+FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
+HEX_RECIPE = (FIXTURES / "recipes" / "hexmap.toml").read_text(encoding="utf-8")
+REGION_RECIPE = (FIXTURES / "recipes" / "regions.toml").read_text(encoding="utf-8")
 
 
 def write_recipe(folder: Path, text: str, name: str = "recipe.toml") -> Path:

@@ -608,7 +608,7 @@ on = "gzip"
 max = "1KB"
 """,
     )
-    report = audit_paths([tmp_path / "data", other], budgets_file=budgets, budget=50)
+    report = audit_paths([tmp_path / "data", other], budgets_file=budgets)
     by_name = {Path(f.path).name: f for f in report.files}
     s, b, o = by_name["small.json"].budget, by_name["big.json"].budget, by_name["other.txt"].budget
     assert s is not None and (s.on, s.limit, s.over) == ("raw", 10_000, False)
@@ -617,13 +617,19 @@ max = "1KB"
     big_gzip = len(gzip.compress(big.read_bytes(), 9, mtime=0))  # stdlib gzip, RFC 1952
     assert big_gzip > 1000  # precondition: the second rule must be exceeded
     assert b is not None and (b.on, b.limit, b.size, b.over) == ("gzip", 1000, big_gzip, True)
-    # No rule matches other.txt: the plain --budget applies.
-    assert o is not None and (o.limit, o.on, o.source, o.over) == (50, "gzip", "--budget", True)
+    assert o is None  # no rule matches other.txt, and no --budget
     assert report.total is not None
     assert report.total.size == sum(f.gzip for f in report.files)
     assert report.total.source == f"{budgets} [total]"
     assert report.total.over
-    assert [p for p, _ in report.findings] == [str(big), str(other), "total"]
+    assert [p for p, _ in report.findings] == [str(big), "total"]
+    # The command line wins over the file, for every file and for the total alike.
+    both = audit_paths([tmp_path / "data", other], budgets_file=budgets, budget=50,
+                       total="1MB")
+    assert {(f.budget.limit, f.budget.on, f.budget.source) for f in both.files
+            if f.budget} == {(50, "gzip", "--budget")}
+    assert both.total is not None and (both.total.limit, both.total.source) == (
+        1_000_000, "--total")
 
 
 def test_glob_is_also_matched_against_the_given_path(tmp_path: Path) -> None:
@@ -749,9 +755,9 @@ def test_advice_rejects_bad_counts() -> None:
             advice(bad)  # type: ignore[arg-type]
 
 
-def test_transfer_estimate_on_slow_3g() -> None:
-    # 400 kbit/s: 50,000 bytes = 400,000 bits = 1 s.
-    assert transfer_seconds(50_000) == pytest.approx(1.0)
+def test_transfer_estimate_on_the_assumed_slow_link() -> None:
+    # 1 Mbit/s: 125,000 bytes = 1,000,000 bits = 1 s.
+    assert transfer_seconds(125_000) == pytest.approx(1.0)
     assert transfer_seconds(0) == 0.0
 
 
@@ -767,7 +773,7 @@ def test_render_table(tmp_path: Path) -> None:
     text = render_table(report)
     assert f"{tmp_path / 'x.json'}  [reduce.columns/1]" in text
     assert "elements 3 cells -> SVG/DOM" in text
-    assert "slow 3G, 400 kbit/s assumed" in text
+    assert "a slow link of 1 Mbit/s assumed" in text
     assert "rule of thumb (common practice)" in text
     assert "PROBLEM    column 'count' has 2 values, expected rows = 3" in text
     assert f"{len(report.findings)} problem(s)" in text
@@ -801,7 +807,8 @@ def test_report_json_stable_and_complete(tmp_path: Path) -> None:
         "findings",
     ]
     assert doc["format"] == "reduce.audit/1" and doc["ok"] is False
-    assert doc["assumptions"]["transfer"]["bits_per_second"] == 400_000
+    assert doc["assumptions"]["transfer"] == {"name": "slow link", "bits_per_second": 1_000_000,
+                                              "on": "gzip"}
     first = doc["files"][0]
     assert list(first) == [
         "path",
@@ -871,3 +878,9 @@ def test_sibling_manifest_belongs_to_its_own_payload(tmp_path: Path) -> None:
     problems = audit_one(csv_file).problems
     assert "manifest x.manifest.json key 'rows': 3, but the payload has 1 rows" in problems
     assert any(p.startswith("manifest x.manifest.json key 'sha256'") for p in problems)
+
+
+def test_brotli_auto_limit_is_the_one_run_uses() -> None:
+    from reduce import sizes
+
+    assert audit_module.BROTLI_AUTO_MAX_BYTES == sizes.BROTLI_AUTO_MAX

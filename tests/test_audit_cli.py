@@ -305,3 +305,48 @@ def test_quiet_clean_prints_nothing(tmp_path: Path) -> None:
     path = builders.write_payload(tmp_path / "x.json")
     result = run(path, "--quiet")
     assert (result.exit_code, result.stdout, result.stderr) == (0, "", "")
+
+
+def test_budgets_glob_matching_no_file_is_exit_2(tmp_path: Path) -> None:
+    small, big, budgets = _site(tmp_path)
+    budgets.write_text('[[file]]\nglob = "data/*.json"\nmax = "1MB"\n\n'
+                       '[[file]]\nglob = "public/*.json"\nmax = "1KB"\n')
+    result = run(small, big, "--budgets", budgets)
+    assert result.exit_code == 2
+    assert stderr_lines(result) == [
+        f"error: {budgets} [[file]] #2 glob 'public/*.json' matches none of the 2 audited "
+        "files; fix the glob (relative to the budgets file's folder) or remove the rule"]
+
+
+def test_bytes_per_field_are_shown_on_the_budget_measure(tmp_path: Path) -> None:
+    """A field's gzip bytes are the gzip size it adds: the payload compressed with it minus
+    without it (Python's gzip module at level 9, RFC 1952)."""
+    import json
+
+    rows = [{"same": "constant text", "noise": f"{i * 7919 % 10007:05d}"} for i in range(2000)]
+    path = builders.write_bytes(tmp_path / "rows.json", builders.dump(rows))
+    result = run(path, "--budget", "1MB", "--on", "gzip", "--json")
+    assert result.exit_code == 0, result.stderr
+    fields = {f["name"]: f for f in json.loads(result.stdout)["files"][0]["fields"]}
+
+    def gz(doc: object) -> int:
+        import orjson
+
+        return len(gzip.compress(orjson.dumps(doc), 9, mtime=0))
+
+    whole = gz(rows)
+    for name, other in (("same", "noise"), ("noise", "same")):
+        want = whole - gz([{other: r[other]} for r in rows])
+        assert fields[name]["measured"] == {"on": "gzip", "bytes": want}
+    # the raw bytes of the two fields are alike; compressed, the varying one costs far more
+    assert fields["noise"]["measured"]["bytes"] > 5 * fields["same"]["measured"]["bytes"]
+    table = run(path, "--budget", "1MB", "--on", "gzip")
+    assert "gzip bytes" in table.stdout
+
+
+def test_command_line_budget_wins_over_the_budgets_file(tmp_path: Path) -> None:
+    small, big, budgets = _site(tmp_path)
+    budgets.write_text('[[file]]\nglob = "data/*.json"\nmax = "1KB"\n[total]\nmax = 10\n')
+    result = run(small, big, "--budgets", budgets, "--budget", "1MB", "--total", "1MB")
+    assert result.exit_code == 0, result.stderr  # the file's 1 KB and 10 B are not used
+    assert "[--budget]" in result.stdout and "[--total]" in result.stdout

@@ -21,7 +21,6 @@ from __future__ import annotations
 import datetime as dt
 import json
 import os
-import textwrap
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
@@ -32,44 +31,10 @@ import pytest
 from click.testing import CliRunner
 
 from reduce.cli import main
-from tests._builders import events
+from tests._builders import FIXTURES, events
 
-GOOD = textwrap.dedent("""\
-    name = "base"
-
-    [source]
-    path = "events.parquet"
-    time = "ts"
-    lat = "lat"
-    lon = "lon"
-
-    [group]
-    time = { levels = ["1d", "1w"], zone = "UTC" }
-    region = { column = "prov" }
-    category = { column = "kind" }
-
-    [measures]
-    reports = "count"
-    observers = { distinct = "who" }
-    severity = { mean = "sev" }
-
-    [normalize]
-    denominators = { path = "pop.csv", key = "prov", value = "pop" }
-    per = 100000
-    measures = ["reports"]
-
-    [prune]
-    top = { k = [3, 2], by = "reports" }
-
-    [budget]
-    max = "1MB"
-    on = "gzip"
-
-    [output]
-    path = "out/base.json"
-    """)
-
-POPULATION = "prov,pop\nAAA,120000\nBBB,45000\nCCC,300000\nDDD,80000\n"
+GOOD = (FIXTURES / "recipes" / "base.toml").read_text(encoding="utf-8")
+POPULATION = (FIXTURES / "population.csv").read_text(encoding="utf-8")
 CACHE = "cache"
 
 
@@ -297,8 +262,8 @@ CASES = [
     # A zone name that is a folder of the time-zone database (a continent) is refused like
     # any other unknown zone, not left to zoneinfo's IsADirectoryError (exit 3).
     Bad("time-zone-naming-a-continent", edits=(('zone = "UTC"', 'zone = "America"'),),
-        expected="error: bad.toml: group.time.zone: unknown time zone 'America' (did you mean "
-                 "'America/Nuuk'?); use an IANA name such as UTC or Europe/Paris"),
+        expected="error: bad.toml: group.time.zone: unknown time zone 'America'; use an "
+                 "IANA name such as UTC or Europe/Paris"),
     Bad("top-k-zero", edits=(("k = [3, 2]", "k = [3, 0]"),),
         expected="error: bad.toml: prune.top.k: 0 is out of range; use >= 1"),
     Bad("top-k-negative", edits=(("k = [3, 2]", "k = -1"),),
@@ -424,16 +389,16 @@ CASES = [
                  "share one schema"),
     Bad("csv-text-in-a-measure-column", edits=(SOURCE_CSV,),
         prepare=csv_with_text_in_measure(3000, 2900),
-        expected="error: events.csv: column 'sev' (from bad.toml: measures.severity) is "
-                 "String, but measures.severity needs numbers; convert the column or pick "
-                 "another"),
+        expected="error: events.csv: column 'sev' (from bad.toml: measures.severity) holds "
+                 "'12x' at line 2,902, which cannot be read as a number; fix that value, list "
+                 "it in source.null_values, or convert the column"),
     # Beyond the rows used to infer the column types, "12x" fails the scan: the message must
     # name the value and the recipe key, not "cannot compute the keys".
     Bad("csv-text-in-a-measure-column-far-down", edits=(SOURCE_CSV,),
         prepare=csv_with_text_in_measure(12000, 11000),
         expected="error: events.csv: column 'sev' (from bad.toml: measures.severity) holds "
-                 "'12x', which cannot be read as i64 like the rows before it; fix that value "
-                 "or convert the column"),
+                 "'12x' at line 11,002, which cannot be read as i64 like the rows before it; "
+                 "fix that value, list it in source.null_values, or convert the column"),
     Bad("coordinates-stored-as-text", edits=hex_group(),
         prepare=parquet_events(lambda df: df.with_columns(pl.col("lat").cast(pl.String))),
         expected="error: events.parquet: column 'lat' (from bad.toml: source.lat) is String, "
@@ -599,7 +564,8 @@ def test_zero_denominator_gives_null_rate_and_is_counted(tmp_path: Path) -> None
     assert aaa and all(r is None for r in aaa)
     assert all(r is not None for p, r in zip(prov, rates) if p != "AAA")
     assert manifest["denominators"]["rows_without_denominator"] == len(aaa)
-    assert f"  {len(aaa):,} rows have no usable denominator (rate left empty)" in out.splitlines()
+    assert (f"warning: base: {len(aaa):,} rows have no usable denominator (rate left empty)"
+            in err.splitlines())
 
 
 def test_mean_of_large_integers_does_not_wrap_around(tmp_path: Path) -> None:

@@ -203,3 +203,108 @@ def test_python_dash_m_runs_the_cli() -> None:
                          text=True, check=False)
     assert res.returncode == 0
     assert res.stdout.startswith("reduce, version ")
+
+
+@pytest.mark.parametrize("mode", [[], ["--quiet"], ["--json"]])
+def test_write_anyway_exits_1_in_every_output_mode(tmp_path: Path, mode: list[str]) -> None:
+    recipe = project(tmp_path)
+    code, out, err = invoke("run", str(recipe), "--budget", "300B", "--write-anyway", *mode)
+    assert code == 1
+    assert one_error_line(err).startswith(
+        "error: recipe.toml: no level fits the budget of 300 B gzip: the smallest payload is ")
+    assert (tmp_path / "out" / "hexmap.json").is_file()
+    if mode == ["--json"]:
+        assert json.loads(out)[0]["over_budget"] is True
+
+
+def test_denominators_matching_no_key_is_exit_2_with_samples(tmp_path: Path) -> None:
+    recipe = project(tmp_path, REGION_RECIPE)
+    from tests._builders import write_population
+
+    write_population(tmp_path, {"aaa": 1000, "bbb": 2000, "ccc": 3000, "ddd": 4000, "eee": 1})
+    code, out, err = invoke("run", str(recipe), "--quiet")
+    assert code == 2
+    assert one_error_line(err) == (
+        "error: pop.csv (normalize.denominators): none of its 5 keys in column 'prov' matches "
+        "the 4 prov keys in the data (data: 'AAA', 'BBB', 'CCC' ...; table: 'aaa', 'bbb', "
+        "'ccc' ...); make the table's keys match the data's")
+    assert not (tmp_path / "out").exists()
+
+
+def test_partly_matching_denominators_warn_on_stderr_even_quiet_and_in_json(
+        tmp_path: Path) -> None:
+    recipe = project(tmp_path, REGION_RECIPE)
+    from tests._builders import write_population
+
+    write_population(tmp_path, {"AAA": 1000, "BBB": 2000, "CCC": 3000, "ZZZ": 5})
+    code, out, err = invoke("run", str(recipe), "--quiet")
+    assert code == 0, err
+    assert out == ""
+    lines = err.strip().splitlines()
+    assert "warning: regions: keys in the data but not in the denominators: DDD" in lines
+    assert "warning: regions: keys in the denominators but not in the data: ZZZ" in lines
+    manifest = json.loads((tmp_path / "out" / "regions.manifest.json").read_bytes())
+    assert manifest["denominators"]["data_only_keys"] == ["DDD"]
+    assert manifest["denominators"]["denominator_only_keys"] == ["ZZZ"]
+    code, out, err = invoke("run", str(recipe), "--json")
+    assert code == 0, err
+    doc = json.loads(out)[0]
+    assert doc["denominators"]["data_only_keys"] == ["DDD"]
+    assert doc["denominators"]["denominator_only_keys"] == ["ZZZ"]
+    assert doc["denominators"]["rows_without_denominator"] > 0
+
+
+def test_layout_that_does_not_match_the_output_file_name_is_exit_2_before_the_scan(
+        tmp_path: Path) -> None:
+    recipe = project(tmp_path)
+    (tmp_path / "events.parquet").unlink()  # the scan would fail differently
+    code, _, err = invoke("run", str(recipe), "--set", "output.layout=csv")
+    assert code == 2
+    assert one_error_line(err) == (
+        "error: recipe.toml: output.path: 'out/hexmap.json' ends in .json, but output.layout "
+        "'csv' writes .csv files; name the file hexmap.csv or change output.layout")
+    code, _, err = invoke("run", str(recipe), "--set", "output.layout=csv",
+                          "--set", "output.path=out/hexmap.csv", "--quiet")
+    assert code == 2
+    assert "events.parquet" in one_error_line(err)  # past the recipe: the missing source
+
+
+def test_check_lists_every_problem_of_every_recipe(tmp_path: Path) -> None:
+    good = project(tmp_path)
+    bad_key = write_recipe(tmp_path, HEX_RECIPE.replace("[budget]", "[budget]\nmaxx = 3"),
+                           name="bad1.toml")
+    bad_col = write_recipe(tmp_path, HEX_RECIPE.replace('distinct = "who"', 'distinct = "whom"'),
+                           name="bad2.toml")
+    code, out, err = invoke("check", str(bad_key), str(good), str(bad_col))
+    assert code == 2
+    assert out.splitlines() == [f"{good}: ok (hexmap: 1 source file, columns ts, lat, lon, "
+                                "kind, who, sev)"]
+    assert err.splitlines() == [
+        "error: bad1.toml: budget.maxx: unknown key (did you mean 'max'?); allowed here: max, "
+        "on, order",
+        "error: events.parquet: column 'whom' (from bad2.toml: measures.observers) is not in "
+        "the source (did you mean 'who'?); columns are: ts, lat, lon, kind, prov, sev, conf, "
+        "who"]
+
+
+def test_run_publishes_nothing_when_any_recipe_is_bad(tmp_path: Path) -> None:
+    good = project(tmp_path)
+    bad = write_recipe(tmp_path, HEX_RECIPE.replace('distinct = "who"', 'distinct = "whom"')
+                       .replace("out/hexmap.json", "out/other.json"), name="bad.toml")
+    code, out, err = invoke("run", str(good), str(bad))
+    assert code == 2
+    assert one_error_line(err).startswith("error: events.parquet: column 'whom' (from "
+                                          "bad.toml: measures.observers)")
+    assert not (tmp_path / "out").exists()
+
+
+def test_run_refuses_two_recipes_writing_one_file(tmp_path: Path) -> None:
+    first = project(tmp_path)
+    second = write_recipe(tmp_path, HEX_RECIPE.replace('name = "hexmap"', 'name = "again"'),
+                          name="second.toml")
+    code, out, err = invoke("run", str(first), str(second))
+    assert code == 2
+    assert one_error_line(err) == (
+        "error: second.toml: output.path: writes out/hexmap.json, like recipe.toml; give each "
+        "recipe its own output file")
+    assert not (tmp_path / "out").exists()

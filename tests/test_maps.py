@@ -12,18 +12,14 @@ import shapely
 
 import reduce
 from reduce.geojson import ring_area
-from tests._builders import write_recipe
+from tests._builders import FIXTURES, write_recipe
 
 
 def _squares(folder: Path) -> Path:
-    """Four unit squares tiling [0, 2] x [0, 2] degrees, ids A..D (A bottom-left)."""
-    feats = []
-    for rid, (x, y) in {"A": (0, 0), "B": (1, 0), "C": (0, 1), "D": (1, 1)}.items():
-        ring = [[x, y], [x + 1, y], [x + 1, y + 1], [x, y + 1], [x, y]]
-        feats.append({"type": "Feature", "properties": {"code": rid},
-                      "geometry": {"type": "Polygon", "coordinates": [ring]}})
+    """Four unit squares tiling [0, 2] x [0, 2] degrees, ids A..D (A bottom-left):
+    fixtures/squares.geojson."""
     path = folder / "squares.geojson"
-    path.write_text(json.dumps({"type": "FeatureCollection", "features": feats}))
+    path.write_bytes((FIXTURES / "squares.geojson").read_bytes())
     return path
 
 
@@ -215,3 +211,35 @@ def test_simplification_is_a_ladder_axis_under_the_budget(tmp_path: Path) -> Non
     fit = reduce.fit(recipe, budget=budget)
     assert fit.level is not None and fit.level["simplify"] == 0.002
     assert fit.chosen is not None and fit.chosen.gzip is not None and fit.chosen.gzip <= budget
+
+
+def test_flows_split_by_a_category_match_duckdb(tmp_path: Path) -> None:
+    """Outside source: DuckDB GROUP BY over (origin, destination, kind) gives the counts."""
+    import duckdb
+
+    df = _points(tmp_path)
+    recipe = write_recipe(tmp_path, FLOWS.format(k=1000).replace(
+        'destination = "to_town" }', 'destination = "to_town" }\ncategory = { column = "kind" }'))
+    res = reduce.run(recipe)
+    doc = json.loads(res.path.read_bytes())  # type: ignore[union-attr]
+    cols, dicts = doc["columns"], doc.get("dictionaries", {})
+
+    def values(name: str) -> list[str]:
+        return [dicts[name][i] for i in cols[name]] if name in dicts else cols[name]
+
+    got = dict(zip(zip(values("origin"), values("destination"), values("kind")), cols["n"]))
+    con = duckdb.connect()
+    con.register("ev", df.to_arrow())
+    want = {(o, d, k): n for o, d, k, n in con.execute(
+        "SELECT from_town, to_town, kind, count(*) FROM ev GROUP BY ALL").fetchall()}
+    assert got == want
+    assert list(cols)[:3] == ["origin", "destination", "kind"]
+
+
+def test_flow_category_named_like_a_flow_end_is_refused(tmp_path: Path) -> None:
+    _points(tmp_path)
+    recipe = write_recipe(tmp_path, FLOWS.format(k=3).replace(
+        'destination = "to_town" }', 'destination = "to_town" }\n'
+        'category = { column = "origin" }'))
+    with pytest.raises(reduce.RecipeError, match="column 'origin' has the name of another key"):
+        reduce.load_recipe(recipe)

@@ -176,3 +176,43 @@ def test_time_bin_that_does_not_divide_its_unit_is_refused() -> None:
 ])
 def test_time_bin_nesting(coarse: str, fine: str, expected: bool) -> None:
     assert parse_time_bin(coarse).nests(parse_time_bin(fine)) is expected
+
+
+def _year_of_offsets(zone: str) -> list[float]:
+    """UTC offsets at noon UTC of each day of 2025 (IANA tz database via zoneinfo)."""
+    import datetime as dt
+    from zoneinfo import ZoneInfo
+
+    start = dt.datetime(2025, 1, 1, 12, tzinfo=dt.UTC)
+    return [(start + dt.timedelta(days=i)).astimezone(ZoneInfo(zone)).utcoffset()
+            .total_seconds() for i in range(365)]  # type: ignore[union-attr]
+
+
+@pytest.mark.parametrize("given, meant, hint", [
+    ("PST", ["America/Los_Angeles", "Asia/Manila"], "'America/Tijuana' or 'Asia/Manila'"),
+    ("UTC-8", ["Etc/GMT+8"], "'Etc/GMT+8'"),
+    ("UTC+5:30", ["Asia/Kolkata"], "'Asia/Kolkata'"),
+    ("Europe/Pari", ["Europe/Paris"], "'Europe/Paris'"),
+])
+def test_zone_hints_name_only_zones_on_the_same_clock(tmp_path: Path, given: str,
+                                                      meant: list[str], hint: str) -> None:
+    from click.testing import CliRunner
+
+    from reduce.cli import main
+
+    recipe = write_recipe(tmp_path, HEX_RECIPE.replace('zone = "UTC"', f'zone = "{given}"'))
+    res = CliRunner().invoke(main, ["check", str(recipe)])
+    assert res.exit_code == 2
+    assert res.stderr.strip().endswith(
+        f"group.time.zone: unknown time zone {given!r} (did you mean {hint}?); use an IANA "
+        "name such as UTC or Europe/Paris")
+    named = [h.strip("'") for h in hint.split(" or ")]
+    # each hint keeps the clock of the zone meant: same offsets every day (zoneinfo)
+    assert [_year_of_offsets(n) for n in named] == [_year_of_offsets(m) for m in meant]
+
+
+def test_zone_hint_never_suggests_a_different_clock(tmp_path: Path) -> None:
+    from reduce.recipe import zone_hint
+
+    assert "MST" not in zone_hint("PST") and zone_hint("UTC-8") != " (did you mean 'UTC'?)"
+    assert zone_hint("Nowhere") == ""
