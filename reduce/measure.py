@@ -261,16 +261,19 @@ class Measurer(LevelTables):
         super().forget(level)
 
     def estimate(self, level: Mapping[str, Any], on: Measure, per_row: float,
-                 limit: int) -> bsearch.Candidate:
+                 limit: int, *, rows: int | None = None) -> bsearch.Candidate:
         """A candidate judged from its row count alone (see :meth:`row_count`): ``per_row``
         bytes (the least seen on measured levels) times its rows; used only to skip levels
-        far over the budget."""
-        rows = self.row_count(level)
-        c = bsearch.Candidate(level=Level.of(level), rows=rows, elements=rows, raw=None)
+        far over the budget. ``rows``: a lower bound of its rows known without counting (the
+        rows of a coarser level), used instead of counting."""
+        n = self.row_count(level) if rows is None else rows
+        c = bsearch.Candidate(level=Level.of(level), rows=n, elements=n, raw=None)
         c.fits = False
         c.estimated = True
-        c.guess = int(per_row * rows)
-        c.note = f"~{int(per_row * rows):,} {on} bytes estimated from rows: over {limit:,}"
+        c.guess = int(per_row * n)
+        at_least = "" if rows is None else "at least "
+        c.note = (f"~{at_least}{int(per_row * n):,} {on} bytes estimated from rows: over "
+                  f"{limit:,}")
         return c
 
 

@@ -120,6 +120,18 @@ def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
     # measuring exactly (reduce ladder) and never for the chosen level.
     margin = 1.5
     use_estimates = not exact and b is not None
+    # Rows grow as any axis gets finer (a group with n categories keeps min(n, k) + [n > k]
+    # rows; finer cells and bins split groups), so a level counted before bounds from below
+    # every level at least as fine on every axis: such a level far over the budget by that
+    # bound alone is not counted at all. (Exact hex cells do not nest, so a finer level can
+    # in rare cases hold a few rows fewer; the bound only steers, with the 1.5 margin.)
+    position = {a: {v: i for i, v in enumerate(lv)} for a, lv in ladder_axes.items()}
+    counted: list[tuple[Level, int]] = []
+
+    def rows_at_least(level: Level) -> int:
+        return max((n for lv, n in counted
+                    if all(position[a][lv[a]] >= position[a][level[a]] for a in axes)),
+                   default=0)
 
     def evaluate(level: Mapping[str, Any], *, force_exact: bool = False
                  ) -> bsearch.Candidate:
@@ -134,8 +146,14 @@ def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
             per_row = [x.floor / x.rows for x in cands.values()
                        if not x.estimated and x.rows and x.floor is not None]
             if per_row:
+                bound = rows_at_least(level)
+                if bound * min(per_row) > margin * b.max:
+                    c = red.estimate(level, b.on, min(per_row), b.max, rows=bound)
+                    cands[k] = c
+                    return c
                 red.progress(f"counting rows of {bsearch.describe_level(level)}")
                 rows = red.row_count(level)
+                counted.append((level, rows))
                 if rows * min(per_row) > margin * b.max:  # type: ignore[operator]
                     c = red.estimate(level, b.on, min(per_row), b.max)  # type: ignore[type-var]
                     cands[k] = c
@@ -145,6 +163,7 @@ def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
         c = red.candidate(level, exact=exact or force_exact,
                           on=b.on if b else None, limit=b.max if b else None)
         cands[k] = c
+        counted.append((level, c.rows))
         if c.fits is False and not every_level:
             red.forget(level)  # bounded memory: over-budget levels are never published
         return c
