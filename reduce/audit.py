@@ -1215,10 +1215,20 @@ def _arrow_element_kind(names: Sequence[str], hex_found: bool, rows: int) -> str
 # --------------------------------------------------------------------------------------------
 
 
+def _manifest_of(path: Path) -> Path:
+    """The manifest beside a payload: ``x.json.manifest.json`` (see reduce.publish); a
+    manifest of the older name ``x.manifest.json`` is read when only that one exists."""
+    current = path.with_name(path.name + MANIFEST_SUFFIX)
+    legacy = path.with_name(path.stem + MANIFEST_SUFFIX)
+    if not current.exists() and legacy.exists():
+        return legacy
+    return current
+
+
 def _check_manifest(
     path: Path, data: bytes, out: _Findings, gzip_size: int, brotli_size: int | None
 ) -> None:
-    manifest_path = path.with_name(path.stem + MANIFEST_SUFFIX)
+    manifest_path = _manifest_of(path)
     name = manifest_path.name
     if not manifest_path.exists():
         if out.kind == "columns":
