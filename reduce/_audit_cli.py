@@ -90,6 +90,9 @@ def audit(
             click.echo(render_markdown(report), nl=False)
         else:
             click.echo(render_table(report), nl=False)
+    for commit in report.commits:
+        if commit.completed:  # said in one line; an uncompleted one is a finding below
+            click.echo(f"{commit.journal}: {commit.message}", err=True)
     for path, message in report.findings:
         click.echo(f"{path}: {message}", err=True)
     if not report.ok:

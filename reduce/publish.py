@@ -218,20 +218,18 @@ def _holder(fd: int) -> str:
 
 def _open_lock(folder: Path, *, write: bool) -> int | None:
     """The lock file's descriptor (made if absent when ``write``), or None for a reader of a
-    folder where no lock file can exist (read-only, never published into)."""
+    folder without a lock file (never published into by this version: nothing to wait for).
+    A reader never creates a file in the folder it reads."""
     path = folder / LOCK_NAME
-    flags = os.O_NOFOLLOW | os.O_CLOEXEC
+    flags = os.O_NOFOLLOW | os.O_CLOEXEC | (os.O_RDWR | os.O_CREAT if write else os.O_RDONLY)
     try:
-        return os.open(path, flags | os.O_RDWR | os.O_CREAT, 0o644)
+        return os.open(path, flags, 0o644)
     except OSError as e:
         if e.errno == errno.ELOOP:
             raise OutputError(f"{path}: is a link, not reduce's lock file; remove it") from None
         if write:
             raise OutputError(f"{folder}: cannot create the lock file {LOCK_NAME} "
                               f"({e.strerror}); fix the folder's permissions") from None
-    try:
-        return os.open(path, flags | os.O_RDONLY)
-    except OSError:
         return None
 
 

@@ -14,6 +14,7 @@ import hashlib
 import importlib.util
 import io
 import json
+import os
 import random
 from pathlib import Path
 from typing import Any
@@ -567,14 +568,15 @@ def test_missing_path_is_an_audit_error(tmp_path: Path) -> None:
 
 def test_unreadable_file_is_an_audit_error(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     path = write_payload(tmp_path / "x.json")
-    real = Path.read_bytes
+    real = os.open
 
-    def deny(self: Path) -> bytes:
-        if self.name == "x.json":
-            raise PermissionError(13, "Permission denied", str(self))
-        return real(self)
+    def deny(file: Any, flags: int, *args: Any, **kwargs: Any) -> int:
+        # Tests run as root here, so a chmod would not deny the read: refuse the open.
+        if Path(file).name == "x.json":
+            raise PermissionError(13, "Permission denied", str(file))
+        return real(file, flags, *args, **kwargs)
 
-    monkeypatch.setattr(Path, "read_bytes", deny)
+    monkeypatch.setattr(os, "open", deny)
     with pytest.raises(AuditError) as info:
         audit_paths([path])
     assert info.value.message == f"{path}: cannot read (Permission denied)"
@@ -799,6 +801,7 @@ def test_report_json_stable_and_complete(tmp_path: Path) -> None:
         "total",
         "total_size",
         "findings",
+        "commits",
     ]
     assert doc["format"] == "reduce.audit/1" and doc["ok"] is False
     assert doc["assumptions"]["transfer"]["bits_per_second"] == 400_000
