@@ -67,6 +67,27 @@ def _sigterm_unwinds() -> Iterator[None]:
         signal.signal(signal.SIGTERM, previous)
 
 
+@contextlib.contextmanager
+def _cache_warnings_as_lines() -> Iterator[None]:
+    """A damaged cache entry (``reduce.cache.CacheWarning``) is one ``warning:`` line on
+    stderr, even with --quiet; other warnings keep Python's default handling."""
+    import warnings
+
+    with warnings.catch_warnings():
+        default = warnings.showwarning
+
+        def show(message: Warning | str, category: type[Warning], *args: Any,
+                 **kwargs: Any) -> None:
+            if category.__name__ == "CacheWarning":
+                click.echo(f"warning: {message}", err=True)
+            else:
+                default(message, category, *args, **kwargs)
+
+        warnings.showwarning = show
+        warnings.filterwarnings("always", message="cache entry ")
+        yield
+
+
 class _Group(click.Group):
     # Commands imported only when used, so `reduce run` does not pay for the audit's imports.
     _lazy = {"audit": ("reduce._audit_cli", "audit")}
@@ -83,7 +104,7 @@ class _Group(click.Group):
         return super().get_command(ctx, cmd_name)
 
     def invoke(self, ctx: click.Context) -> Any:
-        with _sigterm_unwinds():
+        with _sigterm_unwinds(), _cache_warnings_as_lines():
             return self._invoke(ctx)
 
     def _invoke(self, ctx: click.Context) -> Any:
