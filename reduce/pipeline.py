@@ -128,6 +128,7 @@ class Reducer:
 
                 p = aggregate.scan_partial(self.recipe, self.source, progress=self.progress,
                                            spill_dir=spill)
+                self.source.check_unchanged()  # replaced mid-scan: neither used nor cached
                 if self.use_cache:
                     p = cache.store(key, p, recipe=self.recipe.scan_hash) or p
             prune.check_rest_label(self.recipe, p.frame() if isinstance(p, Spilled) else p)
