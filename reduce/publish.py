@@ -142,6 +142,8 @@ def check_target(path: Path, *, create: bool = True) -> None:
     if not os.access(folder, os.W_OK | os.X_OK):
         raise OutputError(f"{folder}: the output folder is not writable; fix its permissions "
                           "or choose another --out")
+    for j in journals(folder):
+        _plan(j)  # a journal the commit would refuse fails the run now, not after the scan
     for p in (path, manifest_path(path)):
         if p.is_dir():
             raise OutputError(f"{p}: is a folder; choose another output path")
