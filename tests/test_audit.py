@@ -120,7 +120,8 @@ def test_brotli_deferred_above_threshold_unless_asked(
     f = audit_one(path)
     assert f.brotli is None and f.sizes is None
     assert "brotli not measured (file over 10 B; use --brotli)" in f.notes
-    assert "manifest x.json.manifest.json: bytes.brotli not verified (brotli not measured)" in f.notes
+    assert ("manifest x.json.manifest.json: bytes.brotli not verified (brotli not measured)"
+            in f.notes)
     assert "not measured (use --brotli)" in render_table(audit_paths([path]))
     expected = len(brotli.compress(data, quality=11))  # the brotli module, RFC 7932
     assert audit_one(path, brotli=True).brotli == expected
@@ -240,8 +241,8 @@ def test_wrong_manifest_checksum(tmp_path: Path) -> None:
     digest = hashlib.sha256(path.read_bytes()).hexdigest()  # hashlib SHA-256 (FIPS 180-4)
     assert audit_one(path).problems == (
         (
-            "manifest x.json.manifest.json key 'sha256': \"0000000000000000…\" does not match the "
-            f'payload\'s sha256 "{digest[:16]}…"'
+            "manifest x.json.manifest.json key 'sha256': \"0000000000000000…\" does not "
+            f'match the payload\'s sha256 "{digest[:16]}…"'
         ),
     )
 
@@ -258,16 +259,16 @@ def test_manifest_sizes_and_rows_checked(tmp_path: Path) -> None:
     )
     assert audit_one(path).problems == (
         (
-            f"manifest x.json.manifest.json key 'bytes.raw': {len(data) + 1}, but the file measures "
-            f"{len(data)}"
+            f"manifest x.json.manifest.json key 'bytes.raw': {len(data) + 1}, but the file "
+            f"measures {len(data)}"
         ),
         (
-            f"manifest x.json.manifest.json key 'bytes.gzip': {true_gzip + 2}, but the file measures "
-            f"{true_gzip}"
+            f"manifest x.json.manifest.json key 'bytes.gzip': {true_gzip + 2}, but the file "
+            f"measures {true_gzip}"
         ),
         (
-            f"manifest x.json.manifest.json key 'bytes.brotli': {true_brotli - 3}, but the file measures "
-            f"{true_brotli}"
+            f"manifest x.json.manifest.json key 'bytes.brotli': {true_brotli - 3}, but the "
+            f"file measures {true_brotli}"
         ),
         "manifest x.json.manifest.json key 'rows': 4, but the payload has 3 rows",
     )

@@ -93,8 +93,8 @@ def test_wrong_manifest_checksum_exit_1(tmp_path: Path) -> None:
     assert result.exit_code == 1
     assert stderr_lines(result) == [
         (
-            f"{path}: manifest x.json.manifest.json key 'sha256': \"abababababababab…\" does not match "
-            f'the payload\'s sha256 "{digest[:16]}…"'
+            f"{path}: manifest x.json.manifest.json key 'sha256': \"abababababababab…\" does "
+            f'not match the payload\'s sha256 "{digest[:16]}…"'
         )
     ]
 

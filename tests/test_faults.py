@@ -155,6 +155,7 @@ def test_sigterm_at_several_moments_leaves_no_debris_and_the_old_payload(
     start = time.monotonic()
     subprocess.run(cmd("60KB", True), env=env, capture_output=True, check=True)
     whole = time.monotonic() - start  # spreads the kills over a run; never asserted
+    fresh = pair(out, "spilly.json")  # what a whole --no-cache run publishes
     (out / "spilly.json").write_bytes(old[0])  # back to the first pair
     manifest_path(out / "spilly.json").write_bytes(json.dumps(old[1]).encode())
     rng = random.Random(12)
@@ -174,6 +175,7 @@ def test_sigterm_at_several_moments_leaves_no_debris_and_the_old_payload(
                 "error: terminated (SIGTERM); nothing was published by the unfinished step"]
         data, doc = pair(out, "spilly.json")
         assert doc["sha256"] == sha(data)
+        assert (data, doc) in (old, fresh)  # nothing published is ever wrong
         if proc.returncode == 143 and data != old[0]:
             # Only a signal after the payload's rename completes the new pair.
             assert doc != old[1]

@@ -109,16 +109,28 @@ def test_concurrent_runs_into_one_folder_never_mix_payload_and_manifest(
                               stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
              for b in budgets]
     checks = 0
+    seen: set[bytes] = set()
     while any(p.poll() is None for p in procs):
         if out.is_dir():
             data = check_pair(out, "hexmap.json")
             if data is not None:
+                seen.add(data)
                 checks += 1
         time.sleep(0.005)
     for p in procs:
         assert p.returncode == 0, p.stderr.read().decode() if p.stderr else ""
     final = check_pair(out, "hexmap.json")
     assert final is not None and checks >= 1
+    # Nothing published is ever wrong: every payload seen is what a fresh --no-cache run
+    # with one of the budgets publishes.
+    import reduce
+
+    fresh = set()
+    for i, b in enumerate(budgets):
+        res = reduce.run(recipe, out_dir=tmp_path / f"fresh{i}", budget=b, use_cache=False)
+        assert res.path is not None
+        fresh.add(res.path.read_bytes())
+    assert seen | {final} <= fresh
     assert not list(out.glob(".*.tmp")) and not list(out.glob(".*.reduce-commit"))
 
 
