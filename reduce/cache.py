@@ -28,6 +28,7 @@ Location: ``$REDUCE_CACHE_DIR`` if set, else ``$XDG_CACHE_HOME/reduce``, else
 from __future__ import annotations
 
 import contextlib
+import errno
 import fcntl
 import hashlib
 import io
@@ -36,6 +37,7 @@ import shutil
 import stat
 import warnings
 import weakref
+from collections.abc import Iterator
 from pathlib import Path
 
 import orjson
@@ -174,35 +176,57 @@ def write_file(entry_dir: Path, name: str, data: bytes) -> None:
         with contextlib.suppress(OSError):
             tmp.unlink()
         raise
+    with _sums_lock(entry_dir):
+        try:
+            sums = _sums(entry_dir)
+        except DamagedEntry:
+            sums = {}
+        sums[name] = hashlib.sha256(data).hexdigest()
+        _write_sums(entry_dir, sums)
+
+
+@contextlib.contextmanager
+def _sums_lock(entry_dir: Path) -> Iterator[None]:
+    """Two runs adding files to one entry update ``sums.json`` one after the other."""
+    fd = os.open(entry_dir / ".sums-lock", os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW
+                 | os.O_CLOEXEC, 0o644)
     try:
-        sums = _sums(entry_dir)
-    except DamagedEntry:
-        sums = {}
-    sums[name] = hashlib.sha256(data).hexdigest()
-    _write_sums(entry_dir, sums)
+        fcntl.flock(fd, fcntl.LOCK_EX)
+        yield
+    finally:
+        os.close(fd)
 
 
 def seal(entry_dir: Path, names: list[str] | tuple[str, ...]) -> None:
     """Record the sha256 of files already in the entry (e.g. spilled parts) in
     ``sums.json``, with any recorded before."""
-    try:
-        sums = _sums(entry_dir)
-    except DamagedEntry:
-        sums = {}
-    for name in names:
-        if not _plain_name(name) or name == SUMS:
-            raise ValueError(f"cache file name {name!r} must be a relative path inside the "
-                             "entry")
-        sums[name] = _digest_file(entry_dir / name)
-    _write_sums(entry_dir, sums)
+    with _sums_lock(entry_dir):
+        try:
+            sums = _sums(entry_dir)
+        except DamagedEntry:
+            sums = {}
+        for name in names:
+            if not _plain_name(name) or name == SUMS:
+                raise ValueError(f"cache file name {name!r} must be a relative path inside "
+                                 "the entry")
+            sums[name] = _digest_file(entry_dir / name)
+        _write_sums(entry_dir, sums)
+
+
+def _recorded(entry_dir: Path, name: str) -> str:
+    want = _sums(entry_dir).get(name)
+    if want is None:
+        if not os.path.lexists(entry_dir / name):
+            raise FileNotFoundError(errno.ENOENT, "not stored in the entry", name)
+        raise DamagedEntry(f"{name}: no checksum recorded")
+    return want
 
 
 def read_file(entry_dir: Path, name: str) -> bytes:
     """The bytes of file ``name`` of a cache entry, after checking them against
-    ``sums.json``; raises :class:`DamagedEntry` if they do not match or cannot be read."""
-    want = _sums(entry_dir).get(name)
-    if want is None:
-        raise DamagedEntry(f"{name}: no checksum recorded")
+    ``sums.json``; raises :class:`DamagedEntry` if they do not match or cannot be read,
+    ``FileNotFoundError`` if the entry never stored that file (an optional file)."""
+    want = _recorded(entry_dir, name)
     path = entry_dir / name
     try:
         fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | os.O_CLOEXEC)
@@ -224,10 +248,9 @@ def read_file(entry_dir: Path, name: str) -> bytes:
 
 def verified_path(entry_dir: Path, name: str) -> Path:
     """The path of file ``name`` after checking it against ``sums.json`` (for large files
-    read lazily by polars); raises :class:`DamagedEntry` otherwise."""
-    want = _sums(entry_dir).get(name)
-    if want is None:
-        raise DamagedEntry(f"{name}: no checksum recorded")
+    read lazily by polars); raises :class:`DamagedEntry` (or ``FileNotFoundError``, as
+    :func:`read_file`) otherwise."""
+    want = _recorded(entry_dir, name)
     if _digest_file(entry_dir / name) != want:
         raise DamagedEntry(f"{name}: checksum mismatch")
     return entry_dir / name
@@ -341,6 +364,8 @@ def load(key: str) -> Partial | Spilled | None:
                        hex_res=meta["hex_res"], time_bin=tb, accounting=acc)
     except DamagedEntry as e:
         why = str(e)
+    except FileNotFoundError as e:  # a file the entry needs was never stored
+        why = f"{e.filename}: missing"
     except (KeyError, TypeError, ValueError, AttributeError, orjson.JSONDecodeError) as e:
         why = f"meta.json: {type(e).__name__}: {e}"
     finally:
@@ -432,7 +457,7 @@ def _remove_if_damaged(entry: Path) -> bool:
         try:
             orjson.loads(read_file(entry, "meta.json"))
             return False
-        except (DamagedEntry, orjson.JSONDecodeError):
+        except (DamagedEntry, FileNotFoundError, orjson.JSONDecodeError):
             pass
     finally:
         if fd is not None:

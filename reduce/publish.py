@@ -252,7 +252,10 @@ def folder_lock(folder: Path, *, shared: bool = False,
             try:
                 fcntl.flock(fd, mode | fcntl.LOCK_NB)
                 break
-            except BlockingIOError:
+            except OSError as e:
+                if not isinstance(e, BlockingIOError):  # a file system without locks
+                    raise OutputError(f"{folder}: cannot lock {LOCK_NAME} ({e.strerror}); "
+                                      "publish to a local folder") from None
                 if time.monotonic() >= deadline:
                     raise OutputError(
                         f"{folder}: another reduce run ({_holder(fd)}) holds the output "

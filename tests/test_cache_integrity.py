@@ -180,3 +180,21 @@ def test_entry_is_not_removed_under_its_reader(tmp_path: Path, isolated: Path) -
     assert len(newer) == 1
     cache._drop_others(isolated, newer[0], scan_hash)  # what the next store does
     assert not entry.exists()  # removed once no run reads it
+
+
+def test_files_added_to_an_entry_later_are_checked_too(tmp_path: Path) -> None:
+    entry = tmp_path / "entry"
+    entry.mkdir()
+    cache.write_file(entry, "meta.json", b"{}")
+    cache.write_file(entry, "measured/sizes.json", b'{"gzip": 1}')
+    assert cache.read_file(entry, "measured/sizes.json") == b'{"gzip": 1}'
+    with pytest.raises(FileNotFoundError):
+        cache.read_file(entry, "never-stored.json")  # optional files may be absent
+    (entry / "measured" / "sizes.json").write_bytes(b'{"gzip": 2}')
+    with pytest.raises(cache.DamagedEntry, match="checksum mismatch"):
+        cache.read_file(entry, "measured/sizes.json")
+    (entry / "stray.bin").write_bytes(b"not written through write_file")
+    with pytest.raises(cache.DamagedEntry, match="no checksum recorded"):
+        cache.read_file(entry, "stray.bin")
+    with pytest.raises(ValueError, match="relative path inside the entry"):
+        cache.write_file(entry, "../outside.json", b"x")

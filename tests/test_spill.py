@@ -119,8 +119,8 @@ def test_spilled_partial_is_cached_and_refits_give_the_same_payload(
     assert again.payload == first.payload and again.level == first.level
     entries = [d for d in cache.iterdir() if not d.name.startswith(".")]
     assert len(entries) == 1
-    assert sorted(f.name for f in entries[0].iterdir()) == [".lock", "meta.json", "rows",
-                                                            "sums.json"]
+    assert sorted(f.name for f in entries[0].iterdir()) == [".lock", ".sums-lock", "meta.json",
+                                                            "rows", "sums.json"]
     del first, again
     gc.collect()
     assert not [d for d in cache.iterdir() if d.name.endswith(".spill")]
