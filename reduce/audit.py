@@ -17,6 +17,14 @@ itself (a missing path, an unreadable file, a malformed budgets file, a bad size
 content does not parse (a ``.json`` file that is not valid JSON, say) is a finding, not an
 error: the file exists, it is simply broken.
 
+Files found in a folder are data, not trusted: only regular files (and links to them) are
+read, at most :data:`READ_MAX_BYTES` each, opened so that a FIFO or device can never block
+or stream without end; a link to a file outside its own folder gets sizes only (no content
+of it is shown); a manifest is never read through a link. Before reading a folder, an
+interrupted commit in it (see :mod:`reduce.publish`) is completed under the folder's lock,
+or reported as one finding if it cannot be; each payload is read with its manifest under
+the lock taken shared, so no commit happens between the two reads.
+
 Cost: gzip at level 9 is always measured exactly (it is the default budget measure and the
 basis of the transfer estimate). Brotli at quality 11 runs at roughly half a megabyte per
 second, so it is measured exactly for files up to :data:`BROTLI_AUTO_MAX_BYTES`, for every
