@@ -85,12 +85,24 @@ def spill_dir(key: str) -> Path | None:
             parts = old.name.split(".")  # "", key, pid, random, "spill"
             if len(parts) == 5 and parts[2].isdigit() and not process_alive(int(parts[2])):
                 shutil.rmtree(old, ignore_errors=True)
+        _sweep(root)
         import tempfile
 
         return Path(tempfile.mkdtemp(prefix=f".{key}.{os.getpid()}.", suffix=".spill",
                                      dir=root))
     except OSError:
         return None
+
+
+def _sweep(root: Path) -> None:
+    """Remove unfinished entries (``.KEY.PID.tmp``) and entries set aside for removal
+    (``.KEY.PID.gone``) left by processes that no longer run."""
+    for pattern in (".*.tmp", ".*.gone"):
+        for old in root.glob(pattern):
+            parts = old.name.split(".")  # "", key, pid, "tmp" or "gone"
+            if len(parts) == 4 and parts[2].isdigit() and old.is_dir() \
+                    and not old.is_symlink() and not process_alive(int(parts[2])):
+                shutil.rmtree(old, ignore_errors=True)
 
 
 def temp_spill_dir() -> Path:

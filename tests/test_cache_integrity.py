@@ -198,3 +198,13 @@ def test_files_added_to_an_entry_later_are_checked_too(tmp_path: Path) -> None:
         cache.read_file(entry, "stray.bin")
     with pytest.raises(ValueError, match="relative path inside the entry"):
         cache.write_file(entry, "../outside.json", b"x")
+
+
+def test_unfinished_and_set_aside_entries_of_dead_runs_are_swept(isolated: Path) -> None:
+    dead = 999_999_999  # above any pid Linux hands out (pid_max is at most 2^22, from memory)
+    for name in (f".abc.{dead}.tmp", f".abc.{dead}.gone", f".abc.{os.getpid()}.gone"):
+        (isolated / name / "rows").mkdir(parents=True)
+    folder = cache.spill_dir("k")
+    assert folder is not None
+    left = sorted(p.name for p in isolated.iterdir() if p != folder)
+    assert left == [f".abc.{os.getpid()}.gone"]  # a live run's is left alone
