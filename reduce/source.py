@@ -56,6 +56,13 @@ class OpenSource:
                               "(size, modification time or content); nothing was published "
                               "or cached: run again once the file is complete")
 
+    def read_error(self, e: pl.exceptions.PolarsError) -> SourceError:
+        """The error to show for a scan polars could not complete: the bad NDJSON line if
+        there is one, else the files and polars' first line."""
+        return self.line_error() or SourceError(
+            f"{_files_label(self.files)}: cannot read as {self.format} ({_first_line(e)}); "
+            "check that the files are complete and of that format")
+
     def line_error(self) -> SourceError | None:
         """For an NDJSON source that polars cannot read: the first bad line, named."""
         return ndjson_line_error(self.files, self.schema, self.columns) \

@@ -95,15 +95,17 @@ def test_unchanged_source_passes_the_check(tmp_path: Path) -> None:
     ('{"ts": "2025-03-01T10:00:00", "lat": "north", "lon": 1.0}',
      "key 'lat' holds 'north', which cannot be read as Float64 like the lines before it"),
 ])
+@pytest.mark.parametrize("group", ['hex = { levels = [6] }',
+                                   'hex = { levels = [6] }\ntime = { levels = ["1d"] }'])
 def test_malformed_ndjson_line_is_named_with_its_number(tmp_path: Path, line: str,
-                                                        why: str) -> None:
+                                                        why: str, group: str) -> None:
     rows = [json.dumps({"ts": f"2025-03-0{1 + i % 9}T10:00:00", "lat": 10 + i / 1e5,
                         "lon": 20 + i / 1e5}) for i in range(12000)]
     rows[11000] = line  # past the rows polars infers the schema from
     (tmp_path / "ev.ndjson").write_text("\n".join(rows) + "\n")
     (tmp_path / "r.toml").write_text(
         'name = "nd"\n[source]\npath = "ev.ndjson"\ntime = "ts"\nlat = "lat"\nlon = "lon"\n'
-        '[group]\nhex = { levels = [6] }\n[measures]\nn = "count"\n')
+        f'[group]\n{group}\n[measures]\nn = "count"\n')
     res = CliRunner().invoke(main, ["run", str(tmp_path / "r.toml"), "--no-cache", "--quiet",
                                     "--out", str(tmp_path / "out")])
     assert res.exit_code == 2, res.output
