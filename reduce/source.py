@@ -56,12 +56,20 @@ class OpenSource:
                               "(size, modification time or content); nothing was published "
                               "or cached: run again once the file is complete")
 
-    def read_error(self, e: pl.exceptions.PolarsError) -> SourceError:
-        """The error to show for a scan polars could not complete: the bad NDJSON line if
-        there is one, else the files and polars' first line."""
-        return self.line_error() or SourceError(
-            f"{_files_label(self.files)}: cannot read as {self.format} ({_first_line(e)}); "
-            "check that the files are complete and of that format")
+    def read_error(self, e: pl.exceptions.PolarsError) -> SourceError | None:
+        """For a scan polars could not complete: the bad NDJSON line if there is one, else
+        a read error if the needed columns cannot be read at all, else None (not a problem
+        of the input). Runs on the error path only."""
+        named = self.line_error()
+        if named is not None:
+            return named
+        try:
+            self.frame.select(pl.all().null_count()).collect(engine="streaming")
+        except pl.exceptions.PolarsError as read:
+            return SourceError(f"{_files_label(self.files)}: cannot read as {self.format} "
+                               f"({_first_line(read)}); check that the files are complete "
+                               "and of that format")
+        return None
 
     def line_error(self) -> SourceError | None:
         """For an NDJSON source that polars cannot read: the first bad line, named."""
