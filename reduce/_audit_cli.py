@@ -1,10 +1,12 @@
 """The ``reduce audit`` command: a pre-publish size audit of payload files already written.
 
 The report goes to stdout (a table, ``--json`` or ``--markdown``); every finding is also one
-``PATH: problem`` line on stderr so CI logs show it. Exit codes: 0 all fine, 1 a file is
-inconsistent or a file or total is over budget, 2 bad input (missing or unreadable path,
-malformed budgets file, bad size or measure). Errors are one ``error: ...`` line on stderr,
-never a traceback.
+``PATH: problem`` line on stderr so CI logs show it; an interrupted commit the audit
+completed first is one ``JOURNAL: completed ...`` line there too. Exit codes: 0 all fine,
+1 a file is inconsistent, a file or total is over budget, or an interrupted commit could not
+be completed; 2 bad input (missing or unreadable path, a FIFO, device or file over the size
+cap, malformed budgets file, bad size or measure). Errors are one ``error: ...`` line on
+stderr, never a traceback.
 """
 
 from __future__ import annotations
@@ -91,6 +93,9 @@ def audit(
             click.echo(render_markdown(report), nl=False)
         else:
             click.echo(render_table(report), nl=False)
+    for commit in report.commits:
+        if commit.completed:  # said in one line; an uncompleted one is a finding below
+            click.echo(f"{commit.journal}: {commit.message}", err=True)
     for path, message in report.findings:
         click.echo(f"{path}: {message}", err=True)
     if not report.ok:

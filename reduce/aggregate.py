@@ -496,6 +496,8 @@ def _scan_error(recipe: Recipe, src: OpenSource, label: str,
     try:  # on the error path only: read the needed columns without computing any key
         src.frame.select(pl.all().null_count()).collect(engine="streaming")
     except pl.exceptions.PolarsError as read_error:
+        if (named := src.line_error()) is not None:  # an NDJSON line: say which
+            return named
         files = "file is" if len(src.files) == 1 else "files are"
         return SourceError(f"{label}: cannot read as {src.format} ({_first(read_error)}); "
                            f"check that the {files} complete and of that format")

@@ -17,6 +17,14 @@ itself (a missing path, an unreadable file, a malformed budgets file, a bad size
 content does not parse (a ``.json`` file that is not valid JSON, say) is a finding, not an
 error: the file exists, it is simply broken.
 
+Files found in a folder are data, not trusted: only regular files (and links to them) are
+read, at most :data:`READ_MAX_BYTES` each, opened so that a FIFO or device can never block
+or stream without end; a link to a file outside its own folder gets sizes only (no content
+of it is shown); a manifest is never read through a link. Before reading a folder, an
+interrupted commit in it (see :mod:`reduce.publish`) is completed under the folder's lock,
+or reported as one finding if it cannot be; each payload is read with its manifest under
+the lock taken shared, so no commit happens between the two reads.
+
 Cost: gzip at level 9 is always measured exactly (it is the default budget measure and the
 basis of the transfer estimate). Brotli at quality 11 runs at roughly half a megabyte per
 second, so it is measured exactly for files up to :data:`BROTLI_AUTO_MAX_BYTES`, for every
@@ -31,6 +39,7 @@ import hashlib
 import html
 import os
 import re
+import stat
 import tomllib
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from concurrent.futures import Future, ThreadPoolExecutor
@@ -47,7 +56,8 @@ import pyarrow.csv as pacsv
 import pyarrow.feather as pafeather
 import pyarrow.ipc as paipc
 
-from reduce.errors import AuditError, did_you_mean
+from reduce.errors import AuditError, ReduceError, did_you_mean
+from reduce.publish import journals, reading, recover
 from reduce.sizes import (
     BROTLI_AUTO_MAX,
     MEASURES,
@@ -70,8 +80,10 @@ __all__ = [
     "SLOW_LINK_BITS_PER_SECOND",
     "SLOW_LINK_NAME",
     "SVG_MAX_ELEMENTS",
+    "READ_MAX_BYTES",
     "AuditReport",
     "Budgets",
+    "CommitCheck",
     "FieldCost",
     "FileAudit",
     "FileRule",
@@ -113,6 +125,11 @@ TRANSFER_ASSUMPTION = f"a {SLOW_LINK_NAME} of 1 Mbit/s assumed"
 # Brotli quality 11 costs about 2 s per megabyte: measured exactly up to this size unless
 # asked; the same limit as ``reduce run`` (one constant, in reduce.sizes).
 BROTLI_AUTO_MAX_BYTES = BROTLI_AUTO_MAX
+
+# The audit reads at most this many bytes of one file (a payload for a browser is far
+# smaller; a larger file is refused rather than read into memory), and of one manifest.
+READ_MAX_BYTES = 256 * 1024 * 1024
+MANIFEST_MAX_BYTES = 16 * 1024 * 1024
 
 _JSON_SUFFIXES = frozenset({".json", ".geojson"})
 _CSV_SUFFIXES = frozenset({".csv"})
@@ -227,12 +244,22 @@ class FileAudit:
 
 
 @dataclass(frozen=True, slots=True)
+class CommitCheck:
+    """An interrupted commit found in an audited folder: completed, or why it was not."""
+
+    journal: str
+    completed: bool
+    message: str
+
+
+@dataclass(frozen=True, slots=True)
 class AuditReport:
     """The audit of several files, their total and the measure budgets were taken on."""
 
     files: tuple[FileAudit, ...]
     on: Measure
     total: Verdict | None
+    commits: tuple[CommitCheck, ...] = ()
 
     @property
     def total_size(self) -> int | None:
@@ -245,7 +272,8 @@ class AuditReport:
     @property
     def findings(self) -> tuple[tuple[str, str], ...]:
         """Every finding as ``(path, message)``; the total uses the path ``total``."""
-        out = [(f.path, message) for f in self.files for message in f.findings]
+        out = [(c.journal, c.message) for c in self.commits if not c.completed]
+        out += [(f.path, message) for f in self.files for message in f.findings]
         if self.total is not None and self.total.over:
             out.append(("total", _over_message(self.total, files=len(self.files))))
         return tuple(out)
@@ -483,6 +511,9 @@ def audit_paths(
         total_rule = (*budgets.total, f"{budgets_file} [total]")
 
     files = _collect(paths)
+    commits = _complete_commits(paths, files)
+    if any(c.completed for c in commits):
+        files = _collect(paths)  # a completed first commit adds a payload
     if budgets is not None:
         _check_globs_match(budgets, files)
     results = []
@@ -509,7 +540,8 @@ def audit_paths(
         total_verdict = Verdict(
             limit=t_limit, on=t_on, size=sum(s or 0 for s in sizes), source=t_source
         )
-    return AuditReport(files=tuple(results), on=measure, total=total_verdict)
+    return AuditReport(files=tuple(results), on=measure, total=total_verdict,
+                       commits=commits)
 
 
 def _check_globs_match(budgets: Budgets, files: Sequence[tuple[str, Path]]) -> None:
@@ -590,7 +622,9 @@ def _audit_file(
     force_brotli: bool,
     rule: tuple[int, Measure, str] | None,
 ) -> FileAudit:
-    data = _read(path, given)
+    with reading(path.parent):  # no commit between reading the payload and its manifest
+        data = _read(path, given)
+        manifest = _read_manifest(path)
     gz: Future[bytes] = pool.submit(gzip_bytes, data)
     br: Future[bytes] | None = None
     if force_brotli or len(data) <= BROTLI_AUTO_MAX_BYTES:
@@ -598,7 +632,10 @@ def _audit_file(
 
     out = _Findings()
     suffix = path.suffix.lower()
-    if suffix in _JSON_SUFFIXES:
+    if _links_outside(path):
+        out.notes.append("a link to a file outside its folder: sizes only (its content is "
+                         "not shown)")
+    elif suffix in _JSON_SUFFIXES:
         _analyse_json(data, suffix, out)
     elif suffix in _CSV_SUFFIXES:
         _analyse_csv(data, out)
@@ -613,7 +650,7 @@ def _audit_file(
         out.notes.append(
             f"brotli not measured (file over {format_size(BROTLI_AUTO_MAX_BYTES)}; use --brotli)"
         )
-    _check_manifest(path, data, out, gzip_size, brotli_size)
+    _check_manifest(path, data, out, gzip_size, brotli_size, manifest)
 
     verdict = None
     if rule is not None:
@@ -717,13 +754,113 @@ def _drop_field(doc: Any, kind: str, name: str | None) -> Any:
     return doc
 
 
-def _read(path: Path, given: str) -> bytes:
+def _read(path: Path, given: str, *, cap: int | None = None) -> bytes:
+    """The bytes of a regular file (or of a link to one), at most ``cap`` (default
+    :data:`READ_MAX_BYTES`) of them. A FIFO, device, socket or folder is refused without
+    opening it for reading in a way that could block (``O_NONBLOCK``), so the audit never
+    hangs on a pipe or reads an endless device."""
+    limit = READ_MAX_BYTES if cap is None else cap
     try:
-        return path.read_bytes()
+        before = os.stat(path)
+        if not stat.S_ISREG(before.st_mode):
+            raise AuditError(f"{given}: not a regular file ({_file_kind(before.st_mode)}); the "
+                             "audit reads only regular files and links to them")
+        fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK | os.O_CLOEXEC)
+        try:
+            st = os.fstat(fd)
+            if not stat.S_ISREG(st.st_mode) or (st.st_dev, st.st_ino) != (before.st_dev,
+                                                                          before.st_ino):
+                raise AuditError(f"{given}: changed while being opened; audit it again")
+            if st.st_size > limit:
+                raise AuditError(f"{given}: {st.st_size:,} bytes, over the audit's limit of "
+                                 f"{limit:,} bytes per file; is it a payload?")
+            chunks = []
+            left = limit + 1
+            while left > 0:
+                chunk = os.read(fd, min(left, 1 << 20))
+                if not chunk:
+                    break
+                chunks.append(chunk)
+                left -= len(chunk)
+            data = b"".join(chunks)
+            if len(data) > limit:
+                raise AuditError(f"{given}: grew over the audit's limit of {limit:,} bytes "
+                                 "while being read")
+            return data
+        finally:
+            os.close(fd)
     except FileNotFoundError:
         raise AuditError(f"{given}: no such file or folder") from None
     except OSError as exc:
         raise AuditError(f"{given}: cannot read ({exc.strerror or exc})") from None
+
+
+def _file_kind(mode: int) -> str:
+    for test, name in ((stat.S_ISFIFO, "a FIFO"), (stat.S_ISCHR, "a character device"),
+                       (stat.S_ISBLK, "a block device"), (stat.S_ISSOCK, "a socket"),
+                       (stat.S_ISDIR, "a folder")):
+        if test(mode):
+            return name
+    return "not a plain file"
+
+
+def _links_outside(path: Path) -> bool:
+    """Whether ``path`` is a link whose target lies outside the link's own folder."""
+    if not path.is_symlink():
+        return False
+    try:
+        path.resolve().relative_to(path.parent.resolve())
+        return False
+    except (ValueError, OSError):
+        return True
+
+
+def _read_manifest(path: Path) -> tuple[Path, bytes | None, str | None]:
+    """The manifest beside ``path``: (its path, its bytes or None if absent, a problem).
+    Manifests are regular files written by reduce: a link is reported, never followed."""
+    man = _manifest_of(path)
+    try:
+        st = os.lstat(man)
+    except FileNotFoundError:
+        return man, None, None
+    except OSError as exc:
+        return man, None, f"manifest {man.name}: cannot read ({exc.strerror or exc})"
+    if not stat.S_ISREG(st.st_mode):
+        kind = "a link" if stat.S_ISLNK(st.st_mode) else _file_kind(st.st_mode)
+        return man, None, (f"manifest {man.name}: is {kind}, not a regular file; reduce "
+                           "writes manifests as regular files")
+    try:
+        return man, _read(man, str(man), cap=MANIFEST_MAX_BYTES), None
+    except AuditError as exc:
+        return man, None, f"manifest {man.name}: {exc.message.split(': ', 1)[-1]}"
+
+
+def _complete_commits(paths: Sequence[str | os.PathLike[str]],
+                      files: list[tuple[str, Path]]) -> tuple[CommitCheck, ...]:
+    """Complete the interrupted commits (see reduce.publish) in the audited folders, under
+    each folder's lock; one that cannot be completed (a refused journal, a folder that is not
+    writable, a lock held too long) is reported, never guessed at."""
+    folders = {p.parent for _, p in files}
+    folders |= {Path(os.fspath(p)) for p in paths if Path(os.fspath(p)).is_dir()}
+    out: list[CommitCheck] = []
+    for folder in sorted(folders):
+        found = journals(folder)
+        if not found:
+            continue
+        try:
+            done = {p.name for p in recover(folder)}
+        except (ReduceError, OSError) as exc:
+            why = exc.message if isinstance(exc, ReduceError) else (exc.strerror or str(exc))
+            for j in found:
+                out.append(CommitCheck(str(j), False, "interrupted commit, not completed: "
+                                                      f"{why}"))
+            continue
+        for j in found:
+            name = j.name[1:].removesuffix(".reduce-commit")
+            if name in done:
+                out.append(CommitCheck(str(j), True, f"completed an interrupted commit of "
+                                                     f"{name} before auditing"))
+    return tuple(out)
 
 
 # --------------------------------------------------------------------------------------------
@@ -1325,16 +1462,33 @@ def _arrow_element_kind(names: Sequence[str], hex_found: bool, rows: int) -> str
 # --------------------------------------------------------------------------------------------
 
 
+def _manifest_of(path: Path) -> Path:
+    """The manifest beside a payload: ``x.json.manifest.json`` (see reduce.publish); a
+    manifest of the older name ``x.manifest.json`` is read when only that one exists."""
+    current = path.with_name(path.name + MANIFEST_SUFFIX)
+    legacy = path.with_name(path.stem + MANIFEST_SUFFIX)
+    if not current.exists() and legacy.exists():
+        return legacy
+    return current
+
+
 def _check_manifest(
-    path: Path, data: bytes, out: _Findings, gzip_size: int, brotli_size: int | None
+    path: Path,
+    data: bytes,
+    out: _Findings,
+    gzip_size: int,
+    brotli_size: int | None,
+    read: tuple[Path, bytes | None, str | None],
 ) -> None:
-    manifest_path = path.with_name(path.stem + MANIFEST_SUFFIX)
+    manifest_path, manifest_bytes, problem = read
     name = manifest_path.name
-    if not manifest_path.exists():
+    if problem is not None:
+        out.problems.append(problem)
+        return
+    if manifest_bytes is None:
         if out.kind == "columns":
             out.notes.append(f"no manifest beside it ({name}): checksum and sizes not checked")
         return
-    manifest_bytes = _read(manifest_path, str(manifest_path))
     manifest, error = _parse_json(manifest_bytes)
     where = f"manifest {name}"
     if error is not None:
@@ -1607,5 +1761,7 @@ def report_to_json(report: AuditReport) -> bytes:
         "total": _verdict_json(report.total),
         "total_size": report.total_size,
         "findings": [{"path": p, "message": m} for p, m in report.findings],
+        "commits": [{"journal": c.journal, "completed": c.completed, "message": c.message}
+                    for c in report.commits],
     }
     return orjson.dumps(doc, option=orjson.OPT_INDENT_2 | orjson.OPT_APPEND_NEWLINE)

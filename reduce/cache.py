@@ -9,6 +9,18 @@ versions of the source, so a nightly job keeps one entry. A large, sparse source
 holds its spilled keyed rows (see ``aggregate.Spilled``). Entries are plain parquet and JSON
 files; the whole folder is safe to delete at any time (not while a run is using it).
 
+Entries prove themselves: every file of an entry has its sha256 in the entry's
+``sums.json``, written last (:func:`write_file`, :func:`seal`) and checked whenever a file
+is read (:func:`read_file`, :func:`verified_path`). A damaged, truncated, unreadable or
+unverifiable entry is set aside (removed, when no other run is reading it) and the source is
+scanned again, with one :class:`CacheWarning` saying so (the command line prints it as one
+``warning:`` line); it is never used and never fatal.
+
+An entry in use is not deleted under its reader: a reader holds a shared ``flock`` on the
+entry's ``.lock`` file (while loading; for a spilled partial, whose files are read lazily, as
+long as the returned object lives); removal takes the lock exclusively without waiting and
+skips entries in use.
+
 Location: ``$REDUCE_CACHE_DIR`` if set, else ``$XDG_CACHE_HOME/reduce``, else
 ``~/.cache/reduce``.
 """
@@ -16,9 +28,16 @@ Location: ``$REDUCE_CACHE_DIR`` if set, else ``$XDG_CACHE_HOME/reduce``, else
 from __future__ import annotations
 
 import contextlib
+import errno
+import fcntl
 import hashlib
+import io
 import os
 import shutil
+import stat
+import warnings
+import weakref
+from collections.abc import Iterator
 from pathlib import Path
 
 import orjson
@@ -28,6 +47,18 @@ from reduce import __version__
 from reduce.aggregate import Accounting, Partial, Spilled
 from reduce.publish import process_alive
 from reduce.recipe import Recipe, parse_time_bin
+
+SUMS = "sums.json"
+SUMS_FORMAT = "reduce.cache-sums/1"
+_LOCK = ".lock"
+
+
+class CacheWarning(UserWarning):
+    """A cache entry could not be used (it is set aside and the source scanned again)."""
+
+
+class DamagedEntry(Exception):
+    """A file of a cache entry does not match its recorded checksum, or cannot be read."""
 
 
 def cache_dir() -> Path:
@@ -77,12 +108,24 @@ def spill_dir(key: str) -> Path | None:
             parts = old.name.split(".")  # "", key, pid, random, "spill"
             if len(parts) == 5 and parts[2].isdigit() and not process_alive(int(parts[2])):
                 shutil.rmtree(old, ignore_errors=True)
+        _sweep(root)
         import tempfile
 
         return Path(tempfile.mkdtemp(prefix=f".{key}.{os.getpid()}.", suffix=".spill",
                                      dir=root))
     except OSError:
         return None
+
+
+def _sweep(root: Path) -> None:
+    """Remove unfinished entries (``.KEY.PID.tmp``) and entries set aside for removal
+    (``.KEY.PID.gone``) left by processes that no longer run."""
+    for pattern in (".*.tmp", ".*.gone"):
+        for old in root.glob(pattern):
+            parts = old.name.split(".")  # "", key, pid, "tmp" or "gone"
+            if len(parts) == 4 and parts[2].isdigit() and old.is_dir() \
+                    and not old.is_symlink() and not process_alive(int(parts[2])):
+                shutil.rmtree(old, ignore_errors=True)
 
 
 def temp_spill_dir() -> Path:
@@ -98,31 +141,273 @@ def temp_spill_dir() -> Path:
     return Path(tempfile.mkdtemp(prefix=f"reduce-spill-{os.getpid()}-"))
 
 
-def load(key: str) -> Partial | Spilled | None:
-    """The cached partial for ``key``, or None (a damaged entry counts as absent)."""
-    d = cache_dir() / key
+# --------------------------------------------------------------------------------------------
+# Files that prove themselves (usable for any file an entry holds)
+# --------------------------------------------------------------------------------------------
+
+
+def _plain_name(name: str) -> bool:
+    parts = name.split("/")
+    return bool(name) and not name.startswith("/") and "\\" not in name and "\0" not in name \
+        and all(p not in ("", ".", "..") for p in parts)
+
+
+def _sums(entry: Path) -> dict[str, str]:
     try:
-        meta = orjson.loads((d / "meta.json").read_bytes())
+        st = os.lstat(entry / SUMS)
+        if not stat.S_ISREG(st.st_mode) or st.st_size > 16 * 1024 * 1024:
+            raise DamagedEntry(f"{SUMS} is not a regular file of a plausible size")
+        doc = orjson.loads((entry / SUMS).read_bytes())
+    except FileNotFoundError:
+        raise DamagedEntry(f"no {SUMS} (an entry written before checksums, or unfinished)") \
+            from None
+    except (OSError, orjson.JSONDecodeError) as e:
+        raise DamagedEntry(f"{SUMS} unreadable ({e})") from None
+    sums = doc.get("sha256") if isinstance(doc, dict) else None
+    if not isinstance(doc, dict) or doc.get("format") != SUMS_FORMAT \
+            or not isinstance(sums, dict) \
+            or not all(isinstance(k, str) and _plain_name(k) and isinstance(v, str)
+                       for k, v in sums.items()):
+        raise DamagedEntry(f"{SUMS} is not a checksum list")
+    return sums
+
+
+def _write_sums(entry: Path, sums: dict[str, str]) -> None:
+    data = orjson.dumps({"format": SUMS_FORMAT, "sha256": dict(sorted(sums.items()))})
+    tmp = entry / f".{SUMS}.{os.getpid()}.tmp"
+    tmp.write_bytes(data)
+    os.replace(tmp, entry / SUMS)
+
+
+def _digest_file(path: Path) -> str:
+    """sha256 of a regular file (never a link, FIFO or device: those raise DamagedEntry)."""
+    try:
+        fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | os.O_CLOEXEC)
+    except OSError as e:
+        raise DamagedEntry(f"{path.name}: cannot open ({e.strerror})") from None
+    try:
+        if not stat.S_ISREG(os.fstat(fd).st_mode):
+            raise DamagedEntry(f"{path.name}: not a regular file")
+        with open(fd, "rb", closefd=False) as f:
+            return hashlib.file_digest(f, "sha256").hexdigest()
+    except OSError as e:
+        raise DamagedEntry(f"{path.name}: cannot read ({e.strerror})") from None
+    finally:
+        os.close(fd)
+
+
+def write_file(entry_dir: Path, name: str, data: bytes) -> None:
+    """Write ``data`` as file ``name`` of a cache entry (atomically) and record its sha256
+    in the entry's ``sums.json`` (rewritten after the file, atomically)."""
+    if not _plain_name(name) or name == SUMS:
+        raise ValueError(f"cache file name {name!r} must be a relative path inside the entry")
+    path = entry_dir / name
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        tmp.write_bytes(data)
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            tmp.unlink()
+        raise
+    with _sums_lock(entry_dir):
+        try:
+            sums = _sums(entry_dir)
+        except DamagedEntry:
+            sums = {}
+        sums[name] = hashlib.sha256(data).hexdigest()
+        _write_sums(entry_dir, sums)
+
+
+@contextlib.contextmanager
+def _sums_lock(entry_dir: Path) -> Iterator[None]:
+    """Two runs adding files to one entry update ``sums.json`` one after the other."""
+    fd = os.open(entry_dir / ".sums-lock", os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW
+                 | os.O_CLOEXEC, 0o644)
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX)
+        yield
+    finally:
+        os.close(fd)
+
+
+def seal(entry_dir: Path, names: list[str] | tuple[str, ...]) -> None:
+    """Record the sha256 of files already in the entry (e.g. spilled parts) in
+    ``sums.json``, with any recorded before."""
+    with _sums_lock(entry_dir):
+        try:
+            sums = _sums(entry_dir)
+        except DamagedEntry:
+            sums = {}
+        for name in names:
+            if not _plain_name(name) or name == SUMS:
+                raise ValueError(f"cache file name {name!r} must be a relative path inside "
+                                 "the entry")
+            sums[name] = _digest_file(entry_dir / name)
+        _write_sums(entry_dir, sums)
+
+
+def _recorded(entry_dir: Path, name: str) -> str:
+    want = _sums(entry_dir).get(name)
+    if want is None:
+        if not os.path.lexists(entry_dir / name):
+            raise FileNotFoundError(errno.ENOENT, "not stored in the entry", name)
+        raise DamagedEntry(f"{name}: no checksum recorded")
+    return want
+
+
+def read_file(entry_dir: Path, name: str) -> bytes:
+    """The bytes of file ``name`` of a cache entry, after checking them against
+    ``sums.json``; raises :class:`DamagedEntry` if they do not match or cannot be read,
+    ``FileNotFoundError`` if the entry never stored that file (an optional file)."""
+    want = _recorded(entry_dir, name)
+    path = entry_dir / name
+    try:
+        fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | os.O_CLOEXEC)
+    except OSError as e:
+        raise DamagedEntry(f"{name}: cannot open ({e.strerror})") from None
+    try:
+        if not stat.S_ISREG(os.fstat(fd).st_mode):
+            raise DamagedEntry(f"{name}: not a regular file")
+        with open(fd, "rb", closefd=False) as f:
+            data = f.read()
+    except OSError as e:
+        raise DamagedEntry(f"{name}: cannot read ({e.strerror})") from None
+    finally:
+        os.close(fd)
+    if hashlib.sha256(data).hexdigest() != want:
+        raise DamagedEntry(f"{name}: checksum mismatch")
+    return data
+
+
+def verified_path(entry_dir: Path, name: str) -> Path:
+    """The path of file ``name`` after checking it against ``sums.json`` (for large files
+    read lazily by polars); raises :class:`DamagedEntry` (or ``FileNotFoundError``, as
+    :func:`read_file`) otherwise."""
+    want = _recorded(entry_dir, name)
+    if _digest_file(entry_dir / name) != want:
+        raise DamagedEntry(f"{name}: checksum mismatch")
+    return entry_dir / name
+
+
+def _parquet(entry: Path, name: str) -> pl.DataFrame:
+    try:
+        return pl.read_parquet(io.BytesIO(read_file(entry, name)))
+    except pl.exceptions.PolarsError as e:
+        raise DamagedEntry(f"{name}: not readable as parquet ({e})") from None
+
+
+# --------------------------------------------------------------------------------------------
+# Readers' locks
+# --------------------------------------------------------------------------------------------
+
+def _lock_shared(entry: Path) -> int | None:
+    """A shared lock on an entry (None if it has none or vanished meanwhile)."""
+    try:
+        fd = os.open(entry / _LOCK, os.O_RDONLY | os.O_NOFOLLOW | os.O_CLOEXEC)
+    except OSError:
+        return None
+    try:
+        fcntl.flock(fd, fcntl.LOCK_SH)
+        # A remover renames the entry away before deleting it: is this still the entry?
+        if os.stat(entry / _LOCK).st_ino != os.fstat(fd).st_ino:
+            raise FileNotFoundError
+        return fd
+    except OSError:
+        os.close(fd)
+        return None
+
+
+def _hold(reader: Spilled, fd: int) -> Spilled:
+    """Keep the entry's shared lock while ``reader`` (which reads its files lazily) lives."""
+    weakref.finalize(reader, os.close, fd)
+    return reader
+
+
+def _remove(entry: Path) -> bool:
+    """Remove an entry unless a reader holds it (its lock taken exclusively, no waiting):
+    renamed aside first, so no new reader opens it, then deleted."""
+    fd = None
+    with contextlib.suppress(OSError):
+        fd = os.open(entry / _LOCK, os.O_RDONLY | os.O_NOFOLLOW | os.O_CLOEXEC)
+    try:
+        if fd is not None:
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            except OSError:
+                return False  # in use
+        aside = entry.with_name(f".{entry.name}.{os.getpid()}.gone")
+        try:
+            os.replace(entry, aside)
+        except OSError:
+            return False
+        shutil.rmtree(aside, ignore_errors=True)
+        return True
+    finally:
+        if fd is not None:
+            os.close(fd)
+
+
+def _set_aside(entry: Path, why: str) -> None:
+    removed = _remove(entry)
+    warnings.warn(CacheWarning(
+        f"cache entry {entry} is damaged ({why}); "
+        f"{'removed' if removed else 'not used (another run is reading it)'}, scanning the "
+        "source again"), stacklevel=3)
+
+
+# --------------------------------------------------------------------------------------------
+# Load and store
+# --------------------------------------------------------------------------------------------
+
+
+def load(key: str) -> Partial | Spilled | None:
+    """The cached partial for ``key``, or None: absent, or damaged (set aside, with a
+    :class:`CacheWarning`). A spilled partial's entry stays locked for reading while the
+    returned object lives."""
+    d = cache_dir() / key
+    if not d.is_dir() or d.is_symlink():
+        return None
+    fd = _lock_shared(d)
+    if fd is None:
+        if (d / _LOCK).exists() or not d.exists():
+            return None  # removed meanwhile
+        # An entry without a lock file was not written by this version: not verifiable.
+    keep = False
+    try:
+        meta = orjson.loads(read_file(d, "meta.json"))
+        tb = parse_time_bin(meta["time_bin"]) if meta["time_bin"] else None
+        acc = Accounting(**meta["accounting"])
         if "parts" in meta:
             parts = tuple(tuple(str(f) for f in part) for part in meta["parts"])
-            if not all((d / f).is_file() for part in parts for f in part):
-                return None
-            tb = parse_time_bin(meta["time_bin"]) if meta["time_bin"] else None
-            return Spilled(keys=tuple(meta["keys"]), root=d, parts=parts,
-                           rows=int(meta["rows"]), hex_res=meta["hex_res"], time_bin=tb,
-                           accounting=Accounting(**meta["accounting"]))
-        table = pl.read_parquet(d / "table.parquet")
-        pairs = {name: pl.read_parquet(d / f"pairs-{i}.parquet")
-                 for i, name in enumerate(meta["pairs"])}
-        values = {name: pl.read_parquet(d / f"values-{i}.parquet").to_series()
+            for part in parts:
+                for f in part:
+                    verified_path(d, f)
+            spilled = Spilled(keys=tuple(meta["keys"]), root=d, parts=parts,
+                              rows=int(meta["rows"]), hex_res=meta["hex_res"], time_bin=tb,
+                              accounting=acc)
+            if fd is not None:
+                keep = True
+                return _hold(spilled, fd)
+            return spilled
+        table = _parquet(d, "table.parquet")
+        pairs = {name: _parquet(d, f"pairs-{i}.parquet") for i, name in enumerate(meta["pairs"])}
+        values = {name: _parquet(d, f"values-{i}.parquet").to_series()
                   for i, name in enumerate(meta["pairs"])}
-        acc = Accounting(**meta["accounting"])
-        tb = parse_time_bin(meta["time_bin"]) if meta["time_bin"] else None
         return Partial(keys=tuple(meta["keys"]), table=table, pairs=pairs, values=values,
                        hex_res=meta["hex_res"], time_bin=tb, accounting=acc)
-    except (OSError, KeyError, TypeError, ValueError, orjson.JSONDecodeError,
-            pl.exceptions.PolarsError):
-        return None
+    except DamagedEntry as e:
+        why = str(e)
+    except FileNotFoundError as e:  # a file the entry needs was never stored
+        why = f"{e.filename}: missing"
+    except (KeyError, TypeError, ValueError, AttributeError, orjson.JSONDecodeError) as e:
+        why = f"meta.json: {type(e).__name__}: {e}"
+    finally:
+        if fd is not None and not keep:
+            os.close(fd)
+    _set_aside(d, why)
+    return None
 
 
 def _meta(p: Partial | Spilled) -> dict[str, object]:
@@ -134,66 +419,90 @@ def _meta(p: Partial | Spilled) -> dict[str, object]:
                            "invalid_by_reason": p.accounting.invalid_by_reason}}
 
 
+def _parquet_bytes(df: pl.DataFrame) -> bytes:
+    buf = io.BytesIO()
+    df.write_parquet(buf, compression="zstd")
+    return buf.getvalue()
+
+
 def store(key: str, p: Partial | Spilled, *, recipe: str = "") -> Partial | Spilled | None:
     """Store a partial; returns it as stored (a spilled partial's files move into the
-    entry) or None on failure, which is otherwise ignored (the cache is an optimisation).
+    entry, locked for reading while the returned object lives) or None on failure, which is
+    otherwise ignored (the cache is an optimisation).
 
     ``recipe`` (the recipe's scan-relevant hash) is recorded, and the entries of the same
-    recipe over other versions of the source are removed: a nightly job keeps one entry, not
-    one per night.
+    recipe over other versions of the source are removed (unless a run is reading them): a
+    nightly job keeps one entry, not one per night.
     """
     root = cache_dir()
     final = root / key
-    if _usable(final):
+    if final.exists() and not _remove_if_damaged(final):
         # Another run stored this entry meanwhile and may be reading it: leave it alone (a
         # spilled partial keeps its own files, removed when its run ends).
         return None
     if isinstance(p, Spilled):
         folder = p.root
+        fd = None
         try:
             if folder.parent.resolve() != root.resolve():
                 return None
             meta = {**_meta(p), "recipe": recipe, "parts": [list(part) for part in p.parts],
                     "rows": p.rows}
-            (folder / "meta.json").write_bytes(orjson.dumps(meta))
-            if final.exists():  # damaged
-                shutil.rmtree(final, ignore_errors=True)
+            fd = os.open(folder / _LOCK, os.O_RDONLY | os.O_CREAT | os.O_NOFOLLOW
+                         | os.O_CLOEXEC, 0o644)
+            fcntl.flock(fd, fcntl.LOCK_SH)  # this run reads the parts after storing them
+            seal(folder, [f for part in p.parts for f in part])
+            write_file(folder, "meta.json", orjson.dumps(meta))
             os.replace(folder, final)
+            stored, fd = _hold(p.moved(final), fd), None
             _drop_others(root, key, recipe)
-            return p.moved(final)
+            return stored
         except OSError:
             return None
+        finally:
+            if fd is not None:
+                os.close(fd)
     tmp = root / f".{key}.{os.getpid()}.tmp"
     try:
         tmp.mkdir(parents=True, exist_ok=True)
-        p.table.write_parquet(tmp / "table.parquet", compression="zstd")
+        (tmp / _LOCK).touch()
+        write_file(tmp, "table.parquet", _parquet_bytes(p.table))
         names = sorted(p.pairs)
         for i, name in enumerate(names):
-            p.pairs[name].write_parquet(tmp / f"pairs-{i}.parquet", compression="zstd")
-            p.values[name].to_frame("v").write_parquet(tmp / f"values-{i}.parquet",
-                                                       compression="zstd")
-        meta = {**_meta(p), "recipe": recipe, "pairs": names}
-        (tmp / "meta.json").write_bytes(orjson.dumps(meta))
-        if final.exists():
-            shutil.rmtree(final, ignore_errors=True)
+            write_file(tmp, f"pairs-{i}.parquet", _parquet_bytes(p.pairs[name]))
+            write_file(tmp, f"values-{i}.parquet", _parquet_bytes(p.values[name].to_frame("v")))
+        write_file(tmp, "meta.json", orjson.dumps({**_meta(p), "recipe": recipe,
+                                                   "pairs": names}))
         os.replace(tmp, final)
         _drop_others(root, key, recipe)
         return p
     except OSError:
-        with contextlib.suppress(OSError):
-            shutil.rmtree(tmp, ignore_errors=True)
         return None
+    finally:
+        # Whatever happened (a full disk, a signal), no half-written entry stays behind.
+        if tmp.exists():
+            shutil.rmtree(tmp, ignore_errors=True)
 
 
-def _usable(entry: Path) -> bool:
-    """Whether an entry looks complete (its meta.json parses); damaged ones are replaced."""
-    with contextlib.suppress(OSError, orjson.JSONDecodeError):
-        return isinstance(orjson.loads((entry / "meta.json").read_bytes()), dict)
-    return False
+def _remove_if_damaged(entry: Path) -> bool:
+    """Whether ``entry`` is gone after this: a damaged one not in use is removed; a sound
+    or in-use one stays (False)."""
+    fd = _lock_shared(entry)
+    try:
+        try:
+            orjson.loads(read_file(entry, "meta.json"))
+            return False
+        except (DamagedEntry, FileNotFoundError, orjson.JSONDecodeError):
+            pass
+    finally:
+        if fd is not None:
+            os.close(fd)
+    return _remove(entry)
 
 
 def _drop_others(root: Path, key: str, recipe: str) -> None:
-    """Remove the entries of ``recipe`` other than ``key`` (older versions of its source)."""
+    """Remove the entries of ``recipe`` other than ``key`` (older versions of its source),
+    except those another run is reading."""
     if not recipe:
         return
     for d in root.iterdir():
@@ -201,4 +510,4 @@ def _drop_others(root: Path, key: str, recipe: str) -> None:
             continue
         with contextlib.suppress(OSError, orjson.JSONDecodeError, AttributeError):
             if orjson.loads((d / "meta.json").read_bytes()).get("recipe") == recipe:
-                shutil.rmtree(d, ignore_errors=True)
+                _remove(d)

@@ -42,6 +42,52 @@ class _SizeType(click.ParamType):
 SIZE = _SizeType()
 
 
+class Terminated(KeyboardInterrupt):
+    """SIGTERM (what schedulers and ``kill`` send) raised in the main thread, so it unwinds
+    like Ctrl-C: every ``finally`` and clean-up runs (temporary and spill files removed)."""
+
+
+def _on_sigterm(signum: int, frame: Any) -> None:
+    raise Terminated
+
+
+@contextlib.contextmanager
+def _sigterm_unwinds() -> Iterator[None]:
+    """SIGTERM raises :class:`Terminated` while a command runs (main thread only)."""
+    import signal
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    previous = signal.signal(signal.SIGTERM, _on_sigterm)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+
+
+@contextlib.contextmanager
+def _cache_warnings_as_lines() -> Iterator[None]:
+    """A damaged cache entry (``reduce.cache.CacheWarning``) is one ``warning:`` line on
+    stderr, even with --quiet; other warnings keep Python's default handling."""
+    import warnings
+
+    with warnings.catch_warnings():
+        default = warnings.showwarning
+
+        def show(message: Warning | str, category: type[Warning], *args: Any,
+                 **kwargs: Any) -> None:
+            if category.__name__ == "CacheWarning":
+                click.echo(f"warning: {message}", err=True)
+            else:
+                default(message, category, *args, **kwargs)
+
+        warnings.showwarning = show
+        warnings.filterwarnings("always", message="cache entry ")
+        yield
+
+
 class _Group(click.Group):
     # Commands imported only when used, so `reduce run` does not pay for the audit's imports.
     _lazy = {"audit": ("reduce._audit_cli", "audit")}
@@ -58,8 +104,16 @@ class _Group(click.Group):
         return super().get_command(ctx, cmd_name)
 
     def invoke(self, ctx: click.Context) -> Any:
+        with _sigterm_unwinds(), _cache_warnings_as_lines():
+            return self._invoke(ctx)
+
+    def _invoke(self, ctx: click.Context) -> Any:
         try:
             return super().invoke(ctx)
+        except Terminated:
+            click.echo("error: terminated (SIGTERM); nothing was published by the unfinished "
+                       "step", err=True)
+            ctx.exit(143)  # 128 + SIGTERM, the shell's convention
         except ReduceError as e:
             if ctx.obj and ctx.obj.get("debug"):
                 raise

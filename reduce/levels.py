@@ -15,9 +15,10 @@ small (:data:`PAYLOAD_MAX`), so publishing it again needs no roll-up.
 A store belongs to one cache entry (one scan of one version of the source) and one recipe
 *besides its budget*: its file name carries a hash of everything else that shapes a payload
 (the recipe's validated content without ``[budget]``, and the denominators file's size and
-modification time). Records are plain JSON, written atomically; a store that does not parse,
-or a kept payload whose sha256 does not match its record, is treated as absent, never used.
-This module imports no polars, so a re-fit that finds everything here does not load it.
+modification time). Records are plain JSON, written atomically; in a cache entry they go
+through the entry's checksummed files (``cache.write_file``/``cache.read_file``, passed in
+as ``read``/``write``). A store that does not parse or verify, or a kept payload whose sha256
+does not match its record, is treated as absent, never used. This module imports no polars.
 """
 
 from __future__ import annotations
@@ -27,7 +28,7 @@ import dataclasses
 import hashlib
 import os
 import zlib
-from collections.abc import Iterator, Mapping
+from collections.abc import Callable, Iterator, Mapping
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
@@ -190,12 +191,34 @@ def store_hash(document: Mapping[str, Any], extra: str = "") -> str:
     return hashlib.sha256(text + b"\0" + extra.encode()).hexdigest()[:24]
 
 
-class Store:
-    """The measured levels of one recipe over one cache entry (see the module docstring)."""
+Read = Callable[[Path, str], bytes]  # (folder, file name) -> bytes; OSError when unusable
+Write = Callable[[Path, str, bytes], None]
 
-    def __init__(self, folder: Path | None, name: str) -> None:
+
+def _read_plain(folder: Path, name: str) -> bytes:
+    return (folder / name).read_bytes()
+
+
+def _write_plain(folder: Path, name: str, data: bytes) -> None:
+    if not _write_atomic(folder / name, data):
+        raise OSError(f"cannot write {name}")
+
+
+class Store:
+    """The measured levels of one recipe over one cache entry (see the module docstring).
+
+    ``read`` and ``write`` move a file's bytes in and out of ``folder`` (plain files by
+    default; a cache entry's checksummed files in the pipeline). ``read`` raises ``OSError``
+    or any exception listed in ``errors`` for a file that is absent or unusable."""
+
+    def __init__(self, folder: Path | None, name: str, *, read: Read = _read_plain,
+                 write: Write = _write_plain,
+                 errors: tuple[type[BaseException], ...] = ()) -> None:
         self.folder = folder
         self.name = name
+        self._read = read
+        self._write = write
+        self._errors = (OSError, *errors)
         self.records: dict[str, Record] = {}
         self.counts: dict[str, int] = {}  # rows of levels counted, not measured
         self.dirty = False
@@ -203,20 +226,23 @@ class Store:
             self._load()
 
     @property
+    def file_name(self) -> str:
+        return f"levels-{self.name}.json"
+
+    @property
     def path(self) -> Path | None:
-        return None if self.folder is None else self.folder / f"levels-{self.name}.json"
+        return None if self.folder is None else self.folder / self.file_name
 
     def _load(self) -> None:
-        p = self.path
-        assert p is not None
+        assert self.folder is not None
         try:
-            doc = orjson.loads(p.read_bytes())
+            doc = orjson.loads(self._read(self.folder, self.file_name))
             if doc.get("format") != FORMAT:
                 return
             records = {level_id(r["level"]): Record(**r) for r in doc["records"]}
             counts = {str(k): int(v) for k, v in doc.get("counts", {}).items()}
-        except (OSError, orjson.JSONDecodeError, TypeError, KeyError, AttributeError,
-                ValueError):
+        except (orjson.JSONDecodeError, TypeError, KeyError, AttributeError, ValueError,
+                *self._errors):
             return
         self.records, self.counts = records, counts
 
@@ -247,8 +273,8 @@ class Store:
         if rec is None or rec.payload is None or self.folder is None:
             return None
         try:
-            data = zlib.decompress((self.folder / rec.payload).read_bytes())
-        except (OSError, zlib.error):
+            data = zlib.decompress(self._read(self.folder, rec.payload))
+        except (zlib.error, *self._errors):
             return None
         return data if hashlib.sha256(data).hexdigest() == rec.sha256 else None
 
@@ -259,20 +285,25 @@ class Store:
                 or self.payload(level) is not None):
             return
         name = f"payload-{self.name}-{rec.sha256[:20]}.z"
-        if _write_atomic(self.folder / name, zlib.compress(data, 1)):
-            rec.payload = name
-            self.dirty = True
+        try:
+            self._write(self.folder, name, zlib.compress(data, 1))
+        except self._errors:
+            return
+        rec.payload = name
+        self.dirty = True
 
     def save(self) -> None:
         """Write the store if it changed (atomically; failures are ignored: a cache)."""
-        p = self.path
-        if p is None or not self.dirty or not p.parent.is_dir():
+        if self.folder is None or not self.dirty or not self.folder.is_dir():
             return
         doc = {"format": FORMAT,
                "records": [asdict(r) for _, r in sorted(self.records.items())],
                "counts": dict(sorted(self.counts.items()))}
-        if _write_atomic(p, orjson.dumps(doc)):
-            self.dirty = False
+        try:
+            self._write(self.folder, self.file_name, orjson.dumps(doc))
+        except self._errors:
+            return
+        self.dirty = False
 
 
 def _write_atomic(path: Path, data: bytes) -> bool:

@@ -55,7 +55,9 @@ class Measurer(LevelTables):
             key = self.entry()
             folder = cache.cache_dir() / key if self.use_cache else None
             self._store = levels.Store(folder if folder is not None and folder.is_dir()
-                                       else None, _store_name(self.recipe))
+                                       else None, _store_name(self.recipe),
+                                       read=cache.read_file, write=cache.write_file,
+                                       errors=(cache.DamagedEntry,))
             if self._store.records:
                 self.partial_from_cache = True
         return self._store

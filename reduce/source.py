@@ -45,6 +45,41 @@ class OpenSource:
     null_values: tuple[str, ...] = ()
     text_columns: tuple[str, ...] = ()  # read as text, then converted by ``casts``
     casts: tuple[pl.Expr, ...] = ()
+    states: tuple[FileState, ...] = ()  # each file as opened, see changed_files()
+
+    def changed_files(self) -> list[Path]:
+        """The files that differ now from when the source was opened (size, modification
+        time, or a hash of the parquet footer / the text's last bytes)."""
+        return [s.path for s in self.states if file_state(s.path) != s]
+
+    def check_unchanged(self) -> None:
+        """Raise :class:`SourceError` naming the first file changed since the source was
+        opened: a result scanned from it may mix two versions, so it must not be used."""
+        changed = self.changed_files()
+        if changed:
+            raise SourceError(f"{shown_path(changed[0])}: changed while it was being read "
+                              "(size, modification time or content); nothing was published "
+                              "or cached: run again once the file is complete")
+
+    def read_error(self, e: pl.exceptions.PolarsError) -> SourceError | None:
+        """For a scan polars could not complete: the bad NDJSON line if there is one, else
+        a read error if the needed columns cannot be read at all, else None (not a problem
+        of the input). Runs on the error path only."""
+        named = self.line_error()
+        if named is not None:
+            return named
+        try:
+            self.frame.select(pl.all().null_count()).collect(engine="streaming")
+        except pl.exceptions.PolarsError as read:
+            return SourceError(f"{_files_label(self.files)}: cannot read as {self.format} "
+                               f"({_first_line(read)}); check that the files are complete "
+                               "and of that format")
+        return None
+
+    def line_error(self) -> SourceError | None:
+        """For an NDJSON source that polars cannot read: the first bad line, named."""
+        return ndjson_line_error(self.files, self.schema, self.columns) \
+            if self.format == "ndjson" else None
 
     def rows_frame(self, offset: int, length: int) -> pl.LazyFrame:
         """Like ``frame``, over input rows ``offset`` to ``offset + length`` only (counted
@@ -450,10 +485,11 @@ def open_source(recipe: Recipe) -> OpenSource:
                     for f in src.filters)
     for e in filters:
         lf = lf.filter(e)
+    states = tuple(file_state(f) for f in files)  # before the fingerprint: see changed_files
     return OpenSource(files=tuple(files), format=fmt, schema=schema,
                       fingerprint=fingerprint(files), frame=lf, columns=tuple(cols),
                       filters=filters, null_values=src.null_values, text_columns=text,
-                      casts=casts)
+                      casts=casts, states=states)
 
 
 def _check_csv_numbers(recipe: Recipe, schema: pl.Schema, files: list[Path],
@@ -501,3 +537,91 @@ def locate_value(src: OpenSource, column: str, value: str) -> tuple[Path, int] |
 
 def source_size(files: tuple[Path, ...]) -> int:
     return sum(os.path.getsize(f) for f in files)
+
+
+# --------------------------------------------------------------------------------------------
+# Files changed during a run
+# --------------------------------------------------------------------------------------------
+
+_TAIL_BYTES = 64 * 1024
+
+
+@dataclass(frozen=True, slots=True)
+class FileState:
+    """What a source file looked like: size, modification time and a content hash (the
+    parquet footer, which changes with any change of the data; for text, the last bytes)."""
+
+    path: Path
+    size: int
+    mtime_ns: int
+    digest: str
+
+
+def file_state(path: Path) -> FileState:
+    """The state of ``path`` now (a missing or unreadable file gets an empty digest)."""
+    try:
+        with open(path, "rb") as f:
+            st = os.fstat(f.fileno())
+            size = st.st_size
+            n = min(size, _TAIL_BYTES)
+            if size >= 12:
+                f.seek(size - 8)
+                tail = f.read(8)
+                if tail[4:] == b"PAR1":  # footer length, then the magic (parquet format)
+                    n = min(size, int.from_bytes(tail[:4], "little") + 8)
+            f.seek(size - n)
+            digest = hashlib.sha256(f.read(n)).hexdigest()
+            return FileState(path, size, st.st_mtime_ns, digest)
+    except OSError:
+        return FileState(path, -1, -1, "")
+
+
+# --------------------------------------------------------------------------------------------
+# NDJSON lines that cannot be read
+# --------------------------------------------------------------------------------------------
+
+
+def _fits(value: Any, dtype: pl.DataType) -> bool:
+    if value is None:
+        return True
+    if dtype == pl.Boolean:
+        return isinstance(value, bool)
+    if dtype.is_numeric():
+        return isinstance(value, (int, float)) and not isinstance(value, bool)
+    if dtype == pl.String or isinstance(dtype, (pl.Datetime, pl.Date)):
+        return isinstance(value, str)
+    return True
+
+
+def ndjson_line_error(files: tuple[Path, ...], schema: pl.Schema,
+                      columns: tuple[str, ...]) -> SourceError | None:
+    """The first line of ``files`` that is not a JSON object, or whose value for one of
+    ``columns`` does not fit the inferred type, as one error naming file and line number;
+    None if every line reads (the problem is elsewhere). Read on the error path only."""
+    import orjson
+
+    for f in files:
+        try:
+            with open(f, "rb") as fh:
+                for n, line in enumerate(fh, start=1):
+                    if not line.strip():
+                        continue
+                    try:
+                        doc = orjson.loads(line)
+                    except orjson.JSONDecodeError as e:
+                        why = f"not valid JSON ({e.msg})"
+                    else:
+                        if not isinstance(doc, dict):
+                            why = f"a JSON {type(doc).__name__}, not an object"
+                        else:
+                            bad = next((c for c in columns if c in schema
+                                        and not _fits(doc.get(c), schema[c])), None)
+                            if bad is None:
+                                continue
+                            why = (f"key {bad!r} holds {str(doc.get(bad))[:40]!r}, which "
+                                   f"cannot be read as {schema[bad]} like the lines before it")
+                    return SourceError(f"{shown_path(f)}: line {n}: {why}; fix or remove "
+                                       "that line (NDJSON holds one JSON object per line)")
+        except OSError as e:
+            return SourceError(f"{shown_path(f)}: cannot read ({e.strerror})")
+    return None

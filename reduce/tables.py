@@ -102,8 +102,13 @@ class LevelTables:
                     weakref.finalize(self, shutil.rmtree, d, True)
                     return d
 
-                p = aggregate.scan_partial(self.recipe, self.source, progress=self.progress,
-                                           spill_dir=spill)
+                assert self.source is not None
+                try:
+                    p = aggregate.scan_partial(self.recipe, self.source,
+                                               progress=self.progress, spill_dir=spill)
+                except pl.exceptions.PolarsError as e:  # e.g. a malformed NDJSON line
+                    raise (self.source.read_error(e) or e) from None
+                self.source.check_unchanged()  # replaced mid-scan: neither used nor cached
                 if self.use_cache:
                     p = cache.store(key, p, recipe=self.recipe.scan_hash) or p
                     entry = cache.cache_dir() / key

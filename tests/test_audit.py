@@ -14,6 +14,7 @@ import hashlib
 import importlib.util
 import io
 import json
+import os
 import random
 from pathlib import Path
 from typing import Any
@@ -119,7 +120,8 @@ def test_brotli_deferred_above_threshold_unless_asked(
     f = audit_one(path)
     assert f.brotli is None and f.sizes is None
     assert "brotli not measured (file over 10 B; use --brotli)" in f.notes
-    assert "manifest x.manifest.json: bytes.brotli not verified (brotli not measured)" in f.notes
+    assert ("manifest x.json.manifest.json: bytes.brotli not verified (brotli not measured)"
+            in f.notes)
     assert "not measured (use --brotli)" in render_table(audit_paths([path]))
     expected = len(brotli.compress(data, quality=11))  # the brotli module, RFC 7932
     assert audit_one(path, brotli=True).brotli == expected
@@ -154,7 +156,7 @@ def test_payload_without_manifest_is_audited_with_a_note(tmp_path: Path) -> None
     path = write_payload(tmp_path / "x.json", manifest=False)
     f = audit_one(path)
     assert f.problems == ()
-    assert "no manifest beside it (x.manifest.json): checksum and sizes not checked" in f.notes
+    assert "no manifest beside it (x.json.manifest.json): checksum and sizes not checked" in f.notes
 
 
 def _broken(tmp_path: Path, **overrides: Any) -> FileAudit:
@@ -239,8 +241,8 @@ def test_wrong_manifest_checksum(tmp_path: Path) -> None:
     digest = hashlib.sha256(path.read_bytes()).hexdigest()  # hashlib SHA-256 (FIPS 180-4)
     assert audit_one(path).problems == (
         (
-            "manifest x.manifest.json key 'sha256': \"0000000000000000…\" does not match the "
-            f'payload\'s sha256 "{digest[:16]}…"'
+            "manifest x.json.manifest.json key 'sha256': \"0000000000000000…\" does not "
+            f'match the payload\'s sha256 "{digest[:16]}…"'
         ),
     )
 
@@ -257,18 +259,18 @@ def test_manifest_sizes_and_rows_checked(tmp_path: Path) -> None:
     )
     assert audit_one(path).problems == (
         (
-            f"manifest x.manifest.json key 'bytes.raw': {len(data) + 1}, but the file measures "
-            f"{len(data)}"
+            f"manifest x.json.manifest.json key 'bytes.raw': {len(data) + 1}, but the file "
+            f"measures {len(data)}"
         ),
         (
-            f"manifest x.manifest.json key 'bytes.gzip': {true_gzip + 2}, but the file measures "
-            f"{true_gzip}"
+            f"manifest x.json.manifest.json key 'bytes.gzip': {true_gzip + 2}, but the file "
+            f"measures {true_gzip}"
         ),
         (
-            f"manifest x.manifest.json key 'bytes.brotli': {true_brotli - 3}, but the file measures "
-            f"{true_brotli}"
+            f"manifest x.json.manifest.json key 'bytes.brotli': {true_brotli - 3}, but the "
+            f"file measures {true_brotli}"
         ),
-        "manifest x.manifest.json key 'rows': 4, but the payload has 3 rows",
+        "manifest x.json.manifest.json key 'rows': 4, but the payload has 3 rows",
     )
 
 
@@ -277,10 +279,10 @@ def test_manifest_naming_another_payload(tmp_path: Path) -> None:
     write_manifest(path, payload="y.json", format="reduce.manifest/9")
     assert audit_one(path).problems == (
         (
-            "manifest x.manifest.json key 'format': \"reduce.manifest/9\", expected "
+            "manifest x.json.manifest.json key 'format': \"reduce.manifest/9\", expected "
             '"reduce.manifest/1"'
         ),
-        'manifest x.manifest.json key \'payload\': "y.json", expected "x.json"',
+        'manifest x.json.manifest.json key \'payload\': "y.json", expected "x.json"',
     )
 
 
@@ -555,7 +557,7 @@ def test_folders_walked_sorted_manifests_and_hidden_skipped(tmp_path: Path) -> N
 def test_manifest_given_alone_is_not_a_payload(tmp_path: Path) -> None:
     write_payload(tmp_path / "x.json")
     with pytest.raises(AuditError, match="no payload files to audit"):
-        audit_paths([tmp_path / "x.manifest.json"])
+        audit_paths([tmp_path / "x.json.manifest.json"])
 
 
 def test_missing_path_is_an_audit_error(tmp_path: Path) -> None:
@@ -567,14 +569,15 @@ def test_missing_path_is_an_audit_error(tmp_path: Path) -> None:
 
 def test_unreadable_file_is_an_audit_error(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     path = write_payload(tmp_path / "x.json")
-    real = Path.read_bytes
+    real = os.open
 
-    def deny(self: Path) -> bytes:
-        if self.name == "x.json":
-            raise PermissionError(13, "Permission denied", str(self))
-        return real(self)
+    def deny(file: Any, flags: int, *args: Any, **kwargs: Any) -> int:
+        # Tests run as root here, so a chmod would not deny the read: refuse the open.
+        if Path(file).name == "x.json":
+            raise PermissionError(13, "Permission denied", str(file))
+        return real(file, flags, *args, **kwargs)
 
-    monkeypatch.setattr(Path, "read_bytes", deny)
+    monkeypatch.setattr(os, "open", deny)
     with pytest.raises(AuditError) as info:
         audit_paths([path])
     assert info.value.message == f"{path}: cannot read (Permission denied)"
@@ -805,6 +808,7 @@ def test_report_json_stable_and_complete(tmp_path: Path) -> None:
         "total",
         "total_size",
         "findings",
+        "commits",
     ]
     assert doc["format"] == "reduce.audit/1" and doc["ok"] is False
     assert doc["assumptions"]["transfer"] == {"name": "slow link", "bits_per_second": 1_000_000,
@@ -873,11 +877,13 @@ def test_sibling_manifest_belongs_to_its_own_payload(tmp_path: Path) -> None:
     write_payload(tmp_path / "x.json")
     csv_file = write_bytes(tmp_path / "x.csv", b"a\n1\n")
     assert audit_one(csv_file).problems == ()
+    # Manifests are named after the whole payload file name, so x.csv has its own.
     csv_manifest = builders.manifest_for(tmp_path / "x.json") | {"payload": "x.csv"}
-    write_bytes(tmp_path / "x.manifest.json", dump(csv_manifest))
+    write_bytes(tmp_path / "x.csv.manifest.json", dump(csv_manifest))
     problems = audit_one(csv_file).problems
-    assert "manifest x.manifest.json key 'rows': 3, but the payload has 1 rows" in problems
-    assert any(p.startswith("manifest x.manifest.json key 'sha256'") for p in problems)
+    assert "manifest x.csv.manifest.json key 'rows': 3, but the payload has 1 rows" in problems
+    assert any(p.startswith("manifest x.csv.manifest.json key 'sha256'") for p in problems)
+    assert audit_one(tmp_path / "x.json").problems == ()
 
 
 def test_brotli_auto_limit_is_the_one_run_uses() -> None:

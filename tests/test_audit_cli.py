@@ -11,6 +11,7 @@ import gzip
 import hashlib
 import importlib.util
 import json
+import os
 from pathlib import Path
 from typing import Any
 
@@ -92,8 +93,8 @@ def test_wrong_manifest_checksum_exit_1(tmp_path: Path) -> None:
     assert result.exit_code == 1
     assert stderr_lines(result) == [
         (
-            f"{path}: manifest x.manifest.json key 'sha256': \"abababababababab…\" does not match "
-            f'the payload\'s sha256 "{digest[:16]}…"'
+            f"{path}: manifest x.json.manifest.json key 'sha256': \"abababababababab…\" does "
+            f'not match the payload\'s sha256 "{digest[:16]}…"'
         )
     ]
 
@@ -264,14 +265,15 @@ def test_no_path_exit_2() -> None:
 
 def test_unreadable_file_exit_2(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     path = builders.write_payload(tmp_path / "x.json")
-    real = Path.read_bytes
+    real = os.open
 
-    def deny(self: Path) -> bytes:
-        if self.name == "x.json":
-            raise PermissionError(13, "Permission denied", str(self))
-        return real(self)
+    def deny(file: Any, flags: int, *args: Any, **kwargs: Any) -> int:
+        # Tests run as root here, so a chmod would not deny the read: refuse the open.
+        if Path(file).name == "x.json":
+            raise PermissionError(13, "Permission denied", str(file))
+        return real(file, flags, *args, **kwargs)
 
-    monkeypatch.setattr(Path, "read_bytes", deny)
+    monkeypatch.setattr(os, "open", deny)
     result = run(path)
     assert result.exit_code == 2
     assert stderr_lines(result) == [f"error: {path}: cannot read (Permission denied)"]

@@ -1,7 +1,7 @@
 """Bad inputs through the command line: one exact line, the right exit code, nothing touched.
 
 Every case below first publishes a good payload with a good recipe (``good.toml`` ->
-``out/base.json`` + ``out/base.manifest.json``), then breaks one thing (the recipe, a source
+``out/base.json`` + ``out/base.json.manifest.json``), then breaks one thing (the recipe, a source
 file, the denominators table or the output location) and runs the bad recipe against the
 same output. Each case asserts:
 
@@ -81,7 +81,7 @@ def publish_good(tmp: Path, n: int = 500) -> None:
     code, _, err = invoke("run", "good.toml", "--quiet")
     assert code == 0, err
     assert (tmp / "out" / "base.json").is_file()
-    assert (tmp / "out" / "base.manifest.json").is_file()
+    assert (tmp / "out" / "base.json.manifest.json").is_file()
 
 
 # --------------------------------------------------------------------------------------------
@@ -494,12 +494,12 @@ CASES = [
     # A file of someone else's at the manifest path is never replaced.
     Bad("foreign-file-at-the-manifest-path",
         edits=(('path = "out/base.json"', 'path = "out/notes.json"'),),
-        prepare=write("out/notes.manifest.json", "my own notes\n"),
-        expected="error: {tmp}/out/notes.manifest.json: exists and is not a reduce manifest; "
+        prepare=write("out/notes.json.manifest.json", "my own notes\n"),
+        expected="error: {tmp}/out/notes.json.manifest.json: exists and is not a reduce manifest; "
                  "move it away"),
     Bad("foreign-file-at-the-manifest-path-beside-our-payload",
-        prepare=write("out/base.manifest.json", "my own notes\n"),
-        expected="error: {tmp}/out/base.manifest.json: exists and is not a reduce manifest; "
+        prepare=write("out/base.json.manifest.json", "my own notes\n"),
+        expected="error: {tmp}/out/base.json.manifest.json: exists and is not a reduce manifest; "
                  "move it away"),
     Bad("payload-path-is-a-link-leaving-the-folder", prepare=symlink_out_of_folder,
         expected="error: {tmp}/out: output file 'base.json' resolves outside the output "
@@ -555,7 +555,7 @@ def test_zero_denominator_gives_null_rate_and_is_counted(tmp_path: Path) -> None
     code, out, err = invoke("run", "good.toml")
     assert code == 0, err
     payload = json.loads((tmp_path / "out" / "base.json").read_bytes())
-    manifest = json.loads((tmp_path / "out" / "base.manifest.json").read_bytes())
+    manifest = json.loads((tmp_path / "out" / "base.json.manifest.json").read_bytes())
     cols = payload["columns"]
     labels = payload.get("dictionaries", {}).get("prov")
     prov = [labels[i] for i in cols["prov"]] if labels else cols["prov"]

@@ -40,7 +40,7 @@ def test_run_writes_payload_and_manifest_and_prints_summary(tmp_path: Path) -> N
     assert out.startswith("hexmap: ")
     assert "-> out/hexmap.json" in out
     payload = json.loads((tmp_path / "out" / "hexmap.json").read_bytes())
-    manifest = json.loads((tmp_path / "out" / "hexmap.manifest.json").read_bytes())
+    manifest = json.loads((tmp_path / "out" / "hexmap.json.manifest.json").read_bytes())
     assert payload["format"] == "reduce.columns/1"
     assert manifest["payload"] == "hexmap.json"
     assert manifest["level"] == payload["level"]

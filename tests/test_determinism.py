@@ -121,7 +121,7 @@ def run(folder: Path, out: str, *, threads: int = 2, cache: bool = False
                           timeout=120)
     assert proc.returncode == 0, proc.stderr
     return {r: ((folder / out / f"{r}.json").read_bytes(),
-                json.loads((folder / out / f"{r}.manifest.json").read_bytes()))
+                json.loads((folder / out / f"{r}.json.manifest.json").read_bytes()))
             for r in RECIPES}
 
 

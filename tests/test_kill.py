@@ -57,7 +57,7 @@ def check_folder(folder: Path, name: str, published: set[bytes], old: bytes, new
     """Check the folder right after a kill, recover it, check again; True if the kill left
     a commit half done (a journal to complete)."""
     payload = folder / name
-    manifest = folder / (Path(name).stem + ".manifest.json")
+    manifest = folder / (name + ".manifest.json")
     journal = list(folder.glob(JOURNAL_GLOB))
     # Before recover(): whatever a reader would see now.
     data = payload.read_bytes()

@@ -139,7 +139,7 @@ def test_payload_is_valid_json_whatever_the_category_strings(tmp_path: Path, lay
     assert set(kinds) == set(AWKWARD)  # every string decodes back exactly
     assert set(provs) == set(AWKWARD)
     assert None in levels  # the NaN and infinite means became null, not NaN or Infinity
-    strict_json((tmp_path / "out" / "safe.manifest.json").read_bytes())
+    strict_json((tmp_path / "out" / "safe.json.manifest.json").read_bytes())
 
 
 def test_invalid_utf8_in_a_csv_source_becomes_replacement_characters(tmp_path: Path) -> None:
@@ -285,8 +285,9 @@ def test_run_writes_only_inside_the_output_folder(tmp_path: Path) -> None:
     code, _, err = invoke("run", "work/recipe.toml", "--out", "dest", "--quiet", "--no-cache")
     assert code == 0, err
     assert tree(tmp_path, skip=("dest",)) == before  # nothing beside the recipe, no cache
-    assert sorted(p.name for p in (tmp_path / "dest").iterdir()) == ["safe.json",
-                                                                     "safe.manifest.json"]
+    # The payload, its manifest and the folder's lock file (reduce.publish.LOCK_NAME).
+    assert sorted(p.name for p in (tmp_path / "dest").iterdir()) == [
+        ".reduce.lock", "safe.json", "safe.json.manifest.json"]
 
 
 def test_link_planted_at_the_manifest_path_is_not_followed(tmp_path: Path) -> None:
@@ -298,7 +299,7 @@ def test_link_planted_at_the_manifest_path_is_not_followed(tmp_path: Path) -> No
     outside.mkdir()
     victim = outside / "victim.txt"
     victim.write_text("keep me\n")
-    manifest = tmp_path / "out" / "safe.manifest.json"
+    manifest = tmp_path / "out" / "safe.json.manifest.json"
     manifest.unlink()
     manifest.symlink_to(victim)
     invoke("run", "recipe.toml", "--quiet", "--set", 'budget.max="5MB"')

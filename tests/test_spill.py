@@ -120,9 +120,10 @@ def test_spilled_partial_is_cached_and_refits_give_the_same_payload(
     entries = [d for d in cache.iterdir() if not d.name.startswith(".")]
     assert len(entries) == 1
     names = sorted(f.name for f in entries[0].iterdir())
-    # The spilled rows and their meta, plus the store of measured levels (reduce.levels).
-    assert [n for n in names if not n.startswith(("levels-", "payload-"))] == ["meta.json",
-                                                                              "rows"]
+    # The spilled rows, their meta and checksums (with their locks), plus the store of
+    # measured levels (reduce.levels).
+    assert [n for n in names if not n.startswith(("levels-", "payload-"))] == [
+        ".lock", ".sums-lock", "meta.json", "rows", "sums.json"]
     assert any(n.startswith("levels-") for n in names)
     del first, again
     gc.collect()
@@ -232,6 +233,9 @@ def test_new_source_version_replaces_the_recipes_cache_entry(
     reduce.fit(other)
     first = reduce.fit(path)
     assert len([d for d in cache.iterdir() if not d.name.startswith(".")]) == 2
+    first_payload = first.payload
+    del first  # an entry is not removed while a reader holds it (reduce.cache)
+    gc.collect()
     events = tmp_path / "case" / "events.parquet"
     pl.read_parquet(events).head(4000).write_parquet(events)  # tonight's source
     again = reduce.fit(path)
@@ -239,7 +243,7 @@ def test_new_source_version_replaces_the_recipes_cache_entry(
     entries = [d for d in cache.iterdir() if not d.name.startswith(".")]
     assert len(entries) == 2  # the new entry replaced last night's; the other recipe's stays
     assert reduce.fit(other).partial_from_cache
-    assert again.payload != first.payload
+    assert again.payload != first_payload
 
 
 def test_an_entry_stored_by_another_run_is_left_alone_and_a_damaged_one_replaced(
@@ -259,9 +263,14 @@ def test_an_entry_stored_by_another_run_is_left_alone_and_a_damaged_one_replaced
     assert cache_mod.store(key, replace(stored, root=late), recipe="r") is None
     assert {f: f.stat().st_mtime_ns for f in stored.files} == before
     assert reader.payload(all_levels(reader.recipe.ladder())[0])
-    # A damaged entry (its meta.json cut short) is replaced by the next run.
-    (stored.root / "meta.json").write_text("{")
+    # A damaged entry (its meta.json cut short) is replaced by the next run (once no run
+    # reads it: reduce.cache never removes an entry under its reader).
+    root = stored.root
+    del reader, stored
+    gc.collect()
+    (root / "meta.json").write_text("{")
     again = Reducer(reduce.load_recipe(path))
-    assert isinstance(again.finest(), Spilled) and not again.partial_from_cache
+    with pytest.warns(cache_mod.CacheWarning, match=r"meta.json: checksum mismatch\); removed"):
+        assert isinstance(again.finest(), Spilled) and not again.partial_from_cache
     after = Reducer(reduce.load_recipe(path))
     assert isinstance(after.finest(), Spilled) and after.partial_from_cache

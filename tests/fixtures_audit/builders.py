@@ -77,7 +77,7 @@ def manifest_for(payload_path: Path, **overrides: Any) -> dict[str, Any]:
 
 
 def write_manifest(payload_path: Path, **overrides: Any) -> Path:
-    path = payload_path.with_name(payload_path.stem + ".manifest.json")
+    path = payload_path.with_name(payload_path.name + ".manifest.json")
     return write_bytes(path, dump(manifest_for(payload_path, **overrides)))
 
 
