@@ -237,3 +237,37 @@ def demo_cmd(out_dir: Path, rows: int | None, regenerate: bool, quiet: bool) -> 
     for res in results:
         click.echo(report.run_line(res))
     click.echo(f"demo: {len(results)} recipes in {seconds:.1f} s; payloads in {out_dir}")
+
+
+@main.command("preview")
+@click.argument("payloads", nargs=-1, required=True, type=click.Path(path_type=Path))
+@click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path), default=None,
+              help="Write the pictures and pages here (default: beside each payload).")
+@click.option("--measure", is_flag=True,
+              help="Open each page in headless Chromium; report parse and draw ms (median of "
+                   "3 loads).")
+@click.option("--reader", is_flag=True,
+              help="Also write columns-reader.js, the page-side payload reader.")
+@click.option("--json", "as_json", is_flag=True, help="Print a JSON summary.")
+def preview_cmd(payloads: tuple[Path, ...], out_dir: Path | None, measure: bool, reader: bool,
+                as_json: bool) -> None:
+    """Write STEM.png (a static picture) and STEM.html (a page drawing it) per payload."""
+    from reduce import report
+    from reduce.preview import expand_payloads, write_previews
+
+    files = expand_payloads(payloads)
+    if measure:
+        from reduce.measure import browser_paths
+
+        browser_paths()  # no browser: one line saying how to install it, before any work
+    previews = [write_previews(p, out_dir=out_dir, reader=reader) for p in files]
+    if measure:
+        from reduce.measure import measure_pages
+
+        for p, m in zip(previews, measure_pages([p.html for p in previews])):
+            p.timings = m
+    if as_json:
+        click.echo(report.preview_json(previews).decode())
+    else:
+        for p in previews:
+            click.echo(report.preview_line(p))
