@@ -185,21 +185,36 @@ def process_alive(pid: int) -> bool:
     return True
 
 
-def publish(path: Path, payload: bytes, manifest: Mapping[str, Any]) -> None:
-    """Write ``payload`` at ``path`` and its manifest beside it, as one journalled commit."""
+def publish(path: Path, payload: bytes, manifest: Mapping[str, Any], *,
+            extras: Mapping[str, bytes] | None = None) -> None:
+    """Write ``payload`` at ``path`` and its manifest beside it, as one journalled commit.
+
+    ``extras`` maps further file names in the same folder (e.g. ``x.json.gz``) to their
+    bytes; they are written, synced and renamed in the same commit (after the payload,
+    before the manifest).
+    """
     folder = path.parent
     recover(folder)
     check_target(path)
+    extra_paths = [(resolve_output(folder, name), data) for name, data in (extras or {}).items()]
+    for p, _ in extra_paths:
+        if p.is_dir():
+            raise OutputError(f"{p}: is a folder; move it away")
     man = manifest_path(path)
     man_bytes = orjson.dumps(dict(manifest), option=orjson.OPT_INDENT_2) + b"\n"
+    tmp_extras = [(_write_tmp(p, data), p) for p, data in extra_paths]
     tmp_payload = _write_tmp(path, payload)
     tmp_manifest = _write_tmp(man, man_bytes)
     journal = _journal(path)
-    plan = {"moves": [[tmp_payload.name, path.name], [tmp_manifest.name, man.name]]}
+    # The payload's move stays first: recover() reports the first move as the payload.
+    plan = {"moves": [[tmp_payload.name, path.name], *[[t.name, p.name] for t, p in tmp_extras],
+                      [tmp_manifest.name, man.name]]}
     jtmp = _write_tmp(journal, orjson.dumps(plan))
     os.replace(jtmp, journal)
     _fsync_dir(folder)
     os.replace(tmp_payload, path)
+    for t, p in tmp_extras:
+        os.replace(t, p)
     os.replace(tmp_manifest, man)
     _fsync_dir(folder)
     journal.unlink(missing_ok=True)
