@@ -271,3 +271,12 @@ def preview_cmd(payloads: tuple[Path, ...], out_dir: Path | None, measure: bool,
     else:
         for p in previews:
             click.echo(report.preview_line(p))
+
+
+@main.command("schema")
+@click.argument("kind", type=click.Choice(["recipe", "payload", "manifest"]))
+def schema_cmd(kind: str) -> None:
+    """Print the JSON Schema (draft 2020-12) of a recipe, a payload or a manifest."""
+    from reduce.schema import SCHEMAS
+
+    click.echo(orjson.dumps(SCHEMAS[kind](), option=orjson.OPT_INDENT_2).decode())
