@@ -138,3 +138,21 @@ def measure_pages(pages: Sequence[Path], *, loads: int = LOADS) -> list[dict[str
                 "draw_ms": round(statistics.median(r.draw_ms for r in runs), 3),
             })
     return out
+
+
+def measure_payloads(paths: Sequence[Path]) -> dict[Path, dict[str, Any]]:
+    """Preview pages of ``paths`` written to a temporary folder and measured (see
+    :func:`measure_pages`); files preview cannot draw (CSV, Arrow, other) are left out."""
+    from reduce.preview import PreviewError, write_previews
+
+    browser_paths()  # fail first, with the install line, when there is no browser
+    with tempfile.TemporaryDirectory(prefix="reduce-measure-") as tmp:
+        pages: dict[Path, Path] = {}
+        for i, p in enumerate(paths):
+            try:
+                pages[p] = write_previews(p, out_dir=Path(tmp) / str(i)).html
+            except PreviewError:
+                continue
+        results = measure_pages(list(pages.values())) if pages else []
+        return {p: {k: v for k, v in m.items() if k != "page"}
+                for p, m in zip(pages, results)}

@@ -195,3 +195,55 @@ def test_measure_pages_reports_medians_of_three_loads(pages: dict[str, Path],
     n = _elements(demo_payloads["province-rates"])
     assert (m["loads"], m["surface"], m["drawn"]) == (3, _expected_surface(n), n)
     assert math.isfinite(m["parse_ms"]) and math.isfinite(m["draw_ms"])
+
+
+def test_cli_preview_measure_json_reports_finite_medians(demo_payloads: dict[str, Path],
+                                                         tmp_path: Path) -> None:
+    from click.testing import CliRunner
+
+    from reduce.cli import main
+
+    src = demo_payloads["town-flows"]
+    res = CliRunner().invoke(main, ["preview", str(src), "--out", str(tmp_path), "--measure",
+                                    "--json"])
+    assert res.exit_code == 0, res.output
+    [entry] = json.loads(res.output)
+    m = entry["measured"]
+    assert m["loads"] == 3 and m["drawn"] == _elements(src)
+    assert math.isfinite(m["parse_ms"]) and math.isfinite(m["draw_ms"])
+
+
+def test_audit_measure_adds_timings_and_max_draw_ms_is_a_finding(
+        demo_payloads: dict[str, Path], monkeypatch: pytest.MonkeyPatch) -> None:
+    from click.testing import CliRunner
+
+    from reduce.cli import main
+
+    src = str(demo_payloads["province-rates"])
+    res = CliRunner().invoke(main, ["audit", src, "--measure", "--json"])
+    assert res.exit_code == 0, res.output
+    [f] = json.loads(res.output)["files"]
+    assert f["measured"]["surface"] == "svg" and math.isfinite(f["measured"]["draw_ms"])
+    # The budget check itself, on a fixed timing (timings are never asserted in tests).
+    import reduce.measure
+
+    monkeypatch.setattr(reduce.measure, "measure_payloads", lambda paths: {
+        Path(p): {"surface": "svg", "drawn": 72, "shapes": 25, "loads": 3, "parse_ms": 1.0,
+                  "draw_ms": 12.5} for p in paths})
+    res = CliRunner().invoke(main, ["audit", src, "--measure", "--max-draw-ms", "10",
+                                    "--quiet"])
+    assert res.exit_code == 1
+    assert res.output == f"{src}: page draws in 12.5 ms > --max-draw-ms 10 ms\n"
+    res = CliRunner().invoke(main, ["audit", src, "--measure", "--max-draw-ms", "20",
+                                    "--quiet"])
+    assert res.exit_code == 0 and res.output == ""
+
+
+def test_audit_max_draw_ms_needs_measure(demo_payloads: dict[str, Path]) -> None:
+    from click.testing import CliRunner
+
+    from reduce.cli import main
+
+    res = CliRunner().invoke(main, ["audit", str(demo_payloads["province-rates"]),
+                                    "--max-draw-ms", "5"])
+    assert res.exit_code == 2 and "--max-draw-ms needs --measure" in res.output
