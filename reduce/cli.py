@@ -175,10 +175,12 @@ def run_cmd(recipes: tuple[Path, ...], out_dir: Path | None, write_anyway: bool,
                    "budget.order).")
 @click.option("--all", "every", is_flag=True, help="Evaluate every combination of levels.")
 @click.option("--json", "as_json", is_flag=True, help="Print the frontier as JSON.")
+@click.option("--page", "page", type=click.Path(path_type=Path), default=None,
+              help="Also write an HTML page showing every candidate level with its picture.")
 @_budget_opts
 def ladder_cmd(recipe: Path, order: str | None, every: bool, as_json: bool,
                budget_max: int | None, on: str | None, sets: tuple[str, ...], no_cache: bool,
-               quiet: bool) -> None:
+               quiet: bool, page: Path | None = None) -> None:
     """Show every candidate level evaluated: rows, drawn elements, bytes, fits or not."""
     from reduce import report
     from reduce.pipeline import ladder
@@ -186,14 +188,25 @@ def ladder_cmd(recipe: Path, order: str | None, every: bool, as_json: bool,
     order_list = [a.strip() for a in order.split(",") if a.strip()] if order else None
     if order is not None and not order_list:
         raise RecipeError("--order: list axes separated by commas, e.g. --order top,time,hex")
+    if page is not None:
+        from reduce.ladder_page import check_page_target
+
+        check_page_target(page)
     with _progress(quiet or as_json) as progress:
         res = ladder(recipe, budget=budget_max, on=on, order=order_list,
                      overrides=_overrides(sets), use_cache=not no_cache, every_level=every,
                      progress=progress)
+    if page is not None:
+        from reduce.ladder_page import write_ladder_page
+
+        with _progress(quiet or as_json) as progress:
+            write_ladder_page(res, page, progress=progress)
     if as_json:
         click.echo(report.ladder_json(res).decode())
     else:
         click.echo(report.ladder_table(res))
+        if page is not None:
+            click.echo(f"page: {report.shown(page)}")
     if res.level is None:
         from reduce.pipeline import smallest_message
 

@@ -114,6 +114,11 @@ def load_table(path: Path) -> Table:
             from None
     except OSError as e:
         raise PreviewError(f"{path}: cannot read ({e.strerror})") from None
+    return table_from_bytes(path, data)
+
+
+def table_from_bytes(path: Path, data: bytes) -> Table:
+    """Decode payload bytes; ``path`` names them in messages (and locates the manifest)."""
     try:
         doc = orjson.loads(data)
     except orjson.JSONDecodeError:

@@ -224,3 +224,42 @@ def test_cli_measure_without_a_browser_says_how_to_install_it(
     lines = res.output.strip().splitlines()
     assert len(lines) == 1 and "apt-get install -y chromium chromium-driver" in lines[0]
     assert not (tmp_path / "o").exists()
+
+
+def test_ladder_page_shows_every_candidate_with_its_picture_and_marks_the_chosen(
+        case, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
+    import base64
+    import re
+
+    import numpy as np
+    from conftest import random_events
+
+    events = random_events(np.random.default_rng(3), 3000)
+    recipe = case(events, source={"lat": "lat", "lon": "lon"},
+                  group={"hex": {"levels": [7, 6, 5]}}, measures={"n": "count"},
+                  budget={"max": "6KB", "on": "gzip"})
+    page = tmp_path / "ladder.html"
+    args = ["ladder", str(recipe), "--no-cache", "-q", "--json", "--page", str(page)]
+    res = CliRunner().invoke(main, args)
+    assert res.exit_code == 0, res.output
+    cands = json.loads(res.output)["candidates"]
+    text = page.read_text(encoding="utf-8")
+    assert text.count("class='card") == len(cands)
+    assert text.count("class='card chosen'") == sum(c["chosen"] for c in cands) == 1
+    pngs = re.findall(r"data:image/png;base64,([A-Za-z0-9+/=]+)", text)
+    assert len(pngs) == sum(c["raw"] is not None for c in cands) > 0
+    assert all(base64.b64decode(p).startswith(PNG_SIGNATURE) for p in pngs)
+    for c in cands:
+        assert f"<td>{c['rows']:,}</td>" in text
+    first = page.read_bytes()
+    assert CliRunner().invoke(main, args).exit_code == 0
+    assert page.read_bytes() == first
+
+
+def test_ladder_page_into_a_missing_folder_is_one_line_exit_2(case, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
+    recipe = case({"kind": ["a", "b"]}, group={"category": {"column": "kind"}})
+    res = CliRunner().invoke(main, ["ladder", str(recipe), "--no-cache", "-q",
+                                    "--page", str(tmp_path / "nope" / "l.html")])
+    assert res.exit_code == 2
+    assert res.output.strip().splitlines()[-1] == (
+        f"error: {tmp_path / 'nope'}: no such folder for --page; create it first")
