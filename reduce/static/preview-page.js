@@ -22,11 +22,13 @@ function project(points) {
 
 function num(v) { return typeof v === "number" && Number.isFinite(v) ? v : null; }
 
+const NUMBER = new Intl.NumberFormat("en-US");  // one formatter: toLocaleString builds one per call
+
 function fmt(x) {
   if (x === null || x === undefined) return "-";
   if (typeof x !== "number") return String(x);
-  if (Number.isInteger(x)) return x.toLocaleString("en-US");
-  return Math.abs(x) < 1000 ? x.toPrecision(3) : Math.round(x).toLocaleString("en-US");
+  if (Number.isInteger(x)) return NUMBER.format(x);
+  return Math.abs(x) < 1000 ? x.toPrecision(3) : NUMBER.format(Math.round(x));
 }
 
 function colourAt(spec, t) {
@@ -48,7 +50,7 @@ function mapShapes(spec, data) {
       const rings = g.type === "Polygon" ? g.coordinates
         : g.type === "MultiPolygon" ? g.coordinates.flat() : [];
       shapes.push({ rings, value: spec.value ? num(props[spec.value]) : null,
-                    info: Object.entries(props).map(([k, v]) => k + ": " + fmt(v)).join("\n") });
+                    info: () => Object.entries(props).map(([k, v]) => k + ": " + fmt(v)).join("\n") });
     });
     return shapes;
   }
@@ -67,10 +69,11 @@ function mapShapes(spec, data) {
   for (const [c, e] of cells) {
     const ring = spec.cells[c];
     if (!ring) continue;
-    const info = e.rows === 1
+    // Hover text is built when hovered: formatting every shape's text up front is slow.
+    const info = () => (e.rows === 1
       ? names.map((n) => n + ": " + fmt(cols[n][e.first] instanceof Date
           ? cols[n][e.first].toISOString() : cols[n][e.first])).join("\n")
-      : "hex: " + c + "\nrows: " + e.rows + "\n" + spec.value + " (sum): " + fmt(e.value);
+      : "hex: " + c + "\nrows: " + e.rows + "\n" + spec.value + " (sum): " + fmt(e.value));
     shapes.push({ rings: [ring], value: e.value, info });
   }
   return shapes;
@@ -290,7 +293,9 @@ function hover(plot, marks) {
       if (m.type === "line") continue;
       const b = m.bbox;
       if (x < b[0] || x > b[2] || y < b[1] || y > b[3]) continue;
-      if (m.type === "rect" || probe.isPointInPath(m.path, x, y, "evenodd")) text = m.info;
+      if (m.type === "rect" || probe.isPointInPath(m.path, x, y, "evenodd")) {
+        text = typeof m.info === "function" ? m.info() : m.info;
+      }
     }
     const lines = marks.filter((m) => m.type === "line");
     if (text === null && lines.length && lines[0].pts.length) {
