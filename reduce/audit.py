@@ -512,6 +512,9 @@ def _collect(paths: Sequence[str | os.PathLike[str]]) -> list[tuple[str, Path]]:
             return  # checked beside its payload, never audited as a payload itself
         if path.suffix in _SIBLING_SUFFIXES and path.with_suffix("").is_file():
             return  # a pre-compressed copy (x.json.gz): checked beside its payload
+        if path.suffix in (".png", ".html") and path.with_name(
+                path.stem + MANIFEST_SUFFIX).is_file():
+            return  # a preview of payload x (x.png, x.html), not a file a page loads
         key = path.resolve()
         if key not in seen:
             seen.add(key)

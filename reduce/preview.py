@@ -683,16 +683,21 @@ def write_atomic(path: Path, data: bytes) -> None:
 
 
 def expand_payloads(paths: Sequence[Path]) -> list[Path]:
-    """Payload files named, and in named folders their ``*.json``/``*.geojson`` payloads
-    (manifests left out), sorted; a missing path is a :class:`PreviewError`."""
+    """Payload files named, and in named folders the ``*.json``/``*.geojson`` payloads that
+    ``reduce run`` wrote (a manifest beside them), sorted; a missing path is a
+    :class:`PreviewError`."""
+    from reduce.publish import manifest_path
+
     out: list[Path] = []
     for p in paths:
         if p.is_dir():
             found = sorted(q for q in p.iterdir() if q.is_file()
                            and q.suffix in (".json", ".geojson")
-                           and not q.name.endswith(".manifest.json"))
+                           and not q.name.endswith(".manifest.json")
+                           and manifest_path(q).is_file())
             if not found:
-                raise PreviewError(f"{p}: no payloads (*.json, *.geojson) in this folder")
+                raise PreviewError(f"{p}: no payloads (*.json, *.geojson with a manifest "
+                                   "beside them) in this folder; name payload files instead")
             out.extend(found)
         elif not p.exists():
             raise PreviewError(f"{p}: payload file not found; check the path")

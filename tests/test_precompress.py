@@ -109,3 +109,24 @@ def test_output_flags_must_be_booleans(case, key: str, value) -> None:  # type: 
     recipe = _case(case, **{key: value})
     with pytest.raises(reduce.errors.RecipeError, match=f"output.{key}: must be true or false"):
         reduce.load_recipe(recipe)
+
+
+def test_audit_of_a_folder_leaves_out_the_previews_of_its_payloads(case) -> None:  # type: ignore[no-untyped-def]
+    recipe = _case(case, preview=True, precompress=True)
+    reduce.run(recipe, use_cache=False)
+    out = recipe.parent / "out"
+    assert {p.name for p in out.iterdir()} >= {"case.png", "case.html", "case.json.gz"}
+    (out / "other.png").write_bytes(b"\x89PNG\r\n\x1a\n")  # not a preview: still audited
+    report = audit_paths([out])
+    assert sorted(Path(f.path).name for f in report.files) == ["case.json", "other.png"]
+
+
+def test_preview_of_a_folder_takes_the_payloads_with_a_manifest(case) -> None:  # type: ignore[no-untyped-def]
+    recipe = _case(case)
+    reduce.run(recipe, use_cache=False)
+    out = recipe.parent / "out"
+    (out / "budgets.json").write_text("{}")  # not a payload: left alone
+    res = CliRunner().invoke(main, ["preview", str(out)])
+    assert res.exit_code == 0, res.output
+    assert len(res.output.strip().splitlines()) == 1 and (out / "case.png").is_file()
+    assert not (out / "budgets.png").exists()
