@@ -247,3 +247,13 @@ def test_audit_max_draw_ms_needs_measure(demo_payloads: dict[str, Path]) -> None
     res = CliRunner().invoke(main, ["audit", str(demo_payloads["province-rates"]),
                                     "--max-draw-ms", "5"])
     assert res.exit_code == 2 and "--max-draw-ms needs --measure" in res.output
+
+
+def test_a_rows_layout_payload_is_drawn(tmp_path: Path, driver: Any) -> None:
+    rows = [{"region": r, "kind": k, "reports": n}
+            for r, k, n in [("a", "x", 3), ("a", "y", 5), ("b", "x", 2)]]
+    p = tmp_path / "rows.json"
+    p.write_bytes(orjson.dumps(rows))
+    load = load_page(driver, preview.write_previews(p, out_dir=tmp_path / "o").html)
+    assert (load.drawn, load.surface, load.shapes) == (3, "svg", 3)
+    assert [m for m in load.console if m.startswith("SEVERE")] == []

@@ -130,3 +130,10 @@ def test_preview_of_a_folder_takes_the_payloads_with_a_manifest(case) -> None:  
     assert res.exit_code == 0, res.output
     assert len(res.output.strip().splitlines()) == 1 and (out / "case.png").is_file()
     assert not (out / "budgets.png").exists()
+
+
+def test_output_preview_of_a_csv_layout_is_refused(case) -> None:  # type: ignore[no-untyped-def]
+    recipe = _case(case, preview=True, layout="csv", path="out/case.csv")
+    with pytest.raises(reduce.errors.RecipeError, match=r"output.preview: draws JSON layouts "
+                       r"\(columns, rows, geojson\) only"):
+        reduce.load_recipe(recipe)
