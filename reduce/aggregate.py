@@ -30,6 +30,9 @@ from reduce.keys import (
     INVALID_REASONS,
     TIME,
     coarsen,
+    hidden_below,
+    hidden_hex,
+    is_hidden,
     reason_of_groups,
     scan_keys,
 )
@@ -93,6 +96,12 @@ class Partial:
     @property
     def valid_rows(self) -> int:
         return int(self.table.get_column(N).sum()) if self.table.height else 0
+
+    @property
+    def hidden(self) -> list[str]:
+        """Hidden key columns (exact cells of coarser hex levels, see ``keys.hidden_hex``):
+        grouped on like keys, never shown; :func:`visible` merges them away."""
+        return [c for c in self.table.columns if is_hidden(c)]
 
 
 # Float sums are kept as Int128 fixed-point numbers with 40 fractional bits: integer addition
@@ -222,7 +231,9 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
     lf = src.frame
     schema = lf.collect_schema()
     key_exprs, reason = scan_keys(recipe, lf, label)
-    keys = tuple(e.meta.output_name() for e in key_exprs)
+    names = [e.meta.output_name() for e in key_exprs]
+    keys = tuple(n for n in names if not is_hidden(n))
+    hidden = [n for n in names if is_hidden(n)]
     distinct = [m for m in recipe.measures if m.kind == "distinct"]
     dcols: list[str] = []
     for m in distinct:
@@ -235,7 +246,7 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
               *[pl.col(c).alias(n) for c, n in zip(dcols, dnames)],
               *[pl.col(o.column).alias(f"__in_{o.name}") for o in recipe.measures
                 if o.column is not None and o.kind != "distinct"]]
-    by = [*keys, *([INVALID] if reason is not None else []), *dnames]
+    by = [*keys, *hidden, *([INVALID] if reason is not None else []), *dnames]
     aggs = _scan_aggs(renamed, floats)
 
     def scan(frame: pl.LazyFrame) -> pl.DataFrame:
@@ -287,7 +298,8 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
         rest = scan(src.rows_frame(probe, input_rows - probe))
         both = pl.concat([first, rest], how="vertical_relaxed")
         del first, rest
-        grouped = both.group_by([*keys, INVALID]).agg(_merge_aggs(renamed, both.columns))
+        grouped = both.group_by([*keys, *hidden, INVALID]).agg(
+            _merge_aggs(renamed, both.columns))
     if progress:
         progress("building the finest partial")
     kept = int(grouped.get_column(N).sum()) if grouped.height else 0
@@ -300,7 +312,7 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
     values: dict[str, pl.Series] = {}
     if dnames:
         # One row per finest group; each group's distinct values become (group, value) pairs.
-        table = valid.group_by(list(keys)).agg(
+        table = valid.group_by([*keys, *hidden]).agg(
             [*_merge_aggs(renamed, present), *[pl.col(d) for d in dnames]])
         table = table.with_row_index(GROUP)
         for m in distinct:
@@ -388,6 +400,7 @@ def rollup_spilled_parts(recipe: Recipe, s: Spilled, *, hex_res: int | None,
     (``keys_only``: just the level's distinct keys, which is all a row count needs)."""
     mapping = coarsen(recipe, hex_res=hex_res, time_bin=time_bin, from_hex=s.hex_res,
                       from_time=s.time_bin)
+    group = [*s.keys, *hidden_below(recipe, hex_res)]
     aggs: list[pl.Expr] = []
     if not keys_only:
         renamed, _ = _scan_measures(recipe, set())
@@ -398,11 +411,28 @@ def rollup_spilled_parts(recipe: Recipe, s: Spilled, *, hex_res: int | None,
     for i in range(len(s.parts)):
         lf = s.frame(i)
         if keys_only:
-            yield (lf.select(s.keys).with_columns(mapping).unique()
-                   .collect(engine="streaming"))
+            yield (lf.select([*s.keys, *hidden_below(recipe, None)]).with_columns(mapping)
+                   .select(group).unique().collect(engine="streaming"))
         else:
-            yield (lf.with_columns(mapping).group_by(list(s.keys)).agg(aggs)
+            yield (lf.with_columns(mapping).group_by(group).agg(aggs)
                    .collect(engine="streaming"))
+
+
+def split_cells(recipe: Recipe, s: Spilled, hex_res: int | None) -> pl.Series | None:
+    """The cells at ``hex_res`` whose spilled rows lie in more than one part (None when no
+    cell can: no hex axis, one part, or the coarsest level, which the parts split by).
+
+    Parts split rows by their exact cell at the coarsest hex level; exact cells of finer
+    levels do not nest in those, so a finer cell on a coarsest cell's edge has rows in two
+    parts. One streaming pass over two columns of the spilled rows finds them."""
+    if (not recipe.hex or hex_res is None or len(s.parts) < 2
+            or hex_res == recipe.hex.levels[-1]):
+        return None
+    col = HEX if hex_res == s.hex_res else hidden_hex(hex_res)
+    coarsest = hidden_hex(recipe.hex.levels[-1])
+    return (s.frame().select(pl.col(col).alias(HEX), pl.col(coarsest)).unique()
+            .group_by(HEX).len().filter(pl.col("len") > 1).collect(engine="streaming")
+            .get_column(HEX))
 
 
 def rollup_spilled(recipe: Recipe, s: Spilled, *, hex_res: int | None,
@@ -484,14 +514,15 @@ def _regrouped(recipe: Recipe, p: Partial, mapped: pl.DataFrame,
                keys: Sequence[str] | None = None) -> Partial:
     """Merge the rows of ``mapped`` (``p.table`` with key columns rewritten, same row order)
     that share their keys; ``keys`` selects the key columns to keep (default: all)."""
-    keep = list(p.keys if keys is None else keys)
+    keep = _group_columns(p, keys)
+    visible = tuple(k for k in keep if not is_hidden(k))
     present = [c for c in mapped.columns if c.startswith("__")]
     aggs = _merge_aggs(recipe.measures, present)
     if not p.pairs:
         # The streaming engine groups large tables faster and in less memory than eager.
         table = (mapped.lazy().group_by(keep).agg(aggs).collect(engine="streaming")
                  if keep else mapped.select(aggs))
-        return Partial(keys=tuple(keep), table=table, pairs={}, hex_res=p.hex_res,
+        return Partial(keys=visible, table=table, pairs={}, hex_res=p.hex_res,
                        time_bin=p.time_bin, accounting=p.accounting)
     import numpy as np  # only for distinct measures: keeps start-up light
 
@@ -506,9 +537,14 @@ def _regrouped(recipe: Recipe, p: Partial, mapped: pl.DataFrame,
     lookup = pl.Series(GROUP, remap)
     pairs = {name: _unique_pairs(lookup.gather(pt.get_column(GROUP)), pt.get_column(PAIR))
              for name, pt in p.pairs.items()}
-    return Partial(keys=tuple(keep), table=grouped.drop(ROW), pairs=pairs, values=p.values,
+    return Partial(keys=visible, table=grouped.drop(ROW), pairs=pairs, values=p.values,
                    hex_res=p.hex_res,
                    time_bin=p.time_bin, accounting=p.accounting)
+
+
+def _group_columns(p: Partial, keys: Sequence[str] | None) -> list[str]:
+    """The columns a regroup groups by: ``keys`` as given, or all keys and hidden cells."""
+    return list(keys) if keys is not None else [*p.keys, *p.hidden]
 
 
 def _unique_pairs(groups: pl.Series, values: pl.Series) -> pl.DataFrame:
@@ -526,15 +562,16 @@ def regroup(recipe: Recipe, p: Partial, mapping: Sequence[pl.Expr],
             keys: Sequence[str] | None = None) -> Partial:
     """Apply key mappings (e.g. coarser levels) and merge the groups that then coincide.
 
-    ``keys`` selects the key columns to keep (default: all); dropping a key merges across it.
+    ``keys`` selects the key columns to keep (default: all keys and hidden cells); dropping a
+    key merges across it.
     """
     if mapping and not p.pairs:
         # Map and merge in one streaming query, without materialising the mapped table.
-        keep = list(p.keys if keys is None else keys)
+        keep = _group_columns(p, keys)
         present = [c for c in p.table.columns if c.startswith("__")]
         table = (p.table.lazy().with_columns(mapping).group_by(keep)
                  .agg(_merge_aggs(recipe.measures, present)).collect(engine="streaming"))
-        return replace(p, keys=tuple(keep), table=table)
+        return replace(p, keys=tuple(k for k in keep if not is_hidden(k)), table=table)
     mapped = p.table.with_columns(mapping) if mapping else p.table
     return _regrouped(recipe, p, mapped, keys)
 
@@ -570,9 +607,19 @@ def rollup(recipe: Recipe, p: Partial, *, hex_res: int | None,
                       from_time=p.time_bin)
     if not mapping:
         return p
-    out = regroup(recipe, p, mapping)
+    kept = [c for c in hidden_below(recipe, hex_res if hex_res is not None else p.hex_res)
+            if c in p.table.columns]
+    out = regroup(recipe, p, mapping, [*p.keys, *kept])
     return replace(out, hex_res=hex_res if recipe.hex else None,
                    time_bin=time_bin if recipe.time else None)
+
+
+def visible(recipe: Recipe, p: Partial) -> Partial:
+    """The partial grouped by its keys alone: rows that differ only in hidden cells (a finer
+    cell straddling a coarser cell's edge) merged, as a payload shows them."""
+    if not p.hidden:
+        return p
+    return regroup(recipe, p, [], list(p.keys))
 
 
 def merge(recipe: Recipe, a: Partial, b: Partial) -> Partial:
@@ -610,7 +657,9 @@ def merge(recipe: Recipe, a: Partial, b: Partial) -> Partial:
 def finalize(recipe: Recipe, p: Partial, *, only: Sequence[str] | None = None
              ) -> pl.DataFrame:
     """Key columns, ``__n`` and one column per measure (recipe order), row for row with
-    ``p.table``; ``only`` limits the measures computed (e.g. the one top-k ranks by)."""
+    ``visible(recipe, p).table`` (``p.table`` itself when it has no hidden cells); ``only``
+    limits the measures computed (e.g. the one top-k ranks by)."""
+    p = visible(recipe, p)
     keys = list(p.keys)
     cols: list[pl.Expr] = [pl.col(k) for k in keys] + [pl.col(N)]
     distinct: dict[str, pl.Series] = {}
@@ -641,4 +690,4 @@ def finalize(recipe: Recipe, p: Partial, *, only: Sequence[str] | None = None
 
 
 __all__ = ["HEX", "TIME", "N", "Accounting", "Partial", "Spilled", "finalize", "merge",
-           "regroup", "rollup", "rollup_spilled", "scan_partial"]
+           "regroup", "rollup", "rollup_spilled", "scan_partial", "visible"]

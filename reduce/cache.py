@@ -38,8 +38,31 @@ def cache_dir() -> Path:
     return (Path(xdg) if xdg else Path.home() / ".cache") / "reduce"
 
 
+# The layout of what an entry holds; raised when a partial's columns change meaning (2: exact
+# cells of every hex level kept as hidden key columns), so older entries are never read.
+ENTRY_FORMAT = 2
+
+
+def file_stamp(path: Path | None) -> str:
+    """A file's path, size and modification time (empty for None; "missing" if absent)."""
+    if path is None:
+        return ""
+    try:
+        st = os.stat(path)
+    except OSError:
+        return f"{path}:missing"
+    return f"{path}:{st.st_size}:{st.st_mtime_ns}"
+
+
 def cache_key(recipe: Recipe, fingerprint: str) -> str:
-    h = hashlib.sha256(f"{__version__}\0{recipe.scan_hash}\0{fingerprint}".encode())
+    """An entry's key: the software, the recipe's scan-relevant content, the source's
+    fingerprint and the boundaries files regions are assigned from (a changed polygon file
+    changes every region key)."""
+    shapes = [b for b in (recipe.region.boundaries if recipe.region else None,
+                          recipe.flow.boundaries if recipe.flow else None) if b is not None]
+    stamps = "\0".join(file_stamp(b) for b in shapes)
+    h = hashlib.sha256(f"{__version__}\0{ENTRY_FORMAT}\0{recipe.scan_hash}\0{fingerprint}"
+                       f"\0{stamps}".encode())
     return h.hexdigest()[:40]
 
 

@@ -2,8 +2,8 @@
 
 This module owns how each key is computed from the source columns at the *finest* level of
 its ladder, which rows are invalid for a key (and why), and how a finest key maps to a coarser
-level during roll-up (H3 parent cells, wider time bins). Keys are named ``hex``, ``time``, the
-region column's name and the category columns' names.
+level during roll-up (exact cells of coarser resolutions, wider time bins). Keys are named
+``hex``, ``time``, the region column's name and the category columns' names.
 
 Invalid rows are never dropped silently: each row gets a reason code, and the aggregate stage
 counts rows per code.
@@ -11,6 +11,14 @@ counts rows per code.
 - hex cells are H3 indexes (``UInt64`` inside, 15-character strings in payloads) computed with
   polars-h3, vectorized; coordinates that are null, NaN or out of range (|lat| > 90,
   |lon| > 180) make the row invalid before indexing, since the indexer returns a cell for them.
+- Every hex level is exact: a point counts in the cell that contains it at that resolution
+  (what ``h3.latlng_to_cell`` gives), not in the H3 parent of its finest cell, because parents
+  do not contain their children (a point near a coarse cell's edge can lie in the neighbour of
+  its finest cell's parent). The scan therefore indexes each point at every resolution of the
+  ladder: the finest cell is the ``hex`` key, the coarser ones ride along as hidden key
+  columns ``__hex<r>`` (see :func:`hidden_hex`), and a roll-up to resolution ``r`` takes its
+  cell from ``__hex<r>``. A finest group rarely splits on them (only where its cell straddles
+  a coarser cell's edge), so the partial barely grows.
 - time bins are the start of the bin in the declared IANA zone, truncated on the local clock
   so a day bin starts at local midnight across DST changes and a week bin on Monday
   (ISO 8601). In payloads a bin is its start as integer epoch seconds (UTC).
@@ -31,6 +39,26 @@ from reduce.recipe import Recipe, TimeBin
 HEX = "hex"
 TIME = "time"
 INVALID = "__invalid"
+_HIDDEN_HEX = "__hex"
+
+
+def hidden_hex(res: int) -> str:
+    """The hidden key column holding each point's exact cell at resolution ``res``."""
+    return f"{_HIDDEN_HEX}{res}"
+
+
+def is_hidden(name: str) -> bool:
+    """Whether a column is a hidden exact-cell key (see the module docstring)."""
+    return name.startswith(_HIDDEN_HEX) and name[len(_HIDDEN_HEX):].isdigit()
+
+
+def hidden_below(recipe: Recipe, res: int | None) -> list[str]:
+    """The hidden cell columns a partial at hex resolution ``res`` keeps (None: the finest):
+    those of the ladder's coarser resolutions, so that it can still be rolled up exactly."""
+    if not recipe.hex:
+        return []
+    top = recipe.hex.levels[0] if res is None else res
+    return [hidden_hex(r) for r in recipe.hex.levels[1:] if r < top]
 
 # Reason codes of invalid rows, reported in manifests.
 VALID = 0
@@ -189,10 +217,12 @@ def scan_keys(recipe: Recipe, lf: pl.LazyFrame,
     if time_e is not None:
         keys.append(pl.when(valid).then(time_e).alias(TIME))
     if recipe.hex:
-        cell = plh3.latlng_to_cell(pl.col(src.lat).cast(pl.Float64),  # type: ignore[arg-type]
-                                   pl.col(src.lon).cast(pl.Float64),  # type: ignore[arg-type]
-                                   recipe.hex.levels[0])
-        keys.append(pl.when(valid).then(cell).alias(HEX))
+        # Invalid rows get null coordinates, which the indexer passes over at no cost.
+        lat = pl.when(valid).then(pl.col(src.lat).cast(pl.Float64))
+        lon = pl.col(src.lon).cast(pl.Float64)
+        for i, res in enumerate(recipe.hex.levels):
+            cell = plh3.latlng_to_cell(lat, lon, res)  # type: ignore[arg-type]
+            keys.append(cell.alias(HEX if i == 0 else hidden_hex(res)))
     for name, e in named:
         keys.append(pl.when(valid).then(e).alias(name))
     return keys, reason.alias(INVALID)
@@ -208,11 +238,14 @@ def reason_of_groups(keys: list[str]) -> pl.Expr:
 
 def coarsen(recipe: Recipe, *, hex_res: int | None, time_bin: TimeBin | None,
             from_hex: int | None, from_time: TimeBin | None) -> list[pl.Expr]:
-    """Expressions mapping key columns at one level to a coarser one (identity otherwise)."""
+    """Expressions mapping key columns at one level to a coarser one (identity otherwise).
+
+    A coarser hex level reads the exact cells kept in its hidden column (see
+    :func:`hidden_hex`), so the frame mapped must hold it."""
     out: list[pl.Expr] = []
     if recipe.time and time_bin is not None and time_bin != from_time:
         assert recipe.time is not None
         out.append(truncate(pl.col(TIME), time_bin, recipe.time.zone).alias(TIME))
     if recipe.hex and hex_res is not None and hex_res != from_hex:
-        out.append(plh3.cell_to_parent(HEX, hex_res).alias(HEX))
+        out.append(pl.col(hidden_hex(hex_res)).alias(HEX))
     return out

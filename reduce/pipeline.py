@@ -23,11 +23,11 @@ from typing import Any
 
 import polars as pl
 
-from reduce import aggregate, cache, encode, normalize, prune
+from reduce import aggregate, cache, encode, levels, normalize, prune
 from reduce import budget as bsearch
 from reduce.aggregate import Partial, Spilled
 from reduce.errors import BudgetError, RecipeError
-from reduce.keys import coarsen
+from reduce.keys import HEX, coarsen, hidden_below, is_hidden
 from reduce.normalize import NormalizeReport
 from reduce.publish import manifest_path, resolve_output, sha256
 from reduce.recipe import Budget, Recipe, TimeBin, load_recipe, parse_time_bin
@@ -77,6 +77,7 @@ class FitResult:
     partial_from_cache: bool = False
     accounting: dict[str, int] = field(default_factory=dict)
     reducer: Reducer | None = field(default=None, repr=False)
+    record: levels.Record | None = None  # what the chosen level measured
 
 
 class Reducer:
@@ -102,7 +103,11 @@ class Reducer:
         # distinct keys per part of levels counted from spilled rows, when small enough
         self._keysets: dict[tuple[Any, Any], list[pl.DataFrame]] = {}
         self._region_geoms: dict[tuple[float, int], dict[str, Any]] = {}
+        self._split: dict[int | None, pl.Series | None] = {}
+        self._visibles: dict[tuple[Any, Any], Partial] = {}
         self._boundaries: Any = None
+        self._key: str | None = None
+        self._store: levels.Store | None = None
         n = recipe.normalize
         if n is not None and n.denominators is not None:
             self._den = normalize.load_denominators(n.denominators)
@@ -112,9 +117,7 @@ class Reducer:
         """The finest partial: from the cache, or one scan of the source (kept on disk when
         the source is large and sparse at the finest level: see ``aggregate.Spilled``)."""
         if self._finest is None:
-            self.progress("checking the source")
-            self.source = open_source(self.recipe)
-            key = cache.cache_key(self.recipe, self.source.fingerprint)
+            key = self.entry()
             p = cache.load(key) if self.use_cache else None
             if p is not None:
                 self.partial_from_cache = True
@@ -130,9 +133,66 @@ class Reducer:
                                            spill_dir=spill)
                 if self.use_cache:
                     p = cache.store(key, p, recipe=self.recipe.scan_hash) or p
+                    entry = cache.cache_dir() / key
+                    if self._store is not None and self._store.folder is None \
+                            and entry.is_dir():
+                        self._store.folder = entry  # measurements go with the new entry
             prune.check_rest_label(self.recipe, p.frame() if isinstance(p, Spilled) else p)
             self._finest = p
         return self._finest
+
+    def entry(self) -> str:
+        """The cache key of this recipe over the source as it is now (opens the source:
+        schema checks and fingerprint, no scan)."""
+        if self._key is None:
+            self.progress("checking the source")
+            self.source = open_source(self.recipe)
+            self._key = cache.cache_key(self.recipe, self.source.fingerprint)
+        return self._key
+
+    @property
+    def store(self) -> levels.Store:
+        """The measured levels kept with the cache entry (empty without the cache)."""
+        if self._store is None:
+            key = self.entry()
+            folder = cache.cache_dir() / key if self.use_cache else None
+            self._store = levels.Store(folder if folder is not None and folder.is_dir()
+                                       else None, _store_name(self.recipe))
+            if self._store.records:
+                self.partial_from_cache = True
+        return self._store
+
+    def record(self, level: Mapping[str, Any]) -> levels.Record:
+        """What a level measured: from the store, or from the level built now."""
+        rec = self.store.get(level)
+        if rec is not None:
+            return rec
+        data = self.payload(level)
+        lr = self.rows(level)
+        acc = self.finest().accounting
+        rec = levels.Record(
+            level=dict(level), rows=lr.frame.height, elements=encode.elements(lr.frame),
+            raw=len(data), sha256=sha256(data),
+            accounting={**self.accounting(level), "invalid_by_reason": acc.invalid_by_reason,
+                        "suppressed_cells": lr.suppressed_cells},
+            suppressed_cells=lr.suppressed_cells,
+            denominators=(lr.report.as_dict() if self.recipe.normalize is not None
+                          and self.recipe.normalize.rate_measures else None))
+        self.store.put(rec)
+        return self.store.get(level) or rec
+
+    def remember(self, c: bsearch.Candidate, *, on: Measure | None = None,
+                 limit: int | None = None) -> None:
+        """Keep what a measured candidate showed (exact lengths; a certain lower bound where
+        an exact compression stopped early over ``limit``)."""
+        if c.estimated or c.raw is None:
+            return
+        rec = self.record(c.level)
+        more = levels.Record(level=rec.level, rows=rec.rows, elements=rec.elements,
+                             raw=rec.raw, sha256=rec.sha256, gzip=c.gzip, brotli=c.brotli)
+        if c.note.startswith(">") and on in ("gzip", "brotli") and limit is not None:
+            setattr(more, f"{on}_floor", limit + 1)
+        self.store.put(rec.merge(more))
 
     def partial(self) -> Partial:
         """The finest partial in memory (merged from its files when it was spilled)."""
@@ -172,12 +232,20 @@ class Reducer:
         self._rollups[k] = out
         return out
 
+    def _visible(self, hex_res: int | None, time_text: str | None) -> Partial:
+        """The roll-up at (hex, time) grouped by its keys alone (see ``aggregate.visible``),
+        kept: the ranks of top-k are aligned with its rows."""
+        k = (hex_res, time_text)
+        if k not in self._visibles:
+            self._visibles[k] = aggregate.visible(self.recipe, self._rollup(hex_res, time_text))
+        return self._visibles[k]
+
     def rows(self, level: Mapping[str, Any]) -> LevelRows:
         """Rows of a level (digits do not matter here)."""
         r = self.recipe
         k = (level.get("hex"), level.get("time"), level.get("top"))
         if k not in self._rows:
-            p = self._rollup(level.get("hex"), level.get("time"))
+            p = self._visible(level.get("hex"), level.get("time"))
             if r.top is not None:
                 rk = (level.get("hex"), level.get("time"))
                 if rk not in self._ranks:
@@ -190,6 +258,11 @@ class Reducer:
             self._rows[k] = LevelRows(final, sup_rows, sup_cells, report)
         return self._rows[k]
 
+    def built_rows(self, level: Mapping[str, Any]) -> LevelRows | None:
+        """A level's rows if they were built in this session (None when it came from the
+        store of measured levels)."""
+        return self._rows.get((level.get("hex"), level.get("time"), level.get("top")))
+
     def row_count(self, level: Mapping[str, Any]) -> int:
         """Rows of a level's payload, from its roll-up alone when that is enough.
 
@@ -200,7 +273,9 @@ class Reducer:
         """
         k = (level.get("hex"), level.get("time"), level.get("top"))
         if k not in self._row_counts:
-            self._row_counts[k] = self._count_rows(level)
+            stored = self.store.count(level)
+            self._row_counts[k] = stored if stored is not None else self._count_rows(level)
+            self.store.put_count(level, self._row_counts[k])
         return self._row_counts[k]
 
     def _count_rows(self, level: Mapping[str, Any]) -> int:
@@ -230,9 +305,16 @@ class Reducer:
             return self._histograms[key]
         finest = self.finest()
 
+        cats = [c for c in finest.keys if c not in outer]
+        visible_keys = [*outer, *cats]
+
         def hist(table: pl.DataFrame) -> pl.DataFrame:
-            per = (table.lazy().group_by(outer).agg(pl.len().alias("n")) if outer
-                   else table.lazy().select(pl.len().alias("n")))
+            lf = table.lazy()
+            if any(is_hidden(c) for c in table.columns):
+                # Rows differing only in hidden cells are one payload row.
+                lf = lf.select(visible_keys).unique()
+            per = (lf.group_by(outer).agg(pl.len().alias("n")) if outer
+                   else lf.select(pl.len().alias("n")))
             return (per.group_by("n").agg(pl.len().cast(pl.Int64).alias("groups"))
                     .collect(engine="streaming").with_columns(pl.col("n").cast(pl.Int64)))
 
@@ -246,20 +328,35 @@ class Reducer:
                 _, kh, kt = min(at_hand, key=lambda x: x[0])
                 mapping = coarsen(self.recipe, hex_res=h, time_bin=tb, from_hex=kh,
                                   from_time=parse_time_bin(kt) if kt else None)
-                tables: Any = (ks.lazy().with_columns(mapping).unique()
+                group = [*finest.keys, *hidden_below(self.recipe, h)]
+                tables: Any = (ks.lazy().with_columns(mapping).select(group).unique()
                                .collect(engine="streaming") for ks in self._keysets[(kh, kt)])
             else:
                 tables = aggregate.rollup_spilled_parts(self.recipe, finest, hex_res=h,
                                                         time_bin=tb, keys_only=True)
+            # The parts split rows by their exact cell at the coarsest hex level; a cell of a
+            # finer level that straddles a coarsest cell's edge has rows in two parts. Those
+            # cells' keys are gathered from every part and counted once.
+            if h not in self._split:
+                self._split[h] = aggregate.split_cells(self.recipe, finest, h)
+            split = self._split[h]
             parts: list[pl.DataFrame] = []
+            straddling: list[pl.DataFrame] = []
             kept: list[pl.DataFrame] | None = []
             kept_rows = 0
             for table in tables:
-                parts.append(hist(table))
+                if split is not None and len(split):
+                    across = table.get_column(HEX).is_in(split.implode())
+                    straddling.append(table.filter(across).select(visible_keys).unique())
+                    parts.append(hist(table.filter(~across)))
+                else:
+                    parts.append(hist(table))
                 kept_rows += table.height
                 if kept is not None:
                     kept = kept + [table] if kept_rows <= KEEP_KEY_ROWS else None
                 del table
+            if straddling:
+                parts.append(hist(pl.concat(straddling).unique()))
             if kept is not None:
                 self._keysets[key] = kept
             both = pl.concat(parts)
@@ -276,6 +373,11 @@ class Reducer:
         return any(_finer_or_equal(h, t, hex_res, tb) for h, t in self._rollups)
 
     def accounting(self, level: Mapping[str, Any]) -> dict[str, int]:
+        rec = self.store.get(level)
+        if rec is not None and rec.accounting and self.built_rows(level) is None:
+            keys = ("input_rows", "filtered_rows", "invalid_rows", "unassigned_rows",
+                    "suppressed_rows", "represented_rows")
+            return {k: rec.accounting[k] for k in keys if k in rec.accounting}
         acc = self.finest().accounting
         lr = self.rows(level)
         r = self.recipe
@@ -290,6 +392,10 @@ class Reducer:
     def payload(self, level: Mapping[str, Any]) -> bytes:
         k = bsearch.level_key(level)
         if k not in self._payloads:
+            kept = self.store.payload(level)
+            if kept is not None:
+                self._payloads[k] = kept
+                return kept
             r = self.recipe
             lr = self.rows(level)
             meta: dict[str, Any] = {}
@@ -346,11 +452,47 @@ class Reducer:
     def candidate(self, level: Mapping[str, Any], *, exact: bool, on: Measure | None = None,
                   limit: int | None = None, brotli: bool | None = None) -> bsearch.Candidate:
         """Encode a level and measure it: every measure (``exact``), or only whether it fits
-        ``limit`` on ``on`` (compression stops once the output is over the limit)."""
+        ``limit`` on ``on`` (compression stops once the output is over the limit). A level
+        measured before (the store kept with the cache entry) is not measured again when what
+        was kept settles the question."""
+        c = self._from_store(level, exact=exact, on=on, limit=limit, brotli=brotli)
+        if c is not None:
+            return c
+        c = self._measure(level, exact=exact, on=on, limit=limit, brotli=brotli)
+        self.remember(c, on=on, limit=limit)
+        return c
+
+    def _from_store(self, level: Mapping[str, Any], *, exact: bool, on: Measure | None,
+                    limit: int | None, brotli: bool | None) -> bsearch.Candidate | None:
+        rec = self.store.get(level)
+        if rec is None:
+            return None
+        want_brotli = on == "brotli" or (brotli is True) or (
+            brotli is None and rec.raw <= BROTLI_AUTO_MAX)
+        c = bsearch.Candidate(level=dict(level), rows=rec.rows, elements=rec.elements,
+                              raw=rec.raw, gzip=rec.gzip, brotli=rec.brotli)
+        if exact or on is None or limit is None:
+            if rec.gzip is None or (want_brotli and rec.brotli is None):
+                return None
+            if on is not None and limit is not None:
+                c.fits = (rec.size(on) or 0) <= limit
+                c.floor = rec.size(on)
+            return c
+        verdict = rec.verdict(on, limit)
+        if verdict is None:
+            return None
+        c.fits = verdict
+        c.floor = rec.floor(on)
+        if rec.size(on) is None:
+            c.note = f"> {limit} {on} (measured before)"
+        return c
+
+    def _measure(self, level: Mapping[str, Any], *, exact: bool, on: Measure | None,
+                 limit: int | None, brotli: bool | None) -> bsearch.Candidate:
         data = self.payload(level)
-        lr = self.rows(level)
-        c = bsearch.Candidate(level=dict(level), rows=lr.frame.height,
-                              elements=encode.elements(lr.frame), raw=len(data))
+        rec = self.record(level)
+        c = bsearch.Candidate(level=dict(level), rows=rec.rows, elements=rec.elements,
+                              raw=len(data))
         if exact or on is None or limit is None:
             s = measure_all(data, brotli=True if on == "brotli" else brotli)
             c.gzip, c.brotli = s.gzip, s.brotli
@@ -362,7 +504,7 @@ class Reducer:
             c.floor = look.floor
             if look.fits is not None:
                 c.fits = look.fits
-                c.note = "judged by a fast compression"
+                c.note = QUICK_NOTE
                 return c
             ok, size = fits_on(data, on, limit)
             c.fits = ok
@@ -405,6 +547,15 @@ def _finer_or_equal(h: int | None, t: str | None, hex_res: int | None,
         tt = parse_time_bin(t)
         return tt == tb or tb.nests(tt)
     return True
+
+
+def _store_name(recipe: Recipe) -> str:
+    """The name of a recipe's store of measured levels: everything that shapes its payloads
+    besides the scan (whose entry holds the store) and the budget, including the size and
+    modification time of its denominators file."""
+    n = recipe.normalize
+    den = n.denominators.path if n is not None and n.denominators is not None else None
+    return levels.store_hash(recipe.document, f"{recipe.file.parent}\0{cache.file_stamp(den)}")
 
 
 def _as_recipe(recipe: Recipe | str | Path, overrides: Mapping[str, str] | None) -> Recipe:
@@ -514,17 +665,62 @@ def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
             # A quick judgement was wrong (never seen in practice): measure everything.
             return fit(r, exact=True, every_level=every_level, progress=progress,
                        reducer=red)
+        if b is not None:
+            chosen_level = _confirm_neighbours(ladder_axes, chosen_level, cands, evaluate,
+                                               b.on, b.max)
+            chosen = evaluate(chosen_level, force_exact=True)
         chosen.chosen = True
     candidates = list(cands.values())
+    if chosen_level is not None and red.use_cache:
+        red.record(chosen_level)
+        red.store.keep_payload(chosen_level, red.payload(chosen_level))
+    red.store.save()
     frontier = bsearch.frontier_frame(candidates, axes)
     result = FitResult(recipe=r, level=chosen_level, candidates=candidates, frontier=frontier,
                        chosen=chosen, budget=b,
                        payload=red.payload(chosen_level) if chosen_level else None,
-                       rows=red.rows(chosen_level) if chosen_level else None,
+                       rows=red.built_rows(chosen_level) if chosen_level else None,
+                       record=red.record(chosen_level) if chosen_level else None,
                        source=red.source, partial_from_cache=red.partial_from_cache,
                        accounting=red.accounting(chosen_level) if chosen_level else {},
                        reducer=red)
     return result
+
+
+# The note of a verdict taken from a fast compression (an estimate, marked so in manifests).
+QUICK_NOTE = "judged by a fast compression"
+
+# A one-step-finer neighbour of the chosen level judged only by cheap evidence, and within
+# this fraction of the budget, is measured exactly before the choice stands.
+NEIGHBOUR_MARGIN = 0.10
+
+
+def _confirm_neighbours(ladder: Mapping[str, Sequence[Any]], chosen: dict[str, Any],
+                        cands: Mapping[tuple[Any, ...], bsearch.Candidate],
+                        evaluate: Callable[..., bsearch.Candidate], on: Measure,
+                        limit: int) -> dict[str, Any]:
+    """Measure exactly every one-step-finer neighbour of ``chosen`` whose verdict came from a
+    fast compression or a row count and whose size could be within 10% of the budget; move
+    to one that fits (and check its neighbours in turn)."""
+    current = dict(chosen)
+    moved = True
+    while moved:
+        moved = False
+        for axis, lv in ladder.items():
+            i = list(lv).index(current[axis])
+            if i == 0:
+                continue
+            finer = {**current, axis: lv[i - 1]}
+            c = cands.get(bsearch.level_key(finer))
+            if c is None or c.size(on) is not None:
+                continue  # not evaluated, or its length on the budget's measure is exact
+            if c.floor is not None and c.floor > (1 + NEIGHBOUR_MARGIN) * limit:
+                continue
+            if evaluate(finer, force_exact=True).fits:
+                current = finer
+                moved = True
+                break
+    return current
 
 
 def _same_levels(a: Recipe, b: Recipe) -> bool:
@@ -590,8 +786,7 @@ def build_manifest(result: FitResult, path: Path) -> dict[str, Any]:
     sizes = Sizes(raw=len(data), gzip=int(c.gzip), brotli=c.brotli)
     red = result.reducer
     assert result.level is not None and red is not None
-    lr = red.rows(result.level)
-    acc = red.finest().accounting
+    rec = red.record(result.level)
     src = result.source
     m: dict[str, Any] = {
         "format": "reduce.manifest/1",
@@ -613,16 +808,17 @@ def build_manifest(result: FitResult, path: Path) -> dict[str, Any]:
         "frontier": [
             {"level": c.level, "rows": c.rows, "raw": c.raw, "gzip": c.gzip,
              "brotli": c.brotli, "fits": c.fits, "chosen": c.chosen,
-             **({"estimated": True} if c.estimated else {})}
+             **({"estimated": True} if c.estimated or c.note == QUICK_NOTE else {})}
             for c in result.candidates],
-        "accounting": {**result.accounting, "invalid_by_reason": acc.invalid_by_reason,
-                       "suppressed_cells": lr.suppressed_cells},
+        "accounting": {**result.accounting,
+                       "invalid_by_reason": rec.accounting.get("invalid_by_reason", {}),
+                       "suppressed_cells": rec.suppressed_cells},
         "source": {"fingerprint": src.fingerprint if src else None,
                    "files": len(src.files) if src else None,
                    "format": src.format if src else None},
     }
     if r.normalize is not None and r.normalize.rate_measures:
-        m["denominators"] = lr.report.as_dict()
+        m["denominators"] = rec.denominators
     return m
 
 
@@ -660,6 +856,9 @@ def run(recipe: Recipe | str | Path, *, out_dir: Path | None = None,
     manifest = build_manifest(result, path)
     assert result.payload is not None
     publish_run(r, path, result.payload, manifest)
+    red = result.reducer
+    if red is not None:
+        red.store.save()
     return RunResult(result, path, manifest)
 
 

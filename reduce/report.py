@@ -52,17 +52,17 @@ def run_notes(res: RunResult) -> list[str]:
     """Extra lines worth a user's attention (unmatched denominator keys)."""
     f = res.fit
     out = []
-    if f.rows is not None and f.recipe.normalize and f.recipe.normalize.rate_measures:
-        rep = f.rows.report
-        if rep.rows_without_denominator:
-            out.append(f"  {rep.rows_without_denominator:,} rows have no usable denominator "
+    rep = f.record.denominators if f.record is not None else None
+    if rep and f.recipe.normalize and f.recipe.normalize.rate_measures:
+        if rep["rows_without_denominator"]:
+            out.append(f"  {rep['rows_without_denominator']:,} rows have no usable denominator "
                        "(rate left empty)")
-        if rep.data_only_keys:
+        if rep["data_only_keys"]:
             out.append(f"  keys in the data but not in the denominators: "
-                       f"{_few(rep.data_only_keys)}")
-        if rep.denominator_only_keys:
+                       f"{_few(rep['data_only_keys'])}")
+        if rep["denominator_only_keys"]:
             out.append(f"  keys in the denominators but not in the data: "
-                       f"{_few(rep.denominator_only_keys)}")
+                       f"{_few(rep['denominator_only_keys'])}")
     return out
 
 

@@ -310,11 +310,11 @@ def test_distinct_after_rollup_equals_direct_distinct_not_sum_of_children(
     up = aggregate.rollup(recipe, p, hex_res=6, time_bin=parse_time_bin("1d"))
     got = {(int(r["time"].timestamp()), h3.int_to_str(r["hex"]), r["region"]): r["d"]
            for r in aggregate.finalize(recipe, up).to_dicts()}
-    # Direct: distinct non-null who per (UTC day, H3 parent at 6 of the res-9 cell, region).
+    # Direct: distinct non-null who per (UTC day, res-6 cell indexed directly, region).
     direct: dict[tuple[Any, ...], set[int]] = defaultdict(set)
     for s, reg, w, la, lo in visits:
         key = (int((T0 + dt.timedelta(seconds=s - s % 86400)).timestamp()),
-               h3.cell_to_parent(h3.latlng_to_cell(la, lo, 9), 6), reg)
+               h3.latlng_to_cell(la, lo, 6), reg)
         direct[key]  # every group exists, even with only null values
         if w is not None:
             direct[key].add(w)

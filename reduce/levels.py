@@ -1,0 +1,203 @@
+"""The store of measured levels: what every candidate level measured, kept with the cached
+partial, so that a re-fit at another budget, measure or order is a lookup.
+
+A *record* holds what a level's verdict and manifest need: its rows and drawn elements, its
+exact raw, gzip and brotli lengths where they were measured (or lower bounds where a
+compression stopped early or a fast compression settled it), the payload's sha256, the
+accounting and the normalisation report. The chosen level's payload bytes are kept too, when
+small (:data:`PAYLOAD_MAX`), so publishing it again needs no roll-up.
+
+A store belongs to one cache entry (one scan of one version of the source) and one recipe
+*besides its budget*: its file name carries a hash of everything else that shapes a payload
+(the recipe's validated content without ``[budget]``, and the denominators file's size and
+modification time). Records are plain JSON, written atomically; a store that does not parse,
+or a kept payload whose sha256 does not match its record, is treated as absent, never used.
+This module imports no polars, so a re-fit that finds everything here does not load it.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import os
+import zlib
+from collections.abc import Mapping
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+import orjson
+
+FORMAT = "reduce.levels/1"
+PAYLOAD_MAX = 16_000_000  # raw bytes of a payload kept with its record
+
+
+def level_id(level: Mapping[str, Any]) -> str:
+    """A level as a stable text key: its axes and values, sorted by axis."""
+    return orjson.dumps(sorted(level.items())).decode()
+
+
+@dataclass
+class Record:
+    """What one level measured (see the module docstring)."""
+
+    level: dict[str, Any]
+    rows: int
+    elements: int
+    raw: int
+    sha256: str
+    gzip: int | None = None
+    brotli: int | None = None
+    # Lower bounds where the exact length was not taken (a compression that stopped once over
+    # a limit, or a fast compression's floor); never above the exact length.
+    gzip_floor: int | None = None
+    brotli_floor: int | None = None
+    accounting: dict[str, Any] = field(default_factory=dict)
+    suppressed_cells: int = 0
+    denominators: dict[str, Any] | None = None
+    payload: str | None = None  # file name of the kept payload bytes, in the store's folder
+
+    def size(self, on: str) -> int | None:
+        """The exact length on a measure, if measured."""
+        return {"raw": self.raw, "gzip": self.gzip, "brotli": self.brotli}[on]
+
+    def floor(self, on: str) -> int | None:
+        """The best lower bound on a measure: the exact length, or a recorded floor."""
+        exact = self.size(on)
+        if exact is not None:
+            return exact
+        return {"raw": self.raw, "gzip": self.gzip_floor, "brotli": self.brotli_floor}[on]
+
+    def verdict(self, on: str, limit: int) -> bool | None:
+        """Whether the level fits ``limit`` on ``on``, when this record settles it."""
+        exact = self.size(on)
+        if exact is not None:
+            return exact <= limit
+        low = self.floor(on)
+        if low is not None and low > limit:
+            return False
+        return None
+
+    def merge(self, other: Record) -> Record:
+        """Both records' knowledge of one level (exact lengths win; the higher floor)."""
+        def best(a: int | None, b: int | None) -> int | None:
+            return b if a is None else a
+
+        def high(a: int | None, b: int | None) -> int | None:
+            vals = [v for v in (a, b) if v is not None]
+            return max(vals) if vals else None
+
+        return Record(level=self.level, rows=self.rows, elements=self.elements, raw=self.raw,
+                      sha256=self.sha256, gzip=best(self.gzip, other.gzip),
+                      brotli=best(self.brotli, other.brotli),
+                      gzip_floor=high(self.gzip_floor, other.gzip_floor),
+                      brotli_floor=high(self.brotli_floor, other.brotli_floor),
+                      accounting=self.accounting or other.accounting,
+                      suppressed_cells=self.suppressed_cells,
+                      denominators=self.denominators if self.denominators is not None
+                      else other.denominators,
+                      payload=self.payload or other.payload)
+
+
+def store_hash(document: Mapping[str, Any], extra: str = "") -> str:
+    """The hash naming a recipe's store: its validated content without ``budget``."""
+    doc = {k: v for k, v in document.items() if k != "budget"}
+    text = orjson.dumps(doc, option=orjson.OPT_SORT_KEYS, default=str)
+    return hashlib.sha256(text + b"\0" + extra.encode()).hexdigest()[:24]
+
+
+class Store:
+    """The measured levels of one recipe over one cache entry (see the module docstring)."""
+
+    def __init__(self, folder: Path | None, name: str) -> None:
+        self.folder = folder
+        self.name = name
+        self.records: dict[str, Record] = {}
+        self.counts: dict[str, int] = {}  # rows of levels counted, not measured
+        self.dirty = False
+        if folder is not None:
+            self._load()
+
+    @property
+    def path(self) -> Path | None:
+        return None if self.folder is None else self.folder / f"levels-{self.name}.json"
+
+    def _load(self) -> None:
+        p = self.path
+        assert p is not None
+        try:
+            doc = orjson.loads(p.read_bytes())
+            if doc.get("format") != FORMAT:
+                return
+            records = {level_id(r["level"]): Record(**r) for r in doc["records"]}
+            counts = {str(k): int(v) for k, v in doc.get("counts", {}).items()}
+        except (OSError, orjson.JSONDecodeError, TypeError, KeyError, AttributeError,
+                ValueError):
+            return
+        self.records, self.counts = records, counts
+
+    def get(self, level: Mapping[str, Any]) -> Record | None:
+        return self.records.get(level_id(level))
+
+    def put(self, rec: Record) -> None:
+        k = level_id(rec.level)
+        old = self.records.get(k)
+        new = rec if old is None or old.sha256 != rec.sha256 else rec.merge(old)
+        if old != new:
+            self.records[k] = new
+            self.dirty = True
+
+    def count(self, level: Mapping[str, Any]) -> int | None:
+        rec = self.get(level)
+        return rec.rows if rec is not None else self.counts.get(level_id(level))
+
+    def put_count(self, level: Mapping[str, Any], rows: int) -> None:
+        k = level_id(level)
+        if self.counts.get(k) != rows:
+            self.counts[k] = rows
+            self.dirty = True
+
+    def payload(self, level: Mapping[str, Any]) -> bytes | None:
+        """The kept payload bytes of a level, if kept and intact (sha256 checked)."""
+        rec = self.get(level)
+        if rec is None or rec.payload is None or self.folder is None:
+            return None
+        try:
+            data = zlib.decompress((self.folder / rec.payload).read_bytes())
+        except (OSError, zlib.error):
+            return None
+        return data if hashlib.sha256(data).hexdigest() == rec.sha256 else None
+
+    def keep_payload(self, level: Mapping[str, Any], data: bytes) -> None:
+        """Keep a level's payload bytes beside its record (small payloads only)."""
+        rec = self.get(level)
+        if (self.folder is None or rec is None or len(data) > PAYLOAD_MAX
+                or self.payload(level) is not None):
+            return
+        name = f"payload-{self.name}-{rec.sha256[:20]}.z"
+        if _write_atomic(self.folder / name, zlib.compress(data, 1)):
+            rec.payload = name
+            self.dirty = True
+
+    def save(self) -> None:
+        """Write the store if it changed (atomically; failures are ignored: a cache)."""
+        p = self.path
+        if p is None or not self.dirty or not p.parent.is_dir():
+            return
+        doc = {"format": FORMAT,
+               "records": [asdict(r) for _, r in sorted(self.records.items())],
+               "counts": dict(sorted(self.counts.items()))}
+        if _write_atomic(p, orjson.dumps(doc)):
+            self.dirty = False
+
+
+def _write_atomic(path: Path, data: bytes) -> bool:
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    try:
+        tmp.write_bytes(data)
+        os.replace(tmp, path)
+        return True
+    except OSError:
+        with contextlib.suppress(OSError):
+            tmp.unlink()
+        return False
