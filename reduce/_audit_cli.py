@@ -81,7 +81,7 @@ def audit(
         if max_draw_ms is not None and not measure:
             raise AuditError("--max-draw-ms needs --measure (the pages are drawn to time them)")
         if measure:
-            from reduce.measure import browser_paths
+            from reduce.browser import browser_paths
 
             browser_paths()  # no browser: the line saying how to install it, exit 2
         report = audit_paths(
@@ -95,7 +95,7 @@ def audit(
         if measure:
             from pathlib import Path
 
-            from reduce.measure import measure_payloads
+            from reduce.browser import measure_payloads
 
             got = measure_payloads([Path(f.path) for f in report.files])
             measured = {str(p): m for p, m in got.items()}

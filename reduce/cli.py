@@ -270,12 +270,12 @@ def preview_cmd(payloads: tuple[Path, ...], out_dir: Path | None, measure: bool,
 
     files = expand_payloads(payloads)
     if measure:
-        from reduce.measure import browser_paths
+        from reduce.browser import browser_paths
 
         browser_paths()  # no browser: one line saying how to install it, before any work
     previews = [write_previews(p, out_dir=out_dir, reader=reader) for p in files]
     if measure:
-        from reduce.measure import measure_pages
+        from reduce.browser import measure_pages
 
         for p, m in zip(previews, measure_pages([p.html for p in previews])):
             p.timings = m

@@ -17,7 +17,7 @@ one picture for it by a fixed rule, the same for the PNG and the page:
 payload, same bytes). :func:`render_html` writes a page with no network access that
 carries the payload bytes inline, decodes them with the page-side reader
 (``reduce/static/columns-reader.js``) and draws the view on SVG, a 2D canvas or WebGL by
-element count; :mod:`reduce.measure` opens such pages in headless Chromium.
+element count; :mod:`reduce.browser` opens such pages in headless Chromium.
 """
 
 from __future__ import annotations

@@ -19,7 +19,7 @@ import orjson
 import pytest
 
 from reduce import preview
-from reduce.measure import browser, browser_paths, load_page, measure_pages
+from reduce.browser import browser, browser_paths, load_page, measure_pages
 
 try:
     browser_paths()
@@ -225,9 +225,9 @@ def test_audit_measure_adds_timings_and_max_draw_ms_is_a_finding(
     [f] = json.loads(res.output)["files"]
     assert f["measured"]["surface"] == "svg" and math.isfinite(f["measured"]["draw_ms"])
     # The budget check itself, on a fixed timing (timings are never asserted in tests).
-    import reduce.measure
+    import reduce.browser
 
-    monkeypatch.setattr(reduce.measure, "measure_payloads", lambda paths: {
+    monkeypatch.setattr(reduce.browser, "measure_payloads", lambda paths: {
         Path(p): {"surface": "svg", "drawn": 72, "shapes": 25, "loads": 3, "parse_ms": 1.0,
                   "draw_ms": 12.5} for p in paths})
     res = CliRunner().invoke(main, ["audit", src, "--measure", "--max-draw-ms", "10",
