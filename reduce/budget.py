@@ -27,6 +27,8 @@ import polars as pl
 
 from reduce.sizes import format_size
 
+# The search is generic over any axes (levels.Level is the pipeline's typed level; the search
+# and its tests also run on plain mappings of abstract axes).
 Level = dict[str, Any]
 
 
@@ -47,6 +49,9 @@ class Candidate:
     # A lower bound of the size on the budget's measure (the exact size when measured, or
     # what a fast compression implies): its bytes per row bound the rows-only estimates.
     floor: int | None = None
+    # The best guess of that size when it was not measured exactly (a fast compression's
+    # length, or rows times bytes per row): decides which close calls are measured again.
+    guess: int | None = None
 
     def size(self, on: str) -> int | None:
         return getattr(self, on)  # type: ignore[no-any-return]
@@ -114,7 +119,7 @@ def search(ladder: Mapping[str, Sequence[Any]], order: Sequence[str],
 
 def all_levels(ladder: Mapping[str, Sequence[Any]]) -> list[Level]:
     """Every combination of levels, finest first (for ``reduce ladder --all``)."""
-    out: list[Level] = [{}]
+    out: list[dict[str, Any]] = [{}]
     for axis, levels in ladder.items():
         out = [{**lv, axis: x} for lv in out for x in levels]
     return out

@@ -1,5 +1,10 @@
-"""The store of measured levels: what every candidate level measured, kept with the cached
-partial, so that a re-fit at another budget, measure or order is a lookup.
+"""Levels: the :class:`Level` type, and the store of what every candidate level measured,
+kept with the cached partial, so that a re-fit at another budget, measure or order is a
+lookup.
+
+A level is one setting of every ladder axis of a recipe (:data:`AXES`, declared here once):
+a hex resolution, a time bin, a top-k, a simplification tolerance, coordinate digits and
+decimal digits; axes a recipe does not have are absent.
 
 A *record* holds what a level's verdict and manifest need: its rows and drawn elements, its
 exact raw, gzip and brotli lengths where they were measured (or lower bounds where a
@@ -18,15 +23,86 @@ This module imports no polars, so a re-fit that finds everything here does not l
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import hashlib
 import os
 import zlib
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
 import orjson
+
+# The ladder axes, in the order levels are shown and keyed.
+AXES: tuple[str, ...] = ("hex", "time", "top", "simplify", "coords", "digits")
+_TYPES: dict[str, tuple[type, ...]] = {"hex": (int,), "time": (str,), "top": (int,),
+                                       "simplify": (int, float), "coords": (int,),
+                                       "digits": (int,)}
+
+
+@dataclass(frozen=True, slots=True, eq=False)
+class Level(Mapping[str, Any]):
+    """One setting of every ladder axis a recipe has (None: the recipe lacks that axis).
+
+    Read-only and hashable; it reads like a mapping of the axes it has (``level["hex"]``,
+    ``level.get("time")``, ``dict(level)``), in :data:`AXES` order."""
+
+    hex: int | None = None
+    time: str | None = None
+    top: int | None = None
+    simplify: float | None = None
+    coords: int | None = None
+    digits: int | None = None
+
+    @classmethod
+    def of(cls, m: Mapping[str, Any]) -> Level:
+        """A level from a mapping of axis names to values (a Level is returned as it is)."""
+        if isinstance(m, Level):
+            return m
+        unknown = [k for k in m if k not in AXES]
+        if unknown:
+            raise ValueError(f"not a ladder axis: {', '.join(map(str, unknown))}; "
+                             f"the axes are {', '.join(AXES)}")
+        for k, v in m.items():
+            if v is not None and (isinstance(v, bool) or not isinstance(v, _TYPES[k])):
+                raise ValueError(f"level axis {k!r}: {v!r} is not a {_TYPES[k][0].__name__}")
+        return cls(**dict(m))
+
+    def with_(self, axis: str, value: Any) -> Level:
+        """The same level with one axis set to another value."""
+        return dataclasses.replace(self, **{axis: value})
+
+    @property
+    def key(self) -> tuple[tuple[str, Any], ...]:
+        return tuple((a, getattr(self, a)) for a in AXES if getattr(self, a) is not None)
+
+    def __getitem__(self, axis: str) -> Any:
+        v = getattr(self, axis, None) if axis in AXES else None
+        if v is None:
+            raise KeyError(axis)
+        return v
+
+    def __iter__(self) -> Iterator[str]:
+        return (a for a in AXES if getattr(self, a) is not None)
+
+    def __len__(self) -> int:
+        return sum(getattr(self, a) is not None for a in AXES)
+
+    def __eq__(self, other: object) -> bool:
+        """Equal to a level, or to a plain mapping, with the same axes and values."""
+        if isinstance(other, Level):
+            return self.key == other.key
+        if isinstance(other, Mapping):
+            return dict(self) == dict(other)
+        return NotImplemented
+
+    def __hash__(self) -> int:
+        return hash(self.key)
+
+    def __repr__(self) -> str:
+        inner = ", ".join(f"{a}={v!r}" for a, v in self.key)
+        return f"Level({inner})"
 
 FORMAT = "reduce.levels/1"
 PAYLOAD_MAX = 16_000_000  # raw bytes of a payload kept with its record
@@ -34,7 +110,7 @@ PAYLOAD_MAX = 16_000_000  # raw bytes of a payload kept with its record
 
 def level_id(level: Mapping[str, Any]) -> str:
     """A level as a stable text key: its axes and values, sorted by axis."""
-    return orjson.dumps(sorted(level.items())).decode()
+    return orjson.dumps(sorted(dict(level).items())).decode()
 
 
 @dataclass
@@ -52,6 +128,11 @@ class Record:
     # a limit, or a fast compression's floor); never above the exact length.
     gzip_floor: int | None = None
     brotli_floor: int | None = None
+    # Lengths of the fast compressions that steer the search (zlib level 1 and 6 in gzip
+    # framing, brotli quality 5): evidence only, never published (see sizes.quick_verdict).
+    gzip_fast: int | None = None
+    gzip_mid: int | None = None
+    brotli_fast: int | None = None
     accounting: dict[str, Any] = field(default_factory=dict)
     suppressed_cells: int = 0
     denominators: dict[str, Any] | None = None
@@ -92,6 +173,9 @@ class Record:
                       brotli=best(self.brotli, other.brotli),
                       gzip_floor=high(self.gzip_floor, other.gzip_floor),
                       brotli_floor=high(self.brotli_floor, other.brotli_floor),
+                      gzip_fast=best(self.gzip_fast, other.gzip_fast),
+                      gzip_mid=best(self.gzip_mid, other.gzip_mid),
+                      brotli_fast=best(self.brotli_fast, other.brotli_fast),
                       accounting=self.accounting or other.accounting,
                       suppressed_cells=self.suppressed_cells,
                       denominators=self.denominators if self.denominators is not None

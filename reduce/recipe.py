@@ -413,6 +413,25 @@ def load_recipe(path: str | Path, *, overrides: Mapping[str, str] | None = None)
     return recipe
 
 
+def with_budget(recipe: Recipe, *, max: int | None = None, on: str | None = None,
+                order: Sequence[str] | None = None) -> Recipe:
+    """The recipe with budget values replaced, as typed values validated like the file's
+    ``[budget]`` table (no TOML text, no second read of the file)."""
+    doc = dict(recipe.document)
+    b = dict(doc.get("budget") or {})
+    if max is not None:
+        b["max"] = max
+    if on is not None:
+        b["on"] = on
+    if order is not None:
+        b["order"] = list(order)
+    budget = _parse_budget(_Ctx(recipe.file), b, list(recipe.ladder()))
+    doc["budget"] = b
+    canonical = orjson.dumps(doc, option=orjson.OPT_SORT_KEYS, default=str)
+    return dataclasses.replace(recipe, budget=budget, document=doc,
+                               content_hash=hashlib.sha256(canonical).hexdigest())
+
+
 def parse_override(text: str) -> tuple[str, str]:
     """Split ``key.path=value`` (as given to ``--set``)."""
     key, sep, value = text.partition("=")

@@ -75,7 +75,8 @@ def run_json(res: RunResult) -> dict[str, Any]:
     f = res.fit
     c = f.chosen
     assert c is not None
-    return {"recipe": f.recipe.name, "path": str(res.path), "level": f.level, "rows": c.rows,
+    return {"recipe": f.recipe.name, "path": str(res.path),
+            "level": dict(f.level) if f.level is not None else None, "rows": c.rows,
             "elements": c.elements, "bytes": {"raw": c.raw, "gzip": c.gzip,
                                               "brotli": c.brotli},
             "over_budget": res.over_budget, "accounting": f.accounting,
@@ -121,8 +122,8 @@ def ladder_json(result: FitResult) -> bytes:
         "recipe": result.recipe.name,
         "budget": ({"max": result.budget.max, "on": result.budget.on,
                     "order": list(result.budget.order)} if result.budget else None),
-        "chosen": result.level,
-        "candidates": [{"level": c.level, "rows": c.rows, "elements": c.elements,
+        "chosen": dict(result.level) if result.level is not None else None,
+        "candidates": [{"level": dict(c.level), "rows": c.rows, "elements": c.elements,
                         "raw": c.raw, "gzip": c.gzip, "brotli": c.brotli, "fits": c.fits,
                         "chosen": c.chosen} for c in result.candidates],
         "partial_from_cache": result.partial_from_cache,

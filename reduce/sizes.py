@@ -125,10 +125,30 @@ _MID_FLOOR = 0.85
 @dataclass(frozen=True, slots=True)
 class QuickLook:
     """What a fast compression says: ``fits`` (None: too close to call, measure exactly) and
-    ``floor``, a lower bound of the exact size (``fast`` times :data:`_FAST_FLOOR`)."""
+    ``floor``, a lower bound of the exact size (``fast`` times :data:`_FAST_FLOOR`); ``fast``
+    and ``mid`` are the fast compressions' lengths (``mid``: zlib level 6, when taken), from
+    which :func:`quick_verdict` gives the same answer for any other limit."""
 
     fits: bool | None
     floor: int
+    fast: int | None = None
+    mid: int | None = None
+
+
+def quick_verdict(on: Measure, limit: int, fast: int, mid: int | None = None) -> QuickLook:
+    """The verdict of :func:`quick_look` from the fast compressions' lengths alone."""
+    floor = int(fast * _FAST_FLOOR)
+    if fast <= limit:
+        return QuickLook(True, floor, fast, mid)
+    if floor > limit:
+        return QuickLook(False, floor, fast, mid)
+    if mid is not None:
+        floor = max(floor, int(mid * _MID_FLOOR))
+        if mid <= limit:
+            return QuickLook(True, floor, fast, mid)
+        if floor > limit:
+            return QuickLook(False, floor, fast, mid)
+    return QuickLook(None, floor, fast, mid)
 
 
 def quick_look(data: bytes, on: Measure, limit: int) -> QuickLook:
@@ -139,21 +159,13 @@ def quick_look(data: bytes, on: Measure, limit: int) -> QuickLook:
         fast = len(zlib.compress(data, 1)) + 18 - 6  # gzip framing instead of zlib framing
     else:
         fast = len(brotli.compress(data, quality=5))
-    floor = int(fast * _FAST_FLOOR)
-    if fast <= limit:
-        return QuickLook(True, floor)
-    if floor > limit:
-        return QuickLook(False, floor)
-    if on == "gzip":
+    look = quick_verdict(on, limit, fast)
+    if look.fits is None and on == "gzip":
         # Too close to call at level 1: level 6 takes a fraction of level 9's time and comes
         # within a few percent of it.
         mid = len(zlib.compress(data, 6)) + 18 - 6
-        floor = max(floor, int(mid * _MID_FLOOR))
-        if mid <= limit:
-            return QuickLook(True, floor)
-        if floor > limit:
-            return QuickLook(False, floor)
-    return QuickLook(None, floor)
+        look = quick_verdict(on, limit, fast, mid)
+    return look
 
 
 def quick_fits(data: bytes, on: Measure, limit: int) -> bool | None:

@@ -14,7 +14,7 @@ import pytest
 from conftest import random_events, write_case
 
 import reduce
-from reduce import levels, pipeline
+from reduce import levels, manifest, measure, pipeline, tables
 from reduce.budget import all_levels
 
 
@@ -34,9 +34,10 @@ def _no_building(monkeypatch: pytest.MonkeyPatch) -> None:
     def fail(*_a: object, **_k: object) -> None:
         raise AssertionError("a level was built, though the store settles it")
 
-    monkeypatch.setattr(pipeline.Reducer, "rows", fail)
-    monkeypatch.setattr(pipeline, "measure_all", fail)
-    monkeypatch.setattr(pipeline, "quick_look", fail)
+    monkeypatch.setattr(tables.LevelTables, "rows", fail)
+    monkeypatch.setattr(measure, "measure_all", fail)
+    monkeypatch.setattr(measure, "quick_look", fail)
+    monkeypatch.setattr(manifest, "measure_all", fail)
 
 
 @pytest.mark.parametrize("budget", ["24KB", "40KB", "120KB", "1MB"])

@@ -1,0 +1,283 @@
+"""Measuring levels: a level's payload bytes, its sizes (exact, or the cheap evidence that
+steers the search), and the store of what every level measured, kept with the cache entry
+(:mod:`reduce.levels`), which a re-fit reads instead of measuring again.
+
+A :class:`Measurer` is the level tables of :mod:`reduce.tables` plus bytes: it encodes a
+level's rows (with GeoJSON geometry where the layout asks for it), measures them as a
+candidate of the budget search, and records what it measured.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Mapping
+from pathlib import Path
+from typing import Any
+
+import polars as pl
+
+from reduce import budget as bsearch
+from reduce import cache, encode, levels
+from reduce.levels import Level
+from reduce.publish import sha256
+from reduce.recipe import Recipe
+from reduce.sizes import (
+    BROTLI_AUTO_MAX,
+    Measure,
+    fits_on,
+    measure_all,
+    quick_look,
+    quick_verdict,
+)
+from reduce.tables import LevelTables, Progress
+
+# The note of a verdict taken from a fast compression (an estimate, marked so in manifests).
+QUICK_NOTE = "judged by a fast compression"
+
+
+class Measurer(LevelTables):
+    """The levels of one recipe, encoded and measured (see the module docstring)."""
+
+    def __init__(self, recipe: Recipe, *, use_cache: bool = True,
+                 progress: Progress | None = None) -> None:
+        super().__init__(recipe, use_cache=use_cache, progress=progress)
+        self._payloads: dict[tuple[Any, ...], bytes] = {}
+        self._hex_geoms: dict[int, dict[str, Any]] = {}
+        self._region_geoms: dict[tuple[float, int], dict[str, Any]] = {}
+        self._boundaries: Any = None
+        self._fast: dict[tuple[Any, ...], tuple[Any, int | None, int | None]] = {}
+        self._store: levels.Store | None = None
+
+    # -- the store of measured levels -------------------------------------------------------
+    @property
+    def store(self) -> levels.Store:
+        """The measured levels kept with the cache entry (empty without the cache)."""
+        if self._store is None:
+            key = self.entry()
+            folder = cache.cache_dir() / key if self.use_cache else None
+            self._store = levels.Store(folder if folder is not None and folder.is_dir()
+                                       else None, _store_name(self.recipe))
+            if self._store.records:
+                self.partial_from_cache = True
+        return self._store
+
+    def _known_count(self, level: Mapping[str, Any]) -> int | None:
+        return self.store.count(level)
+
+    def _note_count(self, level: Mapping[str, Any], rows: int) -> None:
+        self.store.put_count(level, rows)
+
+    def _entry_stored(self, entry: Path) -> None:
+        if self._store is not None and self._store.folder is None:
+            self._store.folder = entry  # measurements go with the new entry
+
+    def record(self, level: Mapping[str, Any]) -> levels.Record:
+        """What a level measured: from the store, or from the level built now."""
+        rec = self.store.get(level)
+        if rec is not None:
+            return rec
+        data = self.payload(level)
+        lr = self.rows(level)
+        acc = self.finest().accounting
+        rec = levels.Record(
+            level=dict(level), rows=lr.frame.height, elements=encode.elements(lr.frame),
+            raw=len(data), sha256=sha256(data),
+            accounting={**self.accounting(level), "invalid_by_reason": acc.invalid_by_reason,
+                        "suppressed_cells": lr.suppressed_cells},
+            suppressed_cells=lr.suppressed_cells,
+            denominators=(lr.report.as_dict() if self.recipe.normalize is not None
+                          and self.recipe.normalize.rate_measures else None))
+        self.store.put(rec)
+        return self.store.get(level) or rec
+
+    def remember(self, c: bsearch.Candidate, *, on: Measure | None = None,
+                 limit: int | None = None) -> None:
+        """Keep what a measured candidate showed (exact lengths; a certain lower bound where
+        an exact compression stopped early over ``limit``)."""
+        if c.estimated or c.raw is None:
+            return
+        rec = self.record(c.level)
+        more = levels.Record(level=rec.level, rows=rec.rows, elements=rec.elements,
+                             raw=rec.raw, sha256=rec.sha256, gzip=c.gzip, brotli=c.brotli)
+        fast_on, fast, mid = self._fast.get(bsearch.level_key(c.level), (None, None, None))
+        if fast_on == "gzip":
+            more.gzip_fast, more.gzip_mid = fast, mid
+        elif fast_on == "brotli":
+            more.brotli_fast = fast
+        if c.note.startswith(">") and on in ("gzip", "brotli") and limit is not None:
+            setattr(more, f"{on}_floor", limit + 1)
+        self.store.put(rec.merge(more))
+
+    def accounting(self, level: Mapping[str, Any]) -> dict[str, int]:
+        """The level's accounting block: from the store when the level was not built now."""
+        rec = self.store.get(level)
+        if rec is not None and rec.accounting and self.built_rows(level) is None:
+            keys = ("input_rows", "filtered_rows", "invalid_rows", "unassigned_rows",
+                    "suppressed_rows", "represented_rows")
+            return {k: rec.accounting[k] for k in keys if k in rec.accounting}
+        return super().accounting(level)
+
+    # -- bytes ------------------------------------------------------------------------------
+    def payload(self, level: Mapping[str, Any]) -> bytes:
+        k = bsearch.level_key(level)
+        if k not in self._payloads:
+            kept = self.store.payload(level)
+            if kept is not None:
+                self._payloads[k] = kept
+                return kept
+            r = self.recipe
+            lr = self.rows(level)
+            meta: dict[str, Any] = {}
+            if r.time:
+                meta["time_zone"] = r.time.zone
+            if r.top:
+                meta["rest"] = r.top.rest
+            if r.normalize and r.normalize.rate_measures:
+                meta["per"] = r.normalize.per
+            geometry = self._geometry(level) if r.output.layout == "geojson" else None
+            self._payloads[k] = encode.encode(r, lr.frame, level=level,
+                                              accounting=self.accounting(level),
+                                              digits=int(level["digits"]), meta=meta,
+                                              geometry=geometry)
+        return self._payloads[k]
+
+    def _geometry(self, level: Mapping[str, Any]) -> Callable[[pl.DataFrame], list[Any]]:
+        """A function giving each payload row its GeoJSON geometry at this level."""
+        from reduce import geojson
+
+        r = self.recipe
+        coords = int(level.get("coords", r.output.coordinate_digits[0]))
+        if r.hex:
+            cells: dict[str, Any] = self._hex_geoms.setdefault(coords, {})
+
+            def hexes(plain: pl.DataFrame) -> list[Any]:
+                out = []
+                for c in plain.get_column("hex").to_list():
+                    g = cells.get(c)
+                    if g is None:
+                        g = cells[c] = geojson.hex_polygon(c, coords)
+                    out.append(g)
+                return out
+
+            return hexes
+        assert r.region is not None and r.region.boundaries is not None
+        tol = float(level.get("simplify", 0.0))
+        key = (tol, coords)
+        if key not in self._region_geoms:
+            from reduce import geo, topology
+
+            assert r.region.id_property is not None
+            b = self._boundaries or geo.load_boundaries(r.region.boundaries,
+                                                        r.region.id_property)
+            self._boundaries = b
+            shapes = topology.simplify_shared(b, tol) if tol > 0 else b.geoms
+            shapes = topology.quantize(shapes, coords)
+            self._region_geoms[key] = {i: geojson.polygon_geometry(g, coords)
+                                       for i, g in zip(b.ids, shapes)}
+        by_id = self._region_geoms[key]
+        col = r.region.column
+        return lambda plain: [by_id.get(v) for v in plain.get_column(col).to_list()]
+
+    # -- candidates -------------------------------------------------------------------------
+    def candidate(self, level: Mapping[str, Any], *, exact: bool, on: Measure | None = None,
+                  limit: int | None = None, brotli: bool | None = None) -> bsearch.Candidate:
+        """Encode a level and measure it: every measure (``exact``), or only whether it fits
+        ``limit`` on ``on`` (compression stops once the output is over the limit). A level
+        measured before (the store kept with the cache entry) is not measured again when what
+        was kept settles the question."""
+        c = self._from_store(level, exact=exact, on=on, limit=limit, brotli=brotli)
+        if c is not None:
+            return c
+        c = self._measure(level, exact=exact, on=on, limit=limit, brotli=brotli)
+        self.remember(c, on=on, limit=limit)
+        return c
+
+    def _from_store(self, level: Mapping[str, Any], *, exact: bool, on: Measure | None,
+                    limit: int | None, brotli: bool | None) -> bsearch.Candidate | None:
+        rec = self.store.get(level)
+        if rec is None:
+            return None
+        want_brotli = on == "brotli" or (brotli is True) or (
+            brotli is None and rec.raw <= BROTLI_AUTO_MAX)
+        c = bsearch.Candidate(level=Level.of(level), rows=rec.rows, elements=rec.elements,
+                              raw=rec.raw, gzip=rec.gzip, brotli=rec.brotli)
+        if exact or on is None or limit is None:
+            if rec.gzip is None or (want_brotli and rec.brotli is None):
+                return None
+            if on is not None and limit is not None:
+                c.fits = (rec.size(on) or 0) <= limit
+                c.floor = rec.size(on)
+            return c
+        verdict = rec.verdict(on, limit)
+        if verdict is not None:
+            c.fits = verdict
+            c.floor = rec.floor(on)
+            if rec.size(on) is None:
+                c.note = f"> {limit} {on} (measured before)"
+            return c
+        fast = rec.gzip_fast if on == "gzip" else rec.brotli_fast if on == "brotli" else None
+        if fast is None:
+            return None
+        look = quick_verdict(on, limit, fast, rec.gzip_mid if on == "gzip" else None)
+        if look.fits is None:
+            return None
+        c.fits, c.floor, c.note = look.fits, look.floor, QUICK_NOTE
+        c.guess = look.mid or look.fast
+        return c
+
+    def _measure(self, level: Mapping[str, Any], *, exact: bool, on: Measure | None,
+                 limit: int | None, brotli: bool | None) -> bsearch.Candidate:
+        data = self.payload(level)
+        rec = self.record(level)
+        c = bsearch.Candidate(level=Level.of(level), rows=rec.rows, elements=rec.elements,
+                              raw=len(data))
+        if exact or on is None or limit is None:
+            s = measure_all(data, brotli=True if on == "brotli" else brotli)
+            c.gzip, c.brotli = s.gzip, s.brotli
+            if on is not None and limit is not None:
+                c.fits = s.on(on) <= limit
+                c.floor = s.on(on)
+        else:
+            look = quick_look(data, on, limit)
+            c.floor = look.floor
+            c.guess = look.mid or look.fast
+            self._fast[bsearch.level_key(level)] = (on, look.fast, look.mid)
+            if look.fits is not None:
+                c.fits = look.fits
+                c.note = QUICK_NOTE
+                return c
+            ok, size = fits_on(data, on, limit)
+            c.fits = ok
+            if on != "raw":
+                setattr(c, on, size)
+            if size is None:
+                c.note = f"> {limit} {on} (stopped early)"
+            else:
+                c.floor = size
+        return c
+
+    def forget(self, level: Mapping[str, Any]) -> None:
+        """Drop a level's rows and bytes (a level over the budget is not needed again)."""
+        self._payloads.pop(bsearch.level_key(level), None)
+        super().forget(level)
+
+    def estimate(self, level: Mapping[str, Any], on: Measure, per_row: float,
+                 limit: int) -> bsearch.Candidate:
+        """A candidate judged from its row count alone (see :meth:`row_count`): ``per_row``
+        bytes (the least seen on measured levels) times its rows; used only to skip levels
+        far over the budget."""
+        rows = self.row_count(level)
+        c = bsearch.Candidate(level=Level.of(level), rows=rows, elements=rows, raw=None)
+        c.fits = False
+        c.estimated = True
+        c.guess = int(per_row * rows)
+        c.note = f"~{int(per_row * rows):,} {on} bytes estimated from rows: over {limit:,}"
+        return c
+
+
+def _store_name(recipe: Recipe) -> str:
+    """The name of a recipe's store of measured levels: everything that shapes its payloads
+    besides the scan (whose entry holds the store) and the budget, including the size and
+    modification time of its denominators file."""
+    n = recipe.normalize
+    den = n.denominators.path if n is not None and n.denominators is not None else None
+    return levels.store_hash(recipe.document, f"{recipe.file.parent}\0{cache.file_stamp(den)}")
