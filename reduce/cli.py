@@ -262,8 +262,9 @@ def demo_cmd(out_dir: Path, rows: int | None, regenerate: bool, quiet: bool) -> 
 @click.option("--reader", is_flag=True,
               help="Also write columns-reader.js, the page-side payload reader.")
 @click.option("--json", "as_json", is_flag=True, help="Print a JSON summary.")
+@click.option("--quiet", "-q", is_flag=True, help="No progress output.")
 def preview_cmd(payloads: tuple[Path, ...], out_dir: Path | None, measure: bool, reader: bool,
-                as_json: bool) -> None:
+                as_json: bool, quiet: bool = False) -> None:
     """Write STEM.png (a static picture) and STEM.html (a page drawing it) per payload."""
     from reduce import report
     from reduce.preview import expand_payloads, write_previews
@@ -273,12 +274,17 @@ def preview_cmd(payloads: tuple[Path, ...], out_dir: Path | None, measure: bool,
         from reduce.browser import browser_paths
 
         browser_paths()  # no browser: one line saying how to install it, before any work
-    previews = [write_previews(p, out_dir=out_dir, reader=reader) for p in files]
-    if measure:
-        from reduce.browser import measure_pages
+    with _progress(quiet or as_json) as progress:
+        previews = []
+        for i, p in enumerate(files):
+            progress(f"drawing {p.name} ({i + 1} of {len(files)})")
+            previews.append(write_previews(p, out_dir=out_dir, reader=reader))
+        if measure:
+            from reduce.browser import measure_pages
 
-        for p, m in zip(previews, measure_pages([p.html for p in previews])):
-            p.timings = m
+            progress(f"timing {len(previews)} pages in headless Chromium (3 loads each)")
+            for p, m in zip(previews, measure_pages([p.html for p in previews])):
+                p.timings = m
     if as_json:
         click.echo(report.preview_json(previews).decode())
     else:
