@@ -50,6 +50,11 @@ __all__ = ["audit"]
 @click.option("--json", "as_json", is_flag=True, help="Print the report as JSON.")
 @click.option("--markdown", is_flag=True, help="Print the report as Markdown for a pull request.")
 @click.option("--quiet", "-q", is_flag=True, help="No report; only problem lines and exit code.")
+@click.option("--measure", is_flag=True,
+              help="Draw each payload's preview page in headless Chromium and report parse "
+                   "and draw ms (median of 3 loads).")
+@click.option("--max-draw-ms", type=click.FloatRange(min=0, min_open=True), default=None,
+              metavar="MS", help="With --measure: a file whose page draws slower is a finding.")
 @click.pass_context
 def audit(
     ctx: click.Context,
@@ -62,6 +67,8 @@ def audit(
     as_json: bool,
     markdown: bool,
     quiet: bool,
+    measure: bool,
+    max_draw_ms: float | None,
 ) -> None:
     """Audit payload files (or folders, walked recursively) before publishing them.
 
@@ -70,9 +77,16 @@ def audit(
     link (1 Mbit/s assumed); checks reduce.columns/1 payloads against their contract and
     manifest; applies byte budgets.
     """
+    measured: dict[str, dict[str, object]] = {}
     try:
         if as_json and markdown:
             raise AuditError("--json and --markdown cannot be combined; choose one")
+        if max_draw_ms is not None and not measure:
+            raise AuditError("--max-draw-ms needs --measure (the pages are drawn to time them)")
+        if measure:
+            from reduce.browser import browser_paths
+
+            browser_paths()  # no browser: the line saying how to install it, exit 2
         report = audit_paths(
             paths,
             budget=budget,
@@ -81,22 +95,53 @@ def audit(
             total=total,
             brotli=force_brotli,
         )
+        if measure:
+            from pathlib import Path
+
+            from reduce.browser import measure_payloads
+
+            got = measure_payloads([Path(f.path) for f in report.files])
+            measured = {str(p): m for p, m in got.items()}
     except ReduceError as err:
         click.echo(f"error: {err.message}", err=True)
         ctx.exit(err.exit_code)
         return
 
+    slow = [(path, m) for path, m in measured.items()
+            if max_draw_ms is not None and float(m["draw_ms"]) > max_draw_ms]  # type: ignore[arg-type]
     if not quiet:
         if as_json:
-            click.echo(report_to_json(report).decode("utf-8"), nl=False)
-        elif markdown:
-            click.echo(render_markdown(report), nl=False)
+            import orjson
+
+            doc = orjson.loads(report_to_json(report))
+            for entry in doc.get("files", []):
+                if entry.get("path") in measured:
+                    entry["measured"] = measured[entry["path"]]
+            if measure:
+                doc["max_draw_ms"] = max_draw_ms
+                doc["findings"] += [{"path": path, "message": _slow_message(m, max_draw_ms)}
+                                    for path, m in slow]
+                doc["ok"] = doc["ok"] and not slow
+            click.echo(orjson.dumps(doc, option=orjson.OPT_INDENT_2).decode("utf-8"))
         else:
-            click.echo(render_table(report), nl=False)
+            text = render_markdown(report) if markdown else render_table(report)
+            click.echo(text, nl=False)
+            if measured:
+                click.echo("measured in headless Chromium (median of 3 loads of the preview "
+                           "page):")
+                for path, m in measured.items():
+                    click.echo(f"  {path}: {m['surface']}, {m['drawn']:,} elements, parse "
+                               f"{m['parse_ms']:.1f} ms, draw {m['draw_ms']:.1f} ms")
     for commit in report.commits:
         if commit.completed:  # said in one line; an uncompleted one is a finding below
             click.echo(f"{commit.journal}: {commit.message}", err=True)
     for path, message in report.findings:
         click.echo(f"{path}: {message}", err=True)
-    if not report.ok:
+    for path, m in slow:
+        click.echo(f"{path}: {_slow_message(m, max_draw_ms)}", err=True)
+    if not report.ok or slow:
         ctx.exit(1)
+
+
+def _slow_message(m: dict[str, object], limit: float | None) -> str:
+    return f"page draws in {float(m['draw_ms']):.1f} ms > --max-draw-ms {limit:g} ms"  # type: ignore[arg-type]

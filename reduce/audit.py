@@ -564,6 +564,16 @@ def _candidates(budgets: Budgets, path: Path, given: str) -> list[str]:
     return out
 
 
+def _is_preview(path: Path) -> bool:
+    """Whether ``x.png``/``x.html`` sits beside a payload ``x.<ext>`` that has a manifest
+    (``x.<ext>.manifest.json``, or the older ``x.manifest.json``)."""
+    import glob
+
+    stem = glob.escape(path.stem)
+    return (any(path.parent.glob(f"{stem}.*{MANIFEST_SUFFIX}"))
+            or path.with_name(path.stem + MANIFEST_SUFFIX).is_file())
+
+
 def _collect(paths: Sequence[str | os.PathLike[str]]) -> list[tuple[str, Path]]:
     """Expand folders (recursively, sorted, hidden entries skipped); drop manifests."""
     if not paths:
@@ -574,6 +584,10 @@ def _collect(paths: Sequence[str | os.PathLike[str]]) -> list[tuple[str, Path]]:
     def add(given: str, path: Path) -> None:
         if path.name.endswith(MANIFEST_SUFFIX):
             return  # checked beside its payload, never audited as a payload itself
+        if path.suffix in _SIBLING_SUFFIXES and path.with_suffix("").is_file():
+            return  # a pre-compressed copy (x.json.gz): checked beside its payload
+        if path.suffix in (".png", ".html") and _is_preview(path):
+            return  # a preview of payload x (x.png, x.html), not a file a page loads
         key = path.resolve()
         if key not in seen:
             seen.add(key)
@@ -651,6 +665,7 @@ def _audit_file(
             f"brotli not measured (file over {format_size(BROTLI_AUTO_MAX_BYTES)}; use --brotli)"
         )
     _check_manifest(path, data, out, gzip_size, brotli_size, manifest)
+    _check_siblings(path, data, out, manifest[1])
 
     verdict = None
     if rule is not None:
@@ -1535,6 +1550,46 @@ def _check_manifest(
         out.problems.append(
             f"{where} key 'rows': {_show(manifest['rows'])}, but the payload has {out.rows} rows"
         )
+
+
+_SIBLING_SUFFIXES = {".gz": "gzip", ".br": "brotli"}
+
+
+def _check_siblings(path: Path, data: bytes, out: _Findings,
+                    manifest_bytes: bytes | None) -> None:
+    """Pre-compressed copies beside a payload (x.json.gz, x.json.br) must decompress to it
+    (Python's gzip and brotli modules), and their lengths must be the manifest's sizes."""
+    import contextlib
+    import gzip
+    import zlib
+
+    import brotli
+
+    manifest: Any = None
+    with contextlib.suppress(ValueError, TypeError):
+        manifest = orjson.loads(manifest_bytes) if manifest_bytes is not None else None
+    sizes = manifest.get("bytes") if isinstance(manifest, dict) else None
+    listed = manifest.get("precompressed") if isinstance(manifest, dict) else None
+    for suffix, measure in _SIBLING_SUFFIXES.items():
+        sib = path.with_name(path.name + suffix)
+        if not sib.is_file():
+            if isinstance(listed, dict) and measure in listed:
+                out.problems.append(f"{sib.name}: listed in the manifest but missing; run "
+                                    "reduce run again")
+            continue
+        packed = _read(sib, str(sib))
+        try:
+            unpacked = gzip.decompress(packed) if measure == "gzip" else brotli.decompress(packed)
+        except (OSError, EOFError, zlib.error, brotli.error) as e:
+            out.problems.append(f"{sib.name}: not valid {measure} ({e}); run reduce run again")
+            continue
+        if unpacked != data:
+            out.problems.append(f"{sib.name}: does not decompress to the payload; run reduce "
+                                "run again or delete it")
+        elif isinstance(sizes, dict) and isinstance(listed, dict) and \
+                sizes.get(measure) != len(packed):
+            out.problems.append(f"{sib.name}: {len(packed):,} bytes, but the manifest's "
+                                f"bytes.{measure} is {_show(sizes.get(measure))}")
 
 
 def _over_message(verdict: Verdict, *, files: int | None = None) -> str:

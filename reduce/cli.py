@@ -248,10 +248,12 @@ def run_cmd(recipes: tuple[Path, ...], out_dir: Path | None, write_anyway: bool,
                    "budget.order).")
 @click.option("--all", "every", is_flag=True, help="Evaluate every combination of levels.")
 @click.option("--json", "as_json", is_flag=True, help="Print the frontier as JSON.")
+@click.option("--page", "page", type=click.Path(path_type=Path), default=None,
+              help="Also write an HTML page showing every candidate level with its picture.")
 @_budget_opts
 def ladder_cmd(recipe: Path, order: str | None, every: bool, as_json: bool,
                budget_max: int | None, on: str | None, sets: tuple[str, ...], no_cache: bool,
-               quiet: bool) -> None:
+               quiet: bool, page: Path | None = None) -> None:
     """Show every candidate level evaluated: rows, drawn elements, bytes, fits or not."""
     from reduce import report
     from reduce.pipeline import ladder
@@ -259,14 +261,25 @@ def ladder_cmd(recipe: Path, order: str | None, every: bool, as_json: bool,
     order_list = [a.strip() for a in order.split(",") if a.strip()] if order else None
     if order is not None and not order_list:
         raise RecipeError("--order: list axes separated by commas, e.g. --order top,time,hex")
+    if page is not None:
+        from reduce.ladder_page import check_page_target
+
+        check_page_target(page)
     with _progress(quiet or as_json) as progress:
         res = ladder(recipe, budget=budget_max, on=on, order=order_list,
                      overrides=_overrides(sets), use_cache=not no_cache, every_level=every,
                      progress=progress)
+    if page is not None:
+        from reduce.ladder_page import write_ladder_page
+
+        with _progress(quiet or as_json) as progress:
+            write_ladder_page(res, page, progress=progress)
     if as_json:
         click.echo(report.ladder_json(res).decode())
     else:
         click.echo(report.ladder_table(res))
+        if page is not None:
+            click.echo(f"page: {report.shown(page)}")
     if res.level is None:
         from reduce.pipeline import smallest_message
 
@@ -306,3 +319,52 @@ def demo_cmd(out_dir: Path, rows: int | None, regenerate: bool, quiet: bool) -> 
     for res in results:
         click.echo(report.run_line(res))
     click.echo(f"demo: {len(results)} recipes in {seconds:.1f} s; payloads in {out_dir}")
+
+
+@main.command("preview")
+@click.argument("payloads", nargs=-1, required=True, type=click.Path(path_type=Path))
+@click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path), default=None,
+              help="Write the pictures and pages here (default: beside each payload).")
+@click.option("--measure", is_flag=True,
+              help="Open each page in headless Chromium; report parse and draw ms (median of "
+                   "3 loads).")
+@click.option("--reader", is_flag=True,
+              help="Also write columns-reader.js, the page-side payload reader.")
+@click.option("--json", "as_json", is_flag=True, help="Print a JSON summary.")
+@click.option("--quiet", "-q", is_flag=True, help="No progress output.")
+def preview_cmd(payloads: tuple[Path, ...], out_dir: Path | None, measure: bool, reader: bool,
+                as_json: bool, quiet: bool = False) -> None:
+    """Write STEM.png (a static picture) and STEM.html (a page drawing it) per payload."""
+    from reduce import report
+    from reduce.preview import expand_payloads, write_previews
+
+    files = expand_payloads(payloads)
+    if measure:
+        from reduce.browser import browser_paths
+
+        browser_paths()  # no browser: one line saying how to install it, before any work
+    with _progress(quiet or as_json) as progress:
+        previews = []
+        for i, p in enumerate(files):
+            progress(f"drawing {p.name} ({i + 1} of {len(files)})")
+            previews.append(write_previews(p, out_dir=out_dir, reader=reader))
+        if measure:
+            from reduce.browser import measure_pages
+
+            progress(f"timing {len(previews)} pages in headless Chromium (3 loads each)")
+            for p, m in zip(previews, measure_pages([p.html for p in previews])):
+                p.timings = m
+    if as_json:
+        click.echo(report.preview_json(previews).decode())
+    else:
+        for p in previews:
+            click.echo(report.preview_line(p))
+
+
+@main.command("schema")
+@click.argument("kind", type=click.Choice(["recipe", "payload", "manifest"]))
+def schema_cmd(kind: str) -> None:
+    """Print the JSON Schema (draft 2020-12) of a recipe, a payload or a manifest."""
+    from reduce.schema import SCHEMAS
+
+    click.echo(orjson.dumps(SCHEMAS[kind](), option=orjson.OPT_INDENT_2).decode())

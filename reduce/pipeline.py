@@ -31,7 +31,7 @@ from reduce.errors import BudgetError, RecipeError
 from reduce.levels import Level
 from reduce.manifest import build_manifest
 from reduce.measure import Measurer
-from reduce.publish import manifest_path, publish, resolve_output
+from reduce.publish import manifest_path, resolve_output
 from reduce.recipe import Budget, Recipe, load_recipe, with_budget
 from reduce.sizes import (
     MEASURES,
@@ -307,6 +307,7 @@ def run(recipe: Recipe | str | Path, *, out_dir: Path | None = None,
     r = _as_recipe(recipe, overrides)
     path = output_path(r, out_dir)
     from reduce.publish import check_target
+    from reduce.siblings import publish_run
 
     check_target(path, create=False)  # fail before the scan, not after it
     result = fit(r, budget=budget, on=on, use_cache=use_cache, progress=progress)
@@ -323,11 +324,11 @@ def run(recipe: Recipe | str | Path, *, out_dir: Path | None = None,
         result = replace(result, level=coarsest, chosen=forced, payload=red.payload(coarsest),
                          rows=red.rows(coarsest), accounting=red.accounting(coarsest))
         manifest = build_manifest(result, path)
-        publish(path, result.payload or b"", manifest)
+        publish_run(r, path, result.payload or b"", manifest)
         return RunResult(result, path, manifest, over_budget=True)
     manifest = build_manifest(result, path)
     assert result.payload is not None
-    publish(path, result.payload, manifest)
+    publish_run(r, path, result.payload, manifest)
     red = result.reducer
     if red is not None:
         red.store.save()

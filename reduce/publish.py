@@ -61,7 +61,10 @@ _MANIFEST_MAX_BYTES = 64 * 1024 * 1024
 # Temporary files of ours: ".<final name>.<pid>.tmp"; only those whose final name has one of
 # these endings are removed as debris (a user's own ".notes.123.tmp" is left alone).
 _TMP_RE = re.compile(r"\.(?P<final>.+)\.(?P<pid>[0-9]{1,10})\.tmp")
-_OUR_ENDINGS = (".json", ".geojson", ".csv", _JOURNAL_SUFFIX)
+# Pre-compressed siblings of a payload, written in its commit: x.json.gz, x.json.br.
+SIBLING_SUFFIXES = (".gz", ".br")
+_OUR_ENDINGS = tuple(e + s for e in (".json", ".geojson", ".csv") for s in ("", *SIBLING_SUFFIXES)) \
+    + (_JOURNAL_SUFFIX,)
 
 
 def manifest_path(payload: Path) -> Path:
@@ -323,10 +326,17 @@ def _plan(journal: Path) -> list[tuple[Path, Path]]:
         raise _refuse(journal, journal.name, f"unreadable: {e}") from None
     moves = plan.get("moves") if isinstance(plan, dict) else None
     if not isinstance(plan, dict) or set(plan) != {"moves"} or not isinstance(moves, list) \
-            or len(moves) != 2:
+            or not 2 <= len(moves) <= 2 + len(SIBLING_SUFFIXES):
         raise _refuse(journal, plan if not isinstance(plan, dict) else plan.get("moves"),
-                      "expected two moves: the payload and its manifest")
-    finals = (payload_name, payload_name + MANIFEST_SUFFIX)
+                      "expected the payload, its pre-compressed siblings and its manifest")
+    # The payload first, the manifest last, siblings (x.json.gz, x.json.br) between.
+    middle = [m[1] if isinstance(m, list) and len(m) == 2 else None for m in moves[1:-1]]
+    siblings = [payload_name + s for s in SIBLING_SUFFIXES]
+    for dst in middle:
+        if dst not in siblings or middle.count(dst) > 1:
+            raise _refuse(journal, dst, "expected a pre-compressed sibling "
+                                        f"({' or '.join(map(repr, siblings))}), once")
+    finals = (payload_name, *middle, payload_name + MANIFEST_SUFFIX)
     pid = None
     out: list[tuple[Path, Path]] = []
     for move, final in zip(moves, finals, strict=True):
@@ -342,8 +352,8 @@ def _plan(journal: Path) -> list[tuple[Path, Path]]:
                                         "with one process id for both")
         pid = m["pid"]
         out.append((folder / src, folder / dst))
-    (tmp_pay, pay), (tmp_man, man) = out
-    kinds = {p: _regular(p) for p in (tmp_pay, tmp_man, pay, man)}
+    (tmp_pay, pay), (tmp_man, man) = out[0], out[-1]
+    kinds = {p: _regular(p) for move in out for p in move}
     for p, kind in kinds.items():
         if kind is False:
             raise _refuse(journal, p.name, "not a regular file")
@@ -417,21 +427,35 @@ def process_alive(pid: int) -> bool:
 # --------------------------------------------------------------------------------------------
 
 
-def publish(path: Path, payload: bytes, manifest: Mapping[str, Any]) -> None:
+def publish(path: Path, payload: bytes, manifest: Mapping[str, Any], *,
+            extras: Mapping[str, bytes] | None = None) -> None:
     """Write ``payload`` at ``path`` and its manifest beside it, as one journalled commit.
 
+    ``extras`` maps the payload's pre-compressed siblings (``x.json.gz``, ``x.json.br``: the
+    payload's name plus one of :data:`SIBLING_SUFFIXES`) to their bytes; they are written,
+    synced and renamed in the same commit (after the payload, before the manifest).
     A failure of any kind (a full disk, a signal) before the first rename removes every
-    temporary file and leaves the old pair; after it, the commit is completed.
+    temporary file and leaves the old files; after it, the commit is completed.
     """
     folder = path.parent
-    check_target(path)
+    extra_paths: list[tuple[Path, bytes]] = []
+    for name, data in (extras or {}).items():
+        if name not in {path.name + s for s in SIBLING_SUFFIXES}:
+            raise OutputError(f"{folder}: {name!r} is not a pre-compressed sibling of "
+                              f"{path.name!r}")
+        p = resolve_output(folder, name)
+        if p.is_dir():
+            raise OutputError(f"{p}: is a folder; move it away")
+        extra_paths.append((p, data))
+    check_target(path)  # makes the folder, so its lock file can be made
     with folder_lock(folder):
         _recover_locked(folder)
         check_target(path)
-        _commit(path, payload, manifest)
+        _commit(path, payload, manifest, extra_paths)
 
 
-def _commit(path: Path, payload: bytes, manifest: Mapping[str, Any]) -> None:
+def _commit(path: Path, payload: bytes, manifest: Mapping[str, Any],
+            extras: list[tuple[Path, bytes]]) -> None:
     folder = path.parent
     man = manifest_path(path)
     man_bytes = orjson.dumps(dict(manifest), option=orjson.OPT_INDENT_2) + b"\n"
@@ -439,31 +463,36 @@ def _commit(path: Path, payload: bytes, manifest: Mapping[str, Any]) -> None:
     pid = os.getpid()
     tmp_payload = path.with_name(_tmp_name(path.name, pid))
     tmp_manifest = man.with_name(_tmp_name(man.name, pid))
+    tmp_extras = [(p.with_name(_tmp_name(p.name, pid)), p) for p, _ in extras]
     jtmp = journal.with_name(_tmp_name(journal.name, pid))
+    # The payload's move stays first and the manifest's last (see _plan).
+    moves = [(tmp_payload, path), *tmp_extras, (tmp_manifest, man)]
     renamed = 0
     journalled = False
     try:
         _write_tmp(path, payload)
+        for p, data in extras:
+            _write_tmp(p, data)
         _write_tmp(man, man_bytes)
-        plan = {"moves": [[tmp_payload.name, path.name], [tmp_manifest.name, man.name]]}
+        plan = {"moves": [[t.name, f.name] for t, f in moves]}
         _write_tmp(journal, orjson.dumps(plan))
         os.replace(jtmp, journal)
         journalled = True
         _fsync_dir(folder)
-        os.replace(tmp_payload, path)
-        renamed = 1
-        os.replace(tmp_manifest, man)
-        renamed = 2
+        for t, f in moves:
+            os.replace(t, f)
+            renamed += 1
         _fsync_dir(folder)
         journal.unlink(missing_ok=True)
     except BaseException as e:
-        if renamed == 1:
-            # The payload is in place: complete the pair rather than leave it mismatched.
+        if 0 < renamed < len(moves):
+            # The payload is in place: complete the commit rather than leave it mismatched.
             with contextlib.suppress(OSError):
-                os.replace(tmp_manifest, man)
-                renamed = 2
-        if renamed != 1:
-            for p in (tmp_payload, tmp_manifest, jtmp, *((journal,) if journalled else ())):
+                for t, f in moves[renamed:]:
+                    os.replace(t, f)
+                    renamed += 1
+        if renamed == 0:
+            for p in (*(t for t, _ in moves), jtmp, *((journal,) if journalled else ())):
                 with contextlib.suppress(OSError):
                     p.unlink(missing_ok=True)
         if isinstance(e, OSError) and not isinstance(e, OutputError):

@@ -37,7 +37,7 @@ FilterOp = Literal["in", "not_in", "range", "null", "not_null"]
 MeasureKind = Literal["count", "sum", "min", "max", "mean", "distinct"]
 Layout = Literal["columns", "rows", "csv", "geojson"]
 AXES = ("hex", "time", "top", "simplify", "coords", "digits")
-FLOW_KEYS = ("origin", "destination")  # a flow's key columns
+FLOW_COLUMNS = ("origin", "destination")  # a flow's key columns
 LAYOUTS: tuple[str, ...] = ("columns", "rows", "csv", "geojson")
 SOURCE_FORMATS = ("parquet", "csv", "ndjson")
 # The file extensions output.path may have for each layout (the first is the default name).
@@ -216,6 +216,8 @@ class Output:
     inline: bool
     simplify: tuple[float, ...] = (0.0,)  # outline tolerance ladder (degrees), finest first
     coordinate_digits: tuple[int, ...] = (6,)  # geometry decimals ladder, most first
+    precompress: bool = False  # also write x.json.gz (gzip 9) and x.json.br (brotli 11)
+    preview: bool = False  # also write x.png and x.html (reduce.preview) beside the payload
 
 
 @dataclass(frozen=True, slots=True)
@@ -295,7 +297,7 @@ class Recipe:
     @property
     def category_sources(self) -> tuple[str, ...]:
         """Source columns read as categories (not a flow's ends, whose keys are computed)."""
-        return tuple(c for c in self.categories if c not in FLOW_KEYS) if self.flow \
+        return tuple(c for c in self.categories if c not in FLOW_COLUMNS) if self.flow \
             else self.categories
 
     def finest_level(self) -> dict[str, Any]:
@@ -485,8 +487,30 @@ def _check_int_range(ctx: _Ctx, v: Any, key: str) -> None:
                        "smaller number")
 
 
-_TOP_KEYS = ("name", "description", "source", "group", "measures", "normalize", "prune",
-             "budget", "output")
+# The keys each recipe table allows. Parsing rejects any other key; the JSON Schema
+# (reduce.schema) is generated from these same tuples.
+TOP_KEYS = ("name", "description", "source", "group", "measures", "normalize", "prune",
+            "budget", "output")
+SOURCE_KEYS = ("path", "format", "time", "lat", "lon", "time_zone", "filter", "null_values")
+FILTER_KEYS = ("column", "in", "not_in", "min", "max", "null")
+GROUP_KEYS = ("hex", "time", "region", "category", "flow")
+HEX_KEYS = ("levels", "resolution")
+TIME_KEYS = ("levels", "bin", "zone")
+REGION_KEYS = ("column", "boundaries", "id", "name", "outside", "label")
+CATEGORY_KEYS = ("column", "columns")
+FLOW_KEYS = ("origin", "destination", "hex", "boundaries", "id")
+FLOW_END_KEYS = ("lat", "lon")
+NORMALIZE_KEYS = ("denominators", "per", "measures", "share", "location_quotient")
+DENOMINATOR_KEYS = ("path", "key", "value", "on")
+SHARE_KEYS = ("measures", "within")
+LQ_KEYS = ("measure",)
+PRUNE_KEYS = ("top", "min_count")
+TOP_K_KEYS = ("k", "by", "within", "rest")
+MIN_COUNT_KEYS = ("min", "by", "fold")
+BUDGET_KEYS = ("max", "on", "order")
+OUTPUT_KEYS = ("path", "layout", "digits", "column_digits", "inline", "simplify",
+               "coordinate_digits", "precompress", "preview")
+_TOP_KEYS = TOP_KEYS
 
 
 def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
@@ -504,11 +528,8 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
 
     if "source" not in doc:
         raise ctx.fail("source", "is required; add a [source] table with path = ...")
-    src_doc = ctx.table(doc["source"], "source",
-                        ("path", "format", "time", "lat", "lon", "time_zone", "filter",
-                         "null_values"))
-    group_doc = ctx.table(doc.get("group", {}), "group",
-                          ("hex", "time", "region", "category", "flow"))
+    src_doc = ctx.table(doc["source"], "source", SOURCE_KEYS)
+    group_doc = ctx.table(doc.get("group", {}), "group", GROUP_KEYS)
     if not group_doc:
         raise ctx.fail("group", "is empty; group by at least one of hex, time, region, category")
 
@@ -521,7 +542,7 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
     if "flow" in group_doc:
         flow = _parse_flow(ctx, group_doc["flow"], base)
     if "category" in group_doc:
-        c = ctx.table(group_doc["category"], "group.category", ("column", "columns"))
+        c = ctx.table(group_doc["category"], "group.category", CATEGORY_KEYS)
         if ("column" in c) == ("columns" in c):
             raise ctx.fail("group.category", "give exactly one of column = \"...\" or "
                            "columns = [...]")
@@ -530,13 +551,13 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
                                         allow_single=False))
         if not categories:
             raise ctx.fail("group.category.columns", "is empty; list at least one column")
-        taken = ("time", "hex", *(FLOW_KEYS if flow else ()))
+        taken = ("time", "hex", *(FLOW_COLUMNS if flow else ()))
         for cname in categories:
             if cname in taken or (region and cname == region.column):
                 raise ctx.fail("group.category", f"column {cname!r} has the name of another "
                                "key; rename the column in the source")
     if flow is not None:  # the flow's ends are categories too, ranked and folded together
-        categories = (*FLOW_KEYS, *categories)
+        categories = (*FLOW_COLUMNS, *categories)
     if region and region.column in ("time", "hex"):
         raise ctx.fail("group.region", f"the key name {region.column!r} is taken by another "
                        "key; set group.region.name")
@@ -616,8 +637,7 @@ def _rel(base: Path, p: str) -> Path:
 
 
 def _parse_region(ctx: _Ctx, doc: Any, base: Path) -> RegionKey:
-    r = ctx.table(doc, "group.region", ("column", "boundaries", "id", "name", "outside",
-                                        "label"))
+    r = ctx.table(doc, "group.region", REGION_KEYS)
     if ("column" in r) == ("boundaries" in r):
         raise ctx.fail("group.region", "give exactly one of column = \"...\" (a source column) "
                        "or boundaries = \"file.geojson\" with id = \"property\"")
@@ -642,14 +662,14 @@ def _parse_region(ctx: _Ctx, doc: Any, base: Path) -> RegionKey:
 def _flow_end(ctx: _Ctx, v: Any, key: str) -> FlowEnd:
     if isinstance(v, str) and v:
         return FlowEnd(column=v)
-    d = ctx.table(v, key, ("lat", "lon"))
+    d = ctx.table(v, key, FLOW_END_KEYS)
     lat = ctx.string(d, key, "lat", required=True)
     lon = ctx.string(d, key, "lon", required=True)
     return FlowEnd(lat=lat, lon=lon)
 
 
 def _parse_flow(ctx: _Ctx, doc: Any, base: Path) -> FlowKey:
-    d = ctx.table(doc, "group.flow", ("origin", "destination", "hex", "boundaries", "id"))
+    d = ctx.table(doc, "group.flow", FLOW_KEYS)
     for k in ("origin", "destination"):
         if k not in d:
             raise ctx.fail(f"group.flow.{k}", "is required: a column name, or "
@@ -680,7 +700,7 @@ def _parse_flow(ctx: _Ctx, doc: Any, base: Path) -> FlowKey:
 
 
 def _parse_hex(ctx: _Ctx, doc: Any) -> HexKey:
-    d = ctx.table(doc, "group.hex", ("levels", "resolution"))
+    d = ctx.table(doc, "group.hex", HEX_KEYS)
     levels = _levels(ctx, d, "group.hex", "resolution")
     out = []
     for i, v in enumerate(levels):
@@ -696,7 +716,7 @@ def _parse_hex(ctx: _Ctx, doc: Any) -> HexKey:
 
 
 def _parse_time(ctx: _Ctx, doc: Any) -> TimeKey:
-    d = ctx.table(doc, "group.time", ("levels", "bin", "zone"))
+    d = ctx.table(doc, "group.time", TIME_KEYS)
     raw = _levels(ctx, d, "group.time", "bin")
     bins = []
     for i, v in enumerate(raw):
@@ -857,7 +877,7 @@ def filter_instant(v: dt.datetime | dt.date, zone: str, *,
     return v.astimezone(dt.timezone.utc).replace(tzinfo=None)
 
 
-_FILTER_KEYS = ("column", "in", "not_in", "min", "max", "null")
+_FILTER_KEYS = FILTER_KEYS
 _SCALARS = (str, int, float, bool, dt.datetime, dt.date)
 
 
@@ -922,6 +942,7 @@ def _parse_filters(ctx: _Ctx, doc: Any, zone: str,
 
 
 _MEASURE_KINDS: tuple[MeasureKind, ...] = ("count", "sum", "min", "max", "mean", "distinct")
+MEASURE_KINDS = _MEASURE_KINDS
 
 
 def _parse_measures(ctx: _Ctx, doc: Any, zone: str = "UTC") -> tuple[MeasureSpec, ...]:
@@ -988,8 +1009,7 @@ def _derived_names(measures: Sequence[MeasureSpec], n: Normalize | None) -> list
 def _parse_normalize(ctx: _Ctx, doc: Any, base: Path, measures: Sequence[MeasureSpec],
                      region: RegionKey | None, hex_key: HexKey | None,
                      categories: Sequence[str], axis_names: Sequence[str]) -> Normalize:
-    d = ctx.table(doc, "normalize", ("denominators", "per", "measures", "share",
-                                     "location_quotient"))
+    d = ctx.table(doc, "normalize", NORMALIZE_KEYS)
     names = [m.name for m in measures]
     additive = {m.name for m in measures if m.kind in ("count", "sum")}
 
@@ -1004,8 +1024,7 @@ def _parse_normalize(ctx: _Ctx, doc: Any, base: Path, measures: Sequence[Measure
 
     dens = None
     if "denominators" in d:
-        dd = ctx.table(d["denominators"], "normalize.denominators",
-                       ("path", "key", "value", "on"))
+        dd = ctx.table(d["denominators"], "normalize.denominators", DENOMINATOR_KEYS)
         p = ctx.string(dd, "normalize.denominators", "path", required=True)
         k = ctx.string(dd, "normalize.denominators", "key", required=True)
         v = ctx.string(dd, "normalize.denominators", "value", required=True)
@@ -1033,7 +1052,7 @@ def _parse_normalize(ctx: _Ctx, doc: Any, base: Path, measures: Sequence[Measure
                        "divide; add measures = [\"...\"]")
     share = None
     if "share" in d:
-        sd = ctx.table(d["share"], "normalize.share", ("measures", "within"))
+        sd = ctx.table(d["share"], "normalize.share", SHARE_KEYS)
         if "measures" not in sd:
             raise ctx.fail("normalize.share.measures", "is required")
         sm = tuple(measure_ref(v, f"normalize.share.measures[{i}]")
@@ -1045,7 +1064,7 @@ def _parse_normalize(ctx: _Ctx, doc: Any, base: Path, measures: Sequence[Measure
         share = Share(sm, within)
     lq = None
     if "location_quotient" in d:
-        ld = ctx.table(d["location_quotient"], "normalize.location_quotient", ("measure",))
+        ld = ctx.table(d["location_quotient"], "normalize.location_quotient", LQ_KEYS)
         if "measure" not in ld:
             raise ctx.fail("normalize.location_quotient.measure", "is required")
         lq = measure_ref(ld["measure"], "normalize.location_quotient.measure")
@@ -1074,11 +1093,11 @@ def _within(ctx: _Ctx, v: Any, key: str, axis_names: Sequence[str]) -> tuple[str
 def _parse_prune(ctx: _Ctx, doc: Any, measures: Sequence[MeasureSpec],
                  categories: Sequence[str], axis_names: Sequence[str],
                  ) -> tuple[TopK | None, MinCount | None]:
-    d = ctx.table(doc, "prune", ("top", "min_count"))
+    d = ctx.table(doc, "prune", PRUNE_KEYS)
     names = [m.name for m in measures]
     top = None
     if "top" in d:
-        t = ctx.table(d["top"], "prune.top", ("k", "by", "within", "rest"))
+        t = ctx.table(d["top"], "prune.top", TOP_K_KEYS)
         if not categories:
             raise ctx.fail("prune.top", "needs a category to rank; add group.category")
         if "k" not in t:
@@ -1104,7 +1123,7 @@ def _parse_prune(ctx: _Ctx, doc: Any, measures: Sequence[MeasureSpec],
     if "min_count" in d:
         v = d["min_count"]
         if isinstance(v, dict):
-            md = ctx.table(v, "prune.min_count", ("min", "by", "fold"))
+            md = ctx.table(v, "prune.min_count", MIN_COUNT_KEYS)
             if "min" not in md:
                 raise ctx.fail("prune.min_count.min", "is required")
             thr = ctx.integer(md["min"], "prune.min_count.min", lo=1)
@@ -1130,7 +1149,7 @@ def _parse_prune(ctx: _Ctx, doc: Any, measures: Sequence[MeasureSpec],
 
 
 def _parse_budget(ctx: _Ctx, doc: Any, axes: Sequence[str]) -> Budget:
-    d = ctx.table(doc, "budget", ("max", "on", "order"))
+    d = ctx.table(doc, "budget", BUDGET_KEYS)
     if "max" not in d:
         raise ctx.fail("budget.max", "is required; e.g. max = \"300KB\"")
     try:
@@ -1155,8 +1174,7 @@ def _parse_budget(ctx: _Ctx, doc: Any, axes: Sequence[str]) -> Budget:
 
 
 def _parse_output(ctx: _Ctx, doc: Any, base: Path) -> Output:
-    d = ctx.table(doc, "output", ("path", "layout", "digits", "column_digits", "inline",
-                                  "simplify", "coordinate_digits"))
+    d = ctx.table(doc, "output", OUTPUT_KEYS)
     p = ctx.string(d, "output", "path")
     path = None if p is None else (Path(p) if Path(p).is_absolute() else base / p)
     if path is not None and path.suffix == "":
@@ -1192,6 +1210,14 @@ def _parse_output(ctx: _Ctx, doc: Any, base: Path) -> Output:
         raise ctx.fail("output.path", f"{p!r} ends in {path.suffix}, but output.layout "
                        f"{layout!r} writes {' or '.join(want)} files; name the file "
                        f"{path.stem}{want[0]} or change output.layout")
+    flags = {}
+    for k in ("precompress", "preview"):
+        flags[k] = d.get(k, False)
+        if not isinstance(flags[k], bool):
+            raise ctx.fail(f"output.{k}", "must be true or false")
+    if flags["preview"] and layout == "csv":
+        raise ctx.fail("output.preview", "draws JSON layouts (columns, rows, geojson) only; "
+                       "set preview = false or change output.layout")
     simplify: tuple[float, ...] = (0.0,)
     coords: tuple[int, ...] = (6,)
     if "simplify" in d or "coordinate_digits" in d:
@@ -1225,4 +1251,4 @@ def _parse_output(ctx: _Ctx, doc: Any, base: Path) -> Output:
                 raise ctx.fail("output.coordinate_digits", f"must go from most decimals to "
                                f"fewest, but {a} is followed by {b}")
     return Output(path, layout, digits, column_digits, inline,  # type: ignore[arg-type]
-                  simplify, coords)
+                  simplify, coords, precompress=flags["precompress"], preview=flags["preview"])

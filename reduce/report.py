@@ -138,3 +138,22 @@ def ladder_json(result: FitResult) -> bytes:
 def check_line(recipe_file: Path, name: str, files: int, columns: Sequence[str]) -> str:
     return (f"{recipe_file}: ok ({name}: {files} source file{'s' if files != 1 else ''}, "
             f"columns {', '.join(columns)})")
+
+
+def preview_line(p: Any) -> str:
+    """One line per previewed payload (a :class:`reduce.preview.Preview`)."""
+    line = (f"{shown(p.payload)}: {p.kind}, {p.rows:,} rows -> {shown(p.png)}, "
+            f"{shown(p.html)}")
+    m = p.timings
+    if m:
+        line += (f"; {m['surface']}, parse {m['parse_ms']:.1f} ms, draw {m['draw_ms']:.1f} ms "
+                 f"(median of {m['loads']} loads in headless Chromium)")
+    return line
+
+
+def preview_json(previews: Sequence[Any]) -> bytes:
+    return orjson.dumps([{"payload": str(p.payload), "png": str(p.png), "html": str(p.html),
+                          "kind": p.kind, "rows": p.rows,
+                          **({"measured": {k: v for k, v in p.timings.items() if k != "page"}}
+                             if p.timings else {})}
+                         for p in previews], option=orjson.OPT_INDENT_2)

@@ -219,3 +219,35 @@ def random_events(rng: np.random.Generator, n: int, *, start: dt.datetime = T0,
         "y": pl.Series([None if m else int(v) for v, m in zip(y, nulls[1])], dtype=pl.Int64),
         "who": pl.Series([None if m else int(v) for v, m in zip(w, nulls[2])], dtype=pl.Int64),
     })
+
+
+# --------------------------------------------------------------------------------------------
+# Demo payloads (small): every demo recipe run over a 20,000-row demo scenario
+# --------------------------------------------------------------------------------------------
+
+
+@pytest.fixture(scope="session")
+def demo_payloads(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
+    """Payload path per demo recipe, written once per test session.
+
+    The demo recipes are pointed at a 20,000-row scenario. At that size sightings-hex
+    suppresses every cell (fewer than 3 observers each), so it is run twice: as written
+    (``sightings-hex``, an empty payload) and with ``prune.min_count.min = 1``
+    (``sightings-hex-all``).
+    """
+    from reduce.demo import RECIPES, SEED
+    from reduce._scenario import generate
+
+    root = tmp_path_factory.mktemp("demo-payloads")
+    data = generate(root / "data", rows=20_000, seed=SEED).root
+    out: dict[str, Path] = {}
+    for f in sorted(RECIPES.glob("*.toml")):
+        text = f.read_text(encoding="utf-8").replace("../fixtures/demo/", f"{data.as_posix()}/")
+        recipe = root / f.name
+        recipe.write_text(text.replace("../out/", "out/"), encoding="utf-8")
+        out[f.stem] = reduce.run(recipe, use_cache=False).path  # type: ignore[assignment]
+        if f.stem == "sightings-hex":
+            res = reduce.run(recipe, out_dir=root / "out-all", use_cache=False,
+                             overrides={"prune.min_count.min": "1"})
+            out["sightings-hex-all"] = res.path  # type: ignore[assignment]
+    return out
