@@ -208,3 +208,41 @@ def test_run_refuses_a_planted_journal_with_one_line(tmp_path: Path) -> None:
     assert lines[0].startswith(f"error: {journal}: commit journal entry '../victim.txt' is "
                                "not one reduce writes")
     assert snapshot(tmp_path) == before
+
+
+def test_journal_naming_a_sibling_outside_the_folder_or_of_another_name_is_refused(
+        scene: tuple[Path, Path, Path]) -> None:
+    # Pre-compressed siblings (p.json.gz, p.json.br) may ride in the commit; nothing else.
+    root, out, _ = scene
+    t, tm = f".p.json.{DEAD_PID}.tmp", f".p.json.manifest.json.{DEAD_PID}.tmp"
+    tgz = f".p.json.gz.{DEAD_PID}.tmp"
+    (out / t).write_bytes(b"planted payload")
+    (out / tgz).write_bytes(b"planted gzip")
+    (out / tm).write_bytes(manifest_of("p.json", b"planted payload"))
+    for bad in ("../outside/victim.json", "p.json.zip", "q.json.gz"):
+        journal = plant(out, [[t, "p.json"], [tgz, bad], [tm, "p.json.manifest.json"]])
+        before = snapshot(root)
+        with pytest.raises(OutputError) as err:
+            recover(out)
+        assert str(journal) in err.value.message and repr(bad) in err.value.message
+        assert snapshot(root) == before
+        journal.unlink()
+
+
+def test_interrupted_commit_with_siblings_is_completed(scene: tuple[Path, Path, Path]) -> None:
+    _, out, payload = scene
+    new = b'{"format": "reduce.columns/1", "new": true}'
+    t, tm = f".p.json.{DEAD_PID}.tmp", f".p.json.manifest.json.{DEAD_PID}.tmp"
+    tgz, tbr = f".p.json.gz.{DEAD_PID}.tmp", f".p.json.br.{DEAD_PID}.tmp"
+    # Killed after the payload's and the gzip sibling's renames: brotli and manifest remain.
+    payload.write_bytes(new)
+    (out / "p.json.gz").write_bytes(b"new gzip")
+    (out / tbr).write_bytes(b"new brotli")
+    (out / tm).write_bytes(manifest_of("p.json", new))
+    plant(out, [[t, "p.json"], [tgz, "p.json.gz"], [tbr, "p.json.br"],
+                [tm, "p.json.manifest.json"]])
+    assert recover(out) == [payload]
+    assert (out / "p.json.br").read_bytes() == b"new brotli"
+    assert json.loads(manifest_path(payload).read_bytes())["sha256"] == sha(new)
+    assert sorted(p.name for p in out.iterdir()) == [
+        LOCK_NAME, "p.json", "p.json.br", "p.json.gz", "p.json.manifest.json"]
