@@ -711,8 +711,10 @@ def field_shares(data: bytes, kind: str, on: Measure,
     trim first. ``None`` for other layouts and files over ``FIELD_SHARE_MAX_BYTES``."""
     if len(data) > FIELD_SHARE_MAX_BYTES or kind not in ("columns", "rows", "geojson", "csv"):
         return None
-    size = {"raw": len, "gzip": lambda b: len(gzip_bytes(b)),
-            "brotli": lambda b: len(brotli_bytes(b))}[on]
+    sizers: dict[str, Callable[[bytes], int]] = {
+        "raw": len, "gzip": lambda b: len(gzip_bytes(b)),
+        "brotli": lambda b: len(brotli_bytes(b))}
+    size = sizers[on]
     try:
         if kind == "csv":
             import csv

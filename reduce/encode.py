@@ -97,8 +97,8 @@ def _check_ints(df: pl.DataFrame, recipe: Recipe) -> None:
         s = df.get_column(c)
         if s.dtype.is_integer() and s.len() and s.null_count() < s.len():
             lo, hi = s.min(), s.max()
-            if (lo is not None and int(lo) < -MAX_SAFE_INT) or (
-                    hi is not None and int(hi) > MAX_SAFE_INT):
+            if (lo is not None and int(lo) < -MAX_SAFE_INT) or (  # type: ignore[arg-type]
+                    hi is not None and int(hi) > MAX_SAFE_INT):  # type: ignore[arg-type]
                 raise ReduceError(f"{recipe.file.name}: column {c!r} holds an integer beyond "
                                   "±2^53, which a browser cannot represent exactly; scale the "
                                   "measure down or use a mean")

@@ -217,8 +217,8 @@ def scan_keys(recipe: Recipe, lf: pl.LazyFrame,
             checks.append((1, _valid_coord(end.lat, 90.0) & _valid_coord(end.lon, 180.0)))
             if f.hex_res is not None:
                 e = plh3.int_to_str(plh3.latlng_to_cell(
-                    pl.col(end.lat).cast(pl.Float64),  # type: ignore[arg-type]
-                    pl.col(end.lon).cast(pl.Float64),  # type: ignore[arg-type]
+                    pl.col(end.lat).cast(pl.Float64),
+                    pl.col(end.lon).cast(pl.Float64),
                     f.hex_res))
             else:
                 from reduce import geo
@@ -241,11 +241,12 @@ def scan_keys(recipe: Recipe, lf: pl.LazyFrame,
     if time_e is not None:
         keys.append(pl.when(valid).then(time_e).alias(TIME))
     if recipe.hex:
+        assert src.lat is not None and src.lon is not None  # required with a hex key
         # Invalid rows get null coordinates, which the indexer passes over at no cost.
         lat = pl.when(valid).then(pl.col(src.lat).cast(pl.Float64))
         lon = pl.col(src.lon).cast(pl.Float64)
         for i, res in enumerate(recipe.hex.levels):
-            cell = plh3.latlng_to_cell(lat, lon, res)  # type: ignore[arg-type]
+            cell = plh3.latlng_to_cell(lat, lon, res)
             keys.append(cell.alias(HEX if i == 0 else hidden_hex(res)))
     for name, e in named:
         keys.append(pl.when(valid).then(e).alias(name))

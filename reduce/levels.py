@@ -218,7 +218,11 @@ class Store:
         self.name = name
         self._read = read
         self._write = write
-        self._errors = (OSError, *errors)
+        self._errors: tuple[type[BaseException], ...] = (OSError, *errors)
+        self._bad_store: tuple[type[BaseException], ...] = (
+            orjson.JSONDecodeError, TypeError, KeyError, AttributeError, ValueError,
+            *self._errors)
+        self._bad_payload: tuple[type[BaseException], ...] = (zlib.error, *self._errors)
         self.records: dict[str, Record] = {}
         self.counts: dict[str, int] = {}  # rows of levels counted, not measured
         self.dirty = False
@@ -241,8 +245,7 @@ class Store:
                 return
             records = {level_id(r["level"]): Record(**r) for r in doc["records"]}
             counts = {str(k): int(v) for k, v in doc.get("counts", {}).items()}
-        except (orjson.JSONDecodeError, TypeError, KeyError, AttributeError, ValueError,
-                *self._errors):
+        except self._bad_store:
             return
         self.records, self.counts = records, counts
 
@@ -274,7 +277,7 @@ class Store:
             return None
         try:
             data = zlib.decompress(self._read(self.folder, rec.payload))
-        except (zlib.error, *self._errors):
+        except self._bad_payload:
             return None
         return data if hashlib.sha256(data).hexdigest() == rec.sha256 else None
 

@@ -86,7 +86,7 @@ def recipe_schema() -> dict[str, Any]:
     kinds = [k for k in R.MEASURE_KINDS if k != "count"]
     # A measure: "count", or one kind naming its column (or count = true), with an optional
     # where (the same filters as source.filter).
-    measure = {"anyOf": [{"const": "count"},
+    measure: dict[str, Any] = {"anyOf": [{"const": "count"},
                          {"type": "object", "minProperties": 1, "maxProperties": 2,
                           "properties": {**{k: _STR for k in kinds}, "count": {"const": True},
                                          "where": {"type": "array", "items": filter_,
