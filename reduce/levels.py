@@ -35,6 +35,8 @@ from typing import Any
 
 import orjson
 
+from reduce.contract import LEVELS_FORMAT
+
 # The ladder axes, in the order levels are shown and keyed.
 AXES: tuple[str, ...] = ("hex", "time", "top", "simplify", "coords", "digits")
 _TYPES: dict[str, tuple[type, ...]] = {"hex": (int,), "time": (str,), "top": (int,),
@@ -105,7 +107,7 @@ class Level(Mapping[str, Any]):
         inner = ", ".join(f"{a}={v!r}" for a, v in self.key)
         return f"Level({inner})"
 
-FORMAT = "reduce.levels/1"
+FORMAT = LEVELS_FORMAT
 PAYLOAD_MAX = 16_000_000  # raw bytes of a payload kept with its record
 
 

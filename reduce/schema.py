@@ -16,6 +16,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from reduce import recipe as R
+from reduce.contract import MANIFEST_FORMAT
 from reduce.sizes import MEASURES
 
 DRAFT = "https://json-schema.org/draft/2020-12/schema"
@@ -184,12 +185,12 @@ def manifest_schema() -> dict[str, Any]:
     count = {"type": "integer", "minimum": 0}
     maybe = {"type": ["integer", "null"], "minimum": 0}
     return {
-        "$schema": DRAFT, "$id": "reduce.manifest/1", "title": "reduce manifest",
+        "$schema": DRAFT, "$id": MANIFEST_FORMAT, "title": "reduce manifest",
         "type": "object",
         "required": ["format", "payload", "layout", "sha256", "bytes", "rows", "elements",
                      "recipe", "level", "frontier", "accounting"],
         "properties": {
-            "format": {"const": "reduce.manifest/1"},
+            "format": {"const": MANIFEST_FORMAT},
             "payload": {"type": "string", "minLength": 1},
             "layout": {"enum": list(R.LAYOUTS)},
             "sha256": {"type": "string", "pattern": "^[0-9a-f]{64}$"},
