@@ -23,11 +23,11 @@ from pathlib import Path
 
 import polars as pl
 
+from reduce.contract import INVALID_REASONS
 from reduce.errors import OutputError, SourceError, shown_path
 from reduce.keys import (
     HEX,
     INVALID,
-    INVALID_REASONS,
     TIME,
     coarsen,
     hidden_below,

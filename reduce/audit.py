@@ -56,6 +56,7 @@ import pyarrow.csv as pacsv
 import pyarrow.feather as pafeather
 import pyarrow.ipc as paipc
 
+from reduce.contract import ACCOUNTING_KEYS, COLUMNS_FORMAT, MANIFEST_FORMAT, MAX_SAFE_INTEGER
 from reduce.errors import AuditError, ReduceError, did_you_mean
 from reduce.publish import journals, reading, recover
 from reduce.sizes import (
@@ -97,13 +98,12 @@ __all__ = [
     "transfer_seconds",
 ]
 
-COLUMNS_FORMAT = "reduce.columns/1"
-MANIFEST_FORMAT = "reduce.manifest/1"
+# The contract's values (reduce.contract), under the names the audit's API has used.
 AUDIT_FORMAT = "reduce.audit/1"
 MANIFEST_SUFFIX = ".manifest.json"
 
 # Number.MAX_SAFE_INTEGER of JavaScript (ECMA-262): larger integers lose digits in a browser.
-MAX_SAFE_INTEGER = 2**53 - 1
+
 
 # Six decimals of a degree are about 0.1 m on the ground: finer than any map on a screen can
 # show (common practice for published coordinates). More is bytes without information.
@@ -135,13 +135,7 @@ _JSON_SUFFIXES = frozenset({".json", ".geojson"})
 _CSV_SUFFIXES = frozenset({".csv"})
 _ARROW_SUFFIXES = frozenset({".arrow", ".feather"})
 
-_ACCOUNTING_KEYS = (
-    "input_rows",
-    "filtered_rows",
-    "invalid_rows",
-    "suppressed_rows",
-    "represented_rows",
-)
+_ACCOUNTING_KEYS = ACCOUNTING_KEYS
 _H3_CELL_RE = re.compile(r"8[0-9a-f]{14}")
 _HEX_NAMES = frozenset({"hex", "h3", "cell"})
 _LAT_NAMES = frozenset({"lat", "latitude"})
@@ -711,8 +705,10 @@ def field_shares(data: bytes, kind: str, on: Measure,
     trim first. ``None`` for other layouts and files over ``FIELD_SHARE_MAX_BYTES``."""
     if len(data) > FIELD_SHARE_MAX_BYTES or kind not in ("columns", "rows", "geojson", "csv"):
         return None
-    size = {"raw": len, "gzip": lambda b: len(gzip_bytes(b)),
-            "brotli": lambda b: len(brotli_bytes(b))}[on]
+    sizers: dict[str, Callable[[bytes], int]] = {
+        "raw": len, "gzip": lambda b: len(gzip_bytes(b)),
+        "brotli": lambda b: len(brotli_bytes(b))}
+    size = sizers[on]
     try:
         if kind == "csv":
             import csv

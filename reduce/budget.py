@@ -36,7 +36,7 @@ Level = dict[str, Any]
 class Candidate:
     """One evaluated level: its size on every measured axis and whether it fits."""
 
-    level: Level
+    level: Mapping[str, Any]
     rows: int
     elements: int
     raw: int | None  # None when the level was judged from its row count (estimated)

@@ -24,7 +24,7 @@ from reduce.errors import RecipeError, ReduceError
 from reduce.sizes import MEASURES, parse_size
 
 
-class _SizeType(click.ParamType):
+class _SizeType(click.ParamType):  # type: ignore[type-arg]
     """A byte size: 300KB, 1.5MB (decimal), 200KiB (IEC 80000-13), or plain bytes."""
 
     name = "size"
@@ -352,13 +352,13 @@ def preview_cmd(payloads: tuple[Path, ...], out_dir: Path | None, measure: bool,
             from reduce.browser import measure_pages
 
             progress(f"timing {len(previews)} pages in headless Chromium (3 loads each)")
-            for p, m in zip(previews, measure_pages([p.html for p in previews])):
-                p.timings = m
+            for pv, m in zip(previews, measure_pages([pv.html for pv in previews])):
+                pv.timings = m
     if as_json:
         click.echo(report.preview_json(previews).decode())
     else:
-        for p in previews:
-            click.echo(report.preview_line(p))
+        for pv in previews:
+            click.echo(report.preview_line(pv))
 
 
 @main.command("schema")

@@ -45,7 +45,7 @@ def ensure_scenario(*, rows: int | None = None, regenerate: bool = False,
     if progress:
         progress(f"generating the demo scenario ({want['rows']:,} rows)")
     stamp.unlink(missing_ok=True)
-    _scenario.generate(dest, rows=int(want["rows"]), seed=SEED, progress=progress)
+    _scenario.generate(dest, rows=int(str(want["rows"])), seed=SEED, progress=progress)
     stamp.write_bytes(orjson.dumps(want))
     return dest
 

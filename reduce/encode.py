@@ -22,14 +22,14 @@ import orjson
 import polars as pl
 import polars_h3 as plh3
 
+from reduce.contract import ACCOUNTING_ORDER, COLUMNS_FORMAT, GEOJSON_FORMAT, MAX_SAFE_INTEGER
 from reduce.aggregate import N
 from reduce.errors import ReduceError
 from reduce.keys import HEX, TIME
 from reduce.recipe import Recipe
 
-FORMAT = "reduce.columns/1"
-GEOJSON_FORMAT = "reduce.geojson/1"  # our foreign member in GeoJSON payloads (RFC 7946 §6.1)
-MAX_SAFE_INT = 2**53 - 1
+FORMAT = COLUMNS_FORMAT  # the names other modules used; the values live in reduce.contract
+MAX_SAFE_INT = MAX_SAFE_INTEGER
 
 # Characters that could end a <script> element or break a JavaScript string literal when a
 # JSON payload is pasted inline into HTML; each is replaced by its JSON \u escape, which is
@@ -97,8 +97,8 @@ def _check_ints(df: pl.DataFrame, recipe: Recipe) -> None:
         s = df.get_column(c)
         if s.dtype.is_integer() and s.len() and s.null_count() < s.len():
             lo, hi = s.min(), s.max()
-            if (lo is not None and int(lo) < -MAX_SAFE_INT) or (
-                    hi is not None and int(hi) > MAX_SAFE_INT):
+            if (lo is not None and int(lo) < -MAX_SAFE_INT) or (  # type: ignore[arg-type]
+                    hi is not None and int(hi) > MAX_SAFE_INT):  # type: ignore[arg-type]
                 raise ReduceError(f"{recipe.file.name}: column {c!r} holds an integer beyond "
                                   "±2^53, which a browser cannot represent exactly; scale the "
                                   "measure down or use a mean")
@@ -229,12 +229,10 @@ def accounting_block(*, input_rows: int, filtered_rows: int, invalid_rows: int,
                      unassigned_rows: int | None = None) -> dict[str, int]:
     """The accounting identity's terms; ``unassigned_rows`` (events outside every boundary
     polygon) appears only for recipes that assign regions from boundaries."""
-    out = {"input_rows": input_rows, "filtered_rows": filtered_rows,
-           "invalid_rows": invalid_rows}
-    if unassigned_rows is not None:
-        out["unassigned_rows"] = unassigned_rows
-    out |= {"suppressed_rows": suppressed_rows, "represented_rows": represented_rows}
-    return out
+    terms = {"input_rows": input_rows, "filtered_rows": filtered_rows,
+             "invalid_rows": invalid_rows, "unassigned_rows": unassigned_rows,
+             "suppressed_rows": suppressed_rows, "represented_rows": represented_rows}
+    return {k: v for k in ACCOUNTING_ORDER if (v := terms[k]) is not None}
 
 
 __all__: Sequence[str] = ["FORMAT", "encode", "inline_safe", "sort_rows", "payload_columns",

@@ -31,9 +31,11 @@ import numpy as np
 import orjson
 import shapely
 
+from reduce.contract import MAX_SAFE_INTEGER
+
 __all__ = ["feature_collection", "hex_polygon", "polygon_geometry", "ring_area"]
 
-MAX_SAFE_INT = 2**53 - 1
+MAX_SAFE_INT = MAX_SAFE_INTEGER  # reduce.contract
 
 
 def _check_digits(digits: int) -> None:

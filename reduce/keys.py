@@ -33,6 +33,7 @@ from typing import Any
 import polars as pl
 import polars_h3 as plh3
 
+from reduce.contract import Invalid
 from reduce.errors import SourceError
 from reduce.recipe import Recipe, TimeBin
 
@@ -60,9 +61,8 @@ def hidden_below(recipe: Recipe, res: int | None) -> list[str]:
     top = recipe.hex.levels[0] if res is None else res
     return [hidden_hex(r) for r in recipe.hex.levels[1:] if r < top]
 
-# Reason codes of invalid rows, reported in manifests.
-VALID = 0
-INVALID_REASONS = {1: "coordinates", 2: "time", 3: "key", 4: "unassigned"}
+# Reason codes of invalid rows, reported in manifests (the contract: reduce.contract).
+VALID = Invalid.VALID
 
 _AWARE_RE = re.compile(r"(Z|[+-]\d\d:?\d\d)$")
 
@@ -184,12 +184,13 @@ def scan_keys(recipe: Recipe, lf: pl.LazyFrame,
     checks: list[tuple[int, pl.Expr]] = []
     if recipe.needs_coordinates:
         assert src.lat is not None and src.lon is not None
-        checks.append((1, _valid_coord(src.lat, 90.0) & _valid_coord(src.lon, 180.0)))
+        checks.append((Invalid.COORDINATES,
+                       _valid_coord(src.lat, 90.0) & _valid_coord(src.lon, 180.0)))
     time_e = None
     if recipe.time:
         time_e = truncate(_time_expr(recipe, lf, label), recipe.time.levels[0],
                           recipe.time.zone)
-        checks.append((2, time_e.is_not_null()))
+        checks.append((Invalid.TIME, time_e.is_not_null()))
     named: list[tuple[str, pl.Expr]] = []  # key name -> String expression (null = invalid)
     unassigned: list[pl.Expr] = []  # null = outside every polygon
     r = recipe.region
@@ -214,11 +215,12 @@ def scan_keys(recipe: Recipe, lf: pl.LazyFrame,
                 named.append((name, pl.col(end.column).cast(pl.String)))
                 continue
             assert end.lat is not None and end.lon is not None
-            checks.append((1, _valid_coord(end.lat, 90.0) & _valid_coord(end.lon, 180.0)))
+            checks.append((Invalid.COORDINATES,
+                           _valid_coord(end.lat, 90.0) & _valid_coord(end.lon, 180.0)))
             if f.hex_res is not None:
                 e = plh3.int_to_str(plh3.latlng_to_cell(
-                    pl.col(end.lat).cast(pl.Float64),  # type: ignore[arg-type]
-                    pl.col(end.lon).cast(pl.Float64),  # type: ignore[arg-type]
+                    pl.col(end.lat).cast(pl.Float64),
+                    pl.col(end.lon).cast(pl.Float64),
                     f.hex_res))
             else:
                 from reduce import geo
@@ -228,24 +230,26 @@ def scan_keys(recipe: Recipe, lf: pl.LazyFrame,
                 unassigned.append(e)
             named.append((name, e))
     if unassigned:
-        checks.append((4, pl.all_horizontal([u.is_not_null() for u in unassigned])))
+        checks.append((Invalid.UNASSIGNED,
+                       pl.all_horizontal([u.is_not_null() for u in unassigned])))
     if named:
-        checks.append((3, pl.all_horizontal([e.is_not_null() for _, e in named])))
-    if [code for code, _ in checks] == [3]:
+        checks.append((Invalid.KEY, pl.all_horizontal([e.is_not_null() for _, e in named])))
+    if [code for code, _ in checks] == [Invalid.KEY]:
         return [e.alias(name) for name, e in named], None
-    reason = pl.lit(VALID, dtype=pl.UInt8)
+    reason = pl.lit(int(VALID), dtype=pl.UInt8)
     for code, ok in reversed(checks):
-        reason = pl.when(~ok).then(pl.lit(code, dtype=pl.UInt8)).otherwise(reason)
+        reason = pl.when(~ok).then(pl.lit(int(code), dtype=pl.UInt8)).otherwise(reason)
     valid = reason == VALID
     keys: list[pl.Expr] = []
     if time_e is not None:
         keys.append(pl.when(valid).then(time_e).alias(TIME))
     if recipe.hex:
+        assert src.lat is not None and src.lon is not None  # required with a hex key
         # Invalid rows get null coordinates, which the indexer passes over at no cost.
         lat = pl.when(valid).then(pl.col(src.lat).cast(pl.Float64))
         lon = pl.col(src.lon).cast(pl.Float64)
         for i, res in enumerate(recipe.hex.levels):
-            cell = plh3.latlng_to_cell(lat, lon, res)  # type: ignore[arg-type]
+            cell = plh3.latlng_to_cell(lat, lon, res)
             keys.append(cell.alias(HEX if i == 0 else hidden_hex(res)))
     for name, e in named:
         keys.append(pl.when(valid).then(e).alias(name))
@@ -256,7 +260,8 @@ def reason_of_groups(keys: list[str]) -> pl.Expr:
     """The invalid-reason code of groups keyed by plain key columns (see :func:`scan_keys`):
     "key" where any key is null."""
     return (pl.when(pl.any_horizontal([pl.col(k).is_null() for k in keys]))
-            .then(pl.lit(3, dtype=pl.UInt8)).otherwise(pl.lit(VALID, dtype=pl.UInt8))
+            .then(pl.lit(int(Invalid.KEY), dtype=pl.UInt8))
+            .otherwise(pl.lit(int(VALID), dtype=pl.UInt8))
             .alias(INVALID))
 
 

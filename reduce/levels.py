@@ -35,6 +35,8 @@ from typing import Any
 
 import orjson
 
+from reduce.contract import LEVELS_FORMAT
+
 # The ladder axes, in the order levels are shown and keyed.
 AXES: tuple[str, ...] = ("hex", "time", "top", "simplify", "coords", "digits")
 _TYPES: dict[str, tuple[type, ...]] = {"hex": (int,), "time": (str,), "top": (int,),
@@ -105,7 +107,7 @@ class Level(Mapping[str, Any]):
         inner = ", ".join(f"{a}={v!r}" for a, v in self.key)
         return f"Level({inner})"
 
-FORMAT = "reduce.levels/1"
+FORMAT = LEVELS_FORMAT
 PAYLOAD_MAX = 16_000_000  # raw bytes of a payload kept with its record
 
 
@@ -218,7 +220,11 @@ class Store:
         self.name = name
         self._read = read
         self._write = write
-        self._errors = (OSError, *errors)
+        self._errors: tuple[type[BaseException], ...] = (OSError, *errors)
+        self._bad_store: tuple[type[BaseException], ...] = (
+            orjson.JSONDecodeError, TypeError, KeyError, AttributeError, ValueError,
+            *self._errors)
+        self._bad_payload: tuple[type[BaseException], ...] = (zlib.error, *self._errors)
         self.records: dict[str, Record] = {}
         self.counts: dict[str, int] = {}  # rows of levels counted, not measured
         self.dirty = False
@@ -241,8 +247,7 @@ class Store:
                 return
             records = {level_id(r["level"]): Record(**r) for r in doc["records"]}
             counts = {str(k): int(v) for k, v in doc.get("counts", {}).items()}
-        except (orjson.JSONDecodeError, TypeError, KeyError, AttributeError, ValueError,
-                *self._errors):
+        except self._bad_store:
             return
         self.records, self.counts = records, counts
 
@@ -274,7 +279,7 @@ class Store:
             return None
         try:
             data = zlib.decompress(self._read(self.folder, rec.payload))
-        except (zlib.error, *self._errors):
+        except self._bad_payload:
             return None
         return data if hashlib.sha256(data).hexdigest() == rec.sha256 else None
 

@@ -6,6 +6,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from reduce.contract import MANIFEST_FORMAT
 from reduce.measure import QUICK_NOTE
 from reduce.publish import sha256
 from reduce.sizes import BROTLI_AUTO_MAX, Sizes, measure_all
@@ -28,7 +29,7 @@ def build_manifest(result: FitResult, path: Path) -> dict[str, Any]:
     rec = red.record(result.level)
     src = result.source
     m: dict[str, Any] = {
-        "format": "reduce.manifest/1",
+        "format": MANIFEST_FORMAT,
         "payload": path.name,
         "layout": r.output.layout,
         "sha256": sha256(data),

@@ -17,6 +17,7 @@ import polars as pl
 
 from reduce import budget as bsearch
 from reduce import cache, encode, levels
+from reduce.contract import ACCOUNTING_ORDER
 from reduce.levels import Level
 from reduce.publish import sha256
 from reduce.recipe import Recipe
@@ -113,9 +114,7 @@ class Measurer(LevelTables):
         """The level's accounting block: from the store when the level was not built now."""
         rec = self.store.get(level)
         if rec is not None and rec.accounting and self.built_rows(level) is None:
-            keys = ("input_rows", "filtered_rows", "invalid_rows", "unassigned_rows",
-                    "suppressed_rows", "represented_rows")
-            return {k: rec.accounting[k] for k in keys if k in rec.accounting}
+            return {k: rec.accounting[k] for k in ACCOUNTING_ORDER if k in rec.accounting}
         return super().accounting(level)
 
     # -- bytes ------------------------------------------------------------------------------

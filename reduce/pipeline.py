@@ -154,8 +154,8 @@ def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
                 red.progress(f"counting rows of {bsearch.describe_level(level)}")
                 rows = red.row_count(level)
                 counted.append((level, rows))
-                if rows * min(per_row) > margin * b.max:  # type: ignore[operator]
-                    c = red.estimate(level, b.on, min(per_row), b.max)  # type: ignore[type-var]
+                if rows * min(per_row) > margin * b.max:
+                    c = red.estimate(level, b.on, min(per_row), b.max)
                     cands[k] = c
                     red.forget(level)
                     return c

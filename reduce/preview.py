@@ -200,6 +200,7 @@ def _geojson_table(path: Path, doc: dict[str, Any], data: bytes) -> Table:
             v.append(props.get(k))
         geoms.append(_polygons((f or {}).get("geometry")))
     keys, measures = _split(cols, ())
+    assert isinstance(ours, dict)
     return Table(path, "geojson", str(ours.get("recipe", path.stem)),
                  dict(ours.get("level") or {}), len(feats), cols, keys, measures, geoms,
                  meta=dict(ours.get("meta") or {}), data=data)

@@ -46,9 +46,10 @@ from typing import Any
 
 import orjson
 
+from reduce.contract import MANIFEST_FORMAT as CONTRACT_MANIFEST_FORMAT
 from reduce.errors import OutputError
 
-MANIFEST_FORMAT = "reduce.manifest/1"
+MANIFEST_FORMAT = CONTRACT_MANIFEST_FORMAT
 MANIFEST_SUFFIX = ".manifest.json"
 _JOURNAL_SUFFIX = ".reduce-commit"
 LOCK_NAME = ".reduce.lock"

@@ -1170,7 +1170,7 @@ def _parse_budget(ctx: _Ctx, doc: Any, axes: Sequence[str]) -> Budget:
                            f"{did_you_mean(a, axes)}; use some of {', '.join(axes)}")
     # Axes left out of the order give up detail last, in the default sequence.
     order = tuple(order) + tuple(a for a in default_order if a not in order)
-    return Budget(mx, on, order)  # type: ignore[arg-type]
+    return Budget(mx, on, order)
 
 
 def _parse_output(ctx: _Ctx, doc: Any, base: Path) -> Output:
@@ -1229,16 +1229,16 @@ def _parse_output(ctx: _Ctx, doc: Any, base: Path) -> Output:
         if not raw:
             raise ctx.fail("output.simplify", "is empty; give a tolerance in degrees or a list, "
                            "finest (smallest) first")
-        vals = []
+        vals: list[float] = []
         for v in raw:
             if isinstance(v, bool) or not isinstance(v, (int, float)) or not 0 <= v <= 1:
                 raise ctx.fail("output.simplify", f"{_short(v)} is not a tolerance; use degrees "
                                "between 0 and 1, e.g. 0.001")
             vals.append(float(v))
-        for a, b in zip(vals, vals[1:]):
-            if b <= a:
+        for finer, coarser in zip(vals, vals[1:]):
+            if coarser <= finer:
                 raise ctx.fail("output.simplify", f"must go from finest to coarsest (increasing "
-                               f"tolerance), but {a} is followed by {b}")
+                               f"tolerance), but {finer} is followed by {coarser}")
         simplify = tuple(vals)
     if "coordinate_digits" in d:
         raw = d["coordinate_digits"]

@@ -25,7 +25,7 @@ def run_line(res: RunResult) -> str:
     c = f.chosen
     assert c is not None and f.level is not None
     parts = [f"{f.recipe.name}: {c.rows:,} rows", describe_level(f.level),
-             f"raw {format_size(c.raw)}", f"gzip {format_size(c.gzip or 0)}",
+             f"raw {format_size(c.raw or 0)}", f"gzip {format_size(c.gzip or 0)}",
              f"brotli {format_size(c.brotli)}" if c.brotli is not None
              else "brotli not measured"]
     if f.budget:

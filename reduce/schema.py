@@ -16,6 +16,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from reduce import recipe as R
+from reduce.contract import MANIFEST_FORMAT
 from reduce.sizes import MEASURES
 
 DRAFT = "https://json-schema.org/draft/2020-12/schema"
@@ -86,7 +87,7 @@ def recipe_schema() -> dict[str, Any]:
     kinds = [k for k in R.MEASURE_KINDS if k != "count"]
     # A measure: "count", or one kind naming its column (or count = true), with an optional
     # where (the same filters as source.filter).
-    measure = {"anyOf": [{"const": "count"},
+    measure: dict[str, Any] = {"anyOf": [{"const": "count"},
                          {"type": "object", "minProperties": 1, "maxProperties": 2,
                           "properties": {**{k: _STR for k in kinds}, "count": {"const": True},
                                          "where": {"type": "array", "items": filter_,
@@ -184,12 +185,12 @@ def manifest_schema() -> dict[str, Any]:
     count = {"type": "integer", "minimum": 0}
     maybe = {"type": ["integer", "null"], "minimum": 0}
     return {
-        "$schema": DRAFT, "$id": "reduce.manifest/1", "title": "reduce manifest",
+        "$schema": DRAFT, "$id": MANIFEST_FORMAT, "title": "reduce manifest",
         "type": "object",
         "required": ["format", "payload", "layout", "sha256", "bytes", "rows", "elements",
                      "recipe", "level", "frontier", "accounting"],
         "properties": {
-            "format": {"const": "reduce.manifest/1"},
+            "format": {"const": MANIFEST_FORMAT},
             "payload": {"type": "string", "minLength": 1},
             "layout": {"enum": list(R.LAYOUTS)},
             "sha256": {"type": "string", "pattern": "^[0-9a-f]{64}$"},

@@ -213,7 +213,7 @@ def _text_casts(recipe: Recipe, fmt: str, schema: pl.Schema, label: str,
     coords = [c for c in dict.fromkeys(coords) if c in schema
               and (schema[c] == pl.String or schema[c].is_numeric())]
     casts = [parse_coordinate_text(c).alias(c) for c in coords]
-    fixed = dict(schema.items())
+    fixed: dict[str, Any] = dict(schema.items())
     for c in coords:
         fixed[c] = pl.Float64
     text = list(coords)
