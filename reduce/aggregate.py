@@ -157,12 +157,12 @@ def _merge_aggs(measures: Sequence[MeasureSpec], present: Sequence[str]) -> list
     return [a for a in aggs if a.meta.output_name() in present]
 
 
-# A large source is first probed: its first rows are grouped alone. If the groups number more
-# than a quarter of those rows (events too sparse for the finest level to shrink them, so the
-# finest partial would be about as large as the source), the keyed rows are written to a
-# parquet file by a streaming pass ("spilled"), memory holding only the pass's buffers, and
-# every level is aggregated from that file. Otherwise the other rows are grouped in one pass
-# and the two results merged.
+# A large source is first probed: the distinct finest keys of its first rows are counted
+# (keys only: no coarser exact cells, no measures). If they number more than a quarter of
+# those rows (events too sparse for the finest level to shrink them, so the finest partial
+# would be about as large as the source), the keyed rows are written to a parquet file by a
+# streaming pass ("spilled"), memory holding only the pass's buffers, and every level is
+# aggregated from that file. Otherwise every row is grouped in one pass.
 PROBE_ROWS = 1_000_000
 _SPARSE = 0.25
 PART_ROWS = 5_000_000  # input rows per part of the spilled rows (at most 64 parts)
@@ -287,6 +287,17 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
         _check_overflow(recipe, renamed, label, out)
         return out.drop([_ovf(m) for m in renamed if _ovf(m) in out.columns])
 
+    def _probe_groups(frame: pl.LazyFrame) -> int:
+        """Valid groups of the finest keys among ``frame``'s rows."""
+        finest = [e for e in key_exprs if not is_hidden(e.meta.output_name())]
+        rows = frame.select([*finest, *([reason] if reason is not None else [])])
+        rows = (rows.filter(pl.col(INVALID) == 0).drop(INVALID) if reason is not None
+                else rows.drop_nulls(list(keys)))
+        try:
+            return int(rows.unique().select(pl.len()).collect(engine="streaming").item())
+        except pl.exceptions.PolarsError as e:
+            raise _scan_error(recipe, src, label, e) from None
+
     input_rows = src.count_rows()
     probe = probe_rows()
     if spill_dir is None or dnames or src.format != "parquet" or input_rows <= probe:
@@ -296,9 +307,14 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
     else:
         if progress:
             progress(f"scanning the source: the first {probe:,} of {input_rows:,} rows")
-        first = scan(src.rows_frame(0, probe))
-        if first.filter(pl.col(INVALID) == 0).height > _SPARSE * probe:
-            del first
+        if _probe_groups(src.rows_frame(0, probe)) <= _SPARSE * probe:
+            # Dense enough to group in memory: one pass over every row. (The probe computed
+            # the finest keys only, not the coarser exact cells nor any measure: its groups
+            # decide, and a dense source's probe rows cost little to read again.)
+            if progress:
+                progress("scanning the source")
+            grouped = scan(lf)
+        else:
             if progress:
                 progress(f"scanning the source: writing its {input_rows:,} keyed rows to disk "
                          "(events too sparse to group in memory)")
@@ -321,13 +337,6 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
                                   "with --no-cache) at a disk with room for about 16 bytes per "
                                   "event") from None
             return _spilled(recipe, label, keys, folder, input_rows, renamed, floats)
-        if progress:
-            progress(f"scanning the source: rows {probe + 1:,} to {input_rows:,}")
-        rest = scan(src.rows_frame(probe, input_rows - probe))
-        both = pl.concat([first, rest], how="vertical_relaxed")
-        del first, rest
-        grouped = both.group_by([*keys, *hidden, INVALID]).agg(
-            _merge_aggs(renamed, both.columns))
     if progress:
         progress("building the finest partial")
     kept = int(grouped.get_column(N).sum()) if grouped.height else 0

@@ -1,6 +1,6 @@
 """The spilled scan: a large source too sparse to shrink at the finest level has its keyed rows
 written to a parquet file by a streaming pass, and every level is aggregated from that file;
-a denser one is grouped in two passes (the probe, then the rest) and the results merged.
+a denser one is grouped in memory in one pass after its probe.
 
 The reference here is the one-pass scan (itself checked against DuckDB and the ``h3``
 bindings elsewhere): splitting must not change a single byte of any payload, nor the
@@ -94,7 +94,7 @@ def test_spilled_scan_gives_every_level_byte_for_byte(tmp_path: Path,
     assert spilled.partial().table.sort(keys).equals(whole.partial().table.sort(keys))
 
 
-def test_dense_source_is_scanned_in_two_passes_not_spilled(tmp_path: Path,
+def test_dense_source_is_grouped_in_memory_not_spilled(tmp_path: Path,
                                                            monkeypatch: pytest.MonkeyPatch
                                                            ) -> None:
     rng = np.random.default_rng(5)
@@ -178,7 +178,7 @@ def test_demo_recipes_give_the_same_payloads_spilled(name: str, always: bool, de
                                                      tmp_path: Path,
                                                      monkeypatch: pytest.MonkeyPatch) -> None:
     # Regions from boundaries, flows, GeoJSON geometry, rates and suppression all work the
-    # same on spilled rows (and, for dense keys, on the two-pass merge) as on one pass.
+    # same on spilled rows (and, for dense keys, after the probe) as on one pass.
     path = tmp_path / f"{name}.toml"
     path.write_text(_without_distinct((RECIPES / f"{name}.toml").read_text(), demo_root))
     recipe = reduce.load_recipe(path)
