@@ -353,7 +353,7 @@ def _plan(journal: Path) -> list[tuple[Path, Path]]:
                                         "with one process id for both")
         pid = m["pid"]
         out.append((folder / src, folder / dst))
-    (tmp_pay, pay), (tmp_man, man) = out[0], out[-1]
+    (tmp_pay, pay), tmp_man = out[0], out[-1][0]
     kinds = {p: _regular(p) for move in out for p in move}
     for p, kind in kinds.items():
         if kind is False:

@@ -27,6 +27,7 @@ from typing import Any, Literal
 import orjson
 
 from reduce.errors import RecipeError, did_you_mean, shown_path
+from reduce.levels import AXES as AXES  # the ladder axes, declared once (re-exported)
 from reduce.sizes import MEASURES, Measure, parse_size
 
 # --------------------------------------------------------------------------------------------
@@ -36,7 +37,6 @@ from reduce.sizes import MEASURES, Measure, parse_size
 FilterOp = Literal["in", "not_in", "range", "null", "not_null"]
 MeasureKind = Literal["count", "sum", "min", "max", "mean", "distinct"]
 Layout = Literal["columns", "rows", "csv", "geojson"]
-AXES = ("hex", "time", "top", "simplify", "coords", "digits")
 FLOW_COLUMNS = ("origin", "destination")  # a flow's key columns
 LAYOUTS: tuple[str, ...] = ("columns", "rows", "csv", "geojson")
 SOURCE_FORMATS = ("parquet", "csv", "ndjson")
@@ -266,12 +266,6 @@ class Recipe:
         if self.region:
             names.append("region")
         return tuple(names)
-
-    def measure(self, name: str) -> MeasureSpec:
-        for m in self.measures:
-            if m.name == name:
-                return m
-        raise KeyError(name)
 
     def ladder(self) -> dict[str, tuple[Any, ...]]:
         """Every axis with its levels, finest first."""

@@ -168,12 +168,6 @@ def quick_look(data: bytes, on: Measure, limit: int) -> QuickLook:
     return look
 
 
-def quick_fits(data: bytes, on: Measure, limit: int) -> bool | None:
-    """True or False when a fast compression settles whether ``data`` fits ``limit`` on
-    ``on``; None when it is too close to call (then measure exactly)."""
-    return quick_look(data, on, limit).fits
-
-
 @dataclass(frozen=True, slots=True)
 class Sizes:
     raw: int

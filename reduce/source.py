@@ -535,10 +535,6 @@ def locate_value(src: OpenSource, column: str, value: str) -> tuple[Path, int] |
     return None
 
 
-def source_size(files: tuple[Path, ...]) -> int:
-    return sum(os.path.getsize(f) for f in files)
-
-
 # --------------------------------------------------------------------------------------------
 # Files changed during a run
 # --------------------------------------------------------------------------------------------
