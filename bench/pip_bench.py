@@ -1,4 +1,4 @@
-"""Point-in-polygon throughput: ``reduce.geo.assign`` against 50 detailed polygons.
+"""Point-in-polygon throughput: ``reduce.maps.boundaries.assign`` against 50 detailed polygons.
 
     python bench/pip_bench.py [--points 5M] [--repeat 3] [--polygons 50] [--vertices 3000]
                               [--compare] [--json FILE]
@@ -34,7 +34,7 @@ import shapely
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from reduce.geo import Boundaries, assign, load_boundaries
+from reduce.maps.boundaries import Boundaries, assign, load_boundaries
 
 CENTRE = (10.0, 45.0)
 RADIUS = 5.0

@@ -126,7 +126,7 @@ def inline_safe(data: bytes) -> bytes:
 @functools.lru_cache(maxsize=8)
 def _labels_of(path: str, mtime_ns: int, id_property: str,
                label_property: str) -> dict[str, str]:
-    from reduce import geo
+    from reduce.maps import boundaries as geo
 
     return geo.region_labels(Path(path), id_property, label_property)
 
@@ -169,7 +169,7 @@ def encode(recipe: Recipe, df: pl.DataFrame, *, level: Mapping[str, Any],
     if layout == "geojson":
         if geometry is None:
             raise ValueError("the geojson layout needs a geometry provider")
-        from reduce import geojson
+        from reduce.maps import geojson
 
         geoms = geometry(plain)
         props = {c: plain.get_column(c).to_list() for c in plain.columns}

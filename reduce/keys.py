@@ -165,7 +165,7 @@ def _valid_coord(col: str, limit: float) -> pl.Expr:
 
 
 def _boundaries(path: Path, id_property: str) -> Any:
-    from reduce import geo
+    from reduce.maps import boundaries as geo
 
     return geo.load_boundaries(path, id_property)
 
@@ -197,7 +197,7 @@ def scan_keys(recipe: Recipe, lf: pl.LazyFrame,
     if r is not None and r.source is not None:
         named.append((r.column, pl.col(r.source).cast(pl.String)))
     elif r is not None and r.boundaries is not None:
-        from reduce import geo
+        from reduce.maps import boundaries as geo
 
         assert src.lat is not None and src.lon is not None and r.id_property is not None
         e = geo.assign_expr(src.lat, src.lon, _boundaries(r.boundaries, r.id_property))
@@ -223,7 +223,7 @@ def scan_keys(recipe: Recipe, lf: pl.LazyFrame,
                     pl.col(end.lon).cast(pl.Float64),
                     f.hex_res))
             else:
-                from reduce import geo
+                from reduce.maps import boundaries as geo
 
                 assert f.boundaries is not None and f.id_property is not None
                 e = geo.assign_expr(end.lat, end.lon, _boundaries(f.boundaries, f.id_property))

@@ -143,7 +143,7 @@ class Measurer(LevelTables):
 
     def _geometry(self, level: Mapping[str, Any]) -> Callable[[pl.DataFrame], list[Any]]:
         """A function giving each payload row its GeoJSON geometry at this level."""
-        from reduce import geojson
+        from reduce.maps import geojson
 
         r = self.recipe
         coords = int(level.get("coords", r.output.coordinate_digits[0]))
@@ -164,7 +164,8 @@ class Measurer(LevelTables):
         tol = float(level.get("simplify", 0.0))
         key = (tol, coords)
         if key not in self._region_geoms:
-            from reduce import geo, topology
+            from reduce.maps import boundaries as geo
+            from reduce.maps import topology
 
             assert r.region.id_property is not None
             b = self._boundaries or geo.load_boundaries(r.region.boundaries,

@@ -25,7 +25,7 @@ from shapely.geometry import shape
 from reduce._scenario import generate
 from reduce.demo import SEED as DEMO_SEED
 from reduce.errors import ReduceError, SourceError
-from reduce.geo import Boundaries, assign, assign_expr, load_boundaries
+from reduce.maps.boundaries import Boundaries, assign, assign_expr, load_boundaries
 
 # ------------------------------------------------------------------------------------ fixtures
 

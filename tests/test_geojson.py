@@ -25,7 +25,7 @@ import pytest
 import shapely
 from shapely.geometry import shape
 
-from reduce.geojson import feature_collection, hex_polygon, polygon_geometry
+from reduce.maps.geojson import feature_collection, hex_polygon, polygon_geometry
 
 
 def signed_area(ring: list[list[float]]) -> float:

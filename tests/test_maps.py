@@ -11,7 +11,7 @@ import pytest
 import shapely
 
 import reduce
-from reduce.geojson import ring_area
+from reduce.maps.geojson import ring_area
 from tests._builders import FIXTURES, write_recipe
 
 

@@ -29,8 +29,8 @@ import shapely.ops
 
 from reduce._scenario import generate
 from reduce.demo import SEED as DEMO_SEED
-from reduce.geo import Boundaries, load_boundaries
-from reduce.topology import (
+from reduce.maps.boundaries import Boundaries, load_boundaries
+from reduce.maps.topology import (
     default_tolerance,
     geometry_bytes,
     quantize,

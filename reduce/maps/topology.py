@@ -39,8 +39,8 @@ import numpy as np
 import orjson
 import shapely
 
-from reduce.geo import Boundaries
-from reduce.geojson import polygon_geometry
+from reduce.maps.boundaries import Boundaries
+from reduce.maps.geojson import polygon_geometry
 
 __all__ = [
     "Topology",
@@ -391,7 +391,7 @@ def quantize(geoms: Sequence[Any], digits: int) -> tuple[Any, ...]:
 def geometry_bytes(geoms: Iterable[Any], digits: int) -> int:
     """Bytes of the geometries' ``coordinates`` as the GeoJSON layout writes them.
 
-    Each geometry goes through :func:`reduce.geojson.polygon_geometry` (rounded to
+    Each geometry goes through :func:`reduce.maps.geojson.polygon_geometry` (rounded to
     ``digits``, oriented, duplicates removed) and its coordinates array is encoded with
     orjson, as in a payload.
     """
