@@ -90,7 +90,7 @@ def _cache_warnings_as_lines() -> Iterator[None]:
 
 class _Group(click.Group):
     # Commands imported only when used, so `reduce run` does not pay for the audit's imports.
-    _lazy = {"audit": ("reduce._audit_cli", "audit")}
+    _lazy = {"audit": ("reduce.audit.cli", "audit")}
 
     def list_commands(self, ctx: click.Context) -> list[str]:
         return sorted([*super().list_commands(ctx), *self._lazy])

@@ -1,4 +1,4 @@
-"""Tests of the ``reduce audit`` click command (``reduce._audit_cli.audit``).
+"""Tests of the ``reduce audit`` click command (``reduce.audit.cli.audit``).
 
 Exit codes: 0 clean, 1 findings (inconsistent payload, over budget), 2 bad input. Findings are
 ``PATH: problem`` lines on stderr; errors a single ``error: ...`` line without a traceback.
@@ -18,7 +18,7 @@ from typing import Any
 import pytest
 from click.testing import CliRunner, Result
 
-from reduce._audit_cli import audit
+from reduce.audit.cli import audit
 
 _spec = importlib.util.spec_from_file_location(
     "audit_builders", Path(__file__).parent / "fixtures_audit" / "builders.py"

@@ -18,7 +18,8 @@ import pytest
 from click.testing import CliRunner
 
 from reduce import audit as audit_mod
-from reduce._audit_cli import audit
+from reduce.audit import files as audit_files
+from reduce.audit.cli import audit
 
 REPO = Path(__file__).resolve().parents[1]
 _spec = importlib.util.spec_from_file_location(
@@ -81,7 +82,7 @@ def test_link_to_a_regular_file_in_the_folder_is_audited(tmp_path: Path) -> None
 def test_file_over_the_size_cap_is_refused(tmp_path: Path,
                                            monkeypatch: pytest.MonkeyPatch) -> None:
     path = builders.write_payload(tmp_path / "x.json")
-    monkeypatch.setattr(audit_mod, "READ_MAX_BYTES", 100)
+    monkeypatch.setattr(audit_files, "READ_MAX_BYTES", 100)
     size = path.stat().st_size
     res = CliRunner().invoke(audit, [str(path)])
     assert res.exit_code == 2

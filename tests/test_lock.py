@@ -25,7 +25,7 @@ from pathlib import Path
 import pytest
 from click.testing import CliRunner
 
-from reduce._audit_cli import audit
+from reduce.audit.cli import audit
 from reduce.publish import folder_lock, manifest_path, publish, reading
 from tests._builders import project
 
