@@ -13,9 +13,8 @@ Library entry points (the command line calls the same functions):
 
 from __future__ import annotations
 
-__version__ = "0.1.0"
-
-from reduce.errors import (  # noqa: E402
+from reduce._version import __version__
+from reduce.errors import (
     AuditError,
     BudgetError,
     DenominatorError,
@@ -24,9 +23,9 @@ from reduce.errors import (  # noqa: E402
     ReduceError,
     SourceError,
 )
-from reduce.pipeline import FitResult, RunResult, fit, ladder, run  # noqa: E402
-from reduce.recipe import Recipe, load_recipe  # noqa: E402
-from reduce.validate import CheckReport, check  # noqa: E402
+from reduce.pipeline import FitResult, RunResult, fit, ladder, run
+from reduce.recipe import Recipe, load_recipe
+from reduce.validate import CheckReport, check
 
 __all__ = [
     "AuditError", "BudgetError", "CheckReport", "DenominatorError", "FitResult", "OutputError",

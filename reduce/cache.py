@@ -43,9 +43,9 @@ from pathlib import Path
 import orjson
 import polars as pl
 
-from reduce import __version__
+from reduce._util.procs import process_alive
+from reduce._version import __version__
 from reduce.aggregate import Accounting, Partial, Spilled
-from reduce.publish import process_alive
 from reduce.recipe import Recipe, parse_time_bin
 
 SUMS = "sums.json"

@@ -19,7 +19,7 @@ from typing import Any
 import click
 import orjson
 
-from reduce import __version__
+from reduce._version import __version__
 from reduce.errors import RecipeError, ReduceError
 from reduce.sizes import MEASURES, parse_size
 

@@ -22,8 +22,8 @@ import orjson
 import polars as pl
 import polars_h3 as plh3
 
-from reduce.contract import ACCOUNTING_ORDER, COLUMNS_FORMAT, GEOJSON_FORMAT, MAX_SAFE_INTEGER
 from reduce.aggregate import N
+from reduce.contract import ACCOUNTING_ORDER, COLUMNS_FORMAT, GEOJSON_FORMAT, MAX_SAFE_INTEGER
 from reduce.errors import ReduceError
 from reduce.keys import HEX, TIME
 from reduce.recipe import Recipe

@@ -46,6 +46,7 @@ from typing import Any
 
 import orjson
 
+from reduce._util.procs import process_alive
 from reduce.contract import MANIFEST_FORMAT as CONTRACT_MANIFEST_FORMAT
 from reduce.errors import OutputError
 
@@ -410,17 +411,6 @@ def recover(folder: Path, *, wait: float | None = None) -> list[Path]:
         return []
     with folder_lock(folder, wait=wait):
         return _recover_locked(folder)
-
-
-def process_alive(pid: int) -> bool:
-    """Whether a process with this id runs (one of another user's counts as running)."""
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
 
 
 # --------------------------------------------------------------------------------------------

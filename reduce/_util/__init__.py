@@ -1,0 +1,1 @@
+"""The few helpers several modules share (private to the package)."""
