@@ -41,7 +41,26 @@ from reduce.source import open_source
 @pytest.fixture(autouse=True)
 def _isolated_cache(monkeypatch: pytest.MonkeyPatch,
                     tmp_path_factory: pytest.TempPathFactory) -> None:
-    monkeypatch.setenv("REDUCE_CACHE_DIR", str(tmp_path_factory.getbasetemp() / "reduce-cache"))
+    """Every test gets a cache folder of its own (outside its tmp_path, so listings of
+    tmp_path do not see it); a test that needs the folder reads ``$REDUCE_CACHE_DIR``."""
+    monkeypatch.setenv("REDUCE_CACHE_DIR", str(tmp_path_factory.mktemp("reduce-cache")))
+
+
+# --------------------------------------------------------------------------------------------
+# The command line, in process
+# --------------------------------------------------------------------------------------------
+
+
+def invoke(*args: str) -> tuple[int, str, str]:
+    """Run ``reduce ARGS`` in process: (exit code, stdout, stderr). An exception other than
+    the exit itself means click caught a crash (a bug), so it fails the test."""
+    from click.testing import CliRunner
+
+    from reduce.cli import main
+
+    res = CliRunner().invoke(main, list(args))
+    assert res.exception is None or isinstance(res.exception, SystemExit), repr(res.exception)
+    return res.exit_code, res.stdout, res.stderr
 
 
 # --------------------------------------------------------------------------------------------
@@ -235,8 +254,8 @@ def demo_payloads(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
     (``sightings-hex``, an empty payload) and with ``prune.min_count.min = 1``
     (``sightings-hex-all``).
     """
-    from reduce.demo import RECIPES, SEED
     from reduce._scenario import generate
+    from reduce.demo import RECIPES, SEED
 
     root = tmp_path_factory.mktemp("demo-payloads")
     data = generate(root / "data", rows=20_000, seed=SEED).root

@@ -28,9 +28,8 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 import pytest
-from click.testing import CliRunner
+from conftest import invoke
 
-from reduce.cli import main
 from tests._builders import FIXTURES, events
 
 GOOD = (FIXTURES / "recipes" / "base.toml").read_text(encoding="utf-8")
@@ -44,11 +43,6 @@ def _isolated(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setenv("REDUCE_CACHE_DIR", str(tmp_path / CACHE))
 
 
-def invoke(*args: str) -> tuple[int, str, str]:
-    res = CliRunner().invoke(main, list(args))
-    # An exception other than the exit itself means click caught a crash for us.
-    assert res.exception is None or isinstance(res.exception, SystemExit), repr(res.exception)
-    return res.exit_code, res.stdout, res.stderr
 
 
 def one_line(stderr: str) -> str:

@@ -151,7 +151,6 @@ def test_payload_level_and_manifest_record_the_choice(tmp_path: Path,
 def test_refit_with_another_budget_reuses_the_cached_partial(tmp_path: Path,
                                                             monkeypatch: pytest.MonkeyPatch
                                                             ) -> None:
-    monkeypatch.setenv("REDUCE_CACHE_DIR", str(tmp_path / "cache"))
     recipe = project(tmp_path)
     first = reduce.ladder(recipe, budget="30KB")
     again = reduce.ladder(recipe, budget="10KB", on="brotli")

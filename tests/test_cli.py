@@ -6,7 +6,7 @@ import json
 from pathlib import Path
 
 import pytest
-from click.testing import CliRunner
+from conftest import invoke
 
 from reduce.cli import main
 from tests._builders import HEX_RECIPE, REGION_RECIPE, events, project, write_recipe
@@ -15,12 +15,8 @@ from tests._builders import HEX_RECIPE, REGION_RECIPE, events, project, write_re
 @pytest.fixture(autouse=True)
 def _isolated(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.chdir(tmp_path)
-    monkeypatch.setenv("REDUCE_CACHE_DIR", str(tmp_path / "cache"))
 
 
-def invoke(*args: str) -> tuple[int, str, str]:
-    res = CliRunner().invoke(main, list(args))
-    return res.exit_code, res.stdout, res.stderr
 
 
 def one_error_line(stderr: str) -> str:

@@ -14,10 +14,7 @@ import duckdb
 import numpy as np
 import polars as pl
 import pytest
-from click.testing import CliRunner
-from conftest import to_toml
-
-from reduce.cli import main
+from conftest import invoke, to_toml
 
 
 @pytest.fixture(autouse=True)
@@ -25,9 +22,6 @@ def _in_tmp(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.chdir(tmp_path)
 
 
-def invoke(*args: str) -> tuple[int, str, str]:
-    res = CliRunner().invoke(main, list(args))
-    return res.exit_code, res.stdout, res.stderr
 
 
 def _rows(n: int = 3000, seed: int = 3) -> pl.DataFrame:

@@ -19,10 +19,7 @@ from zoneinfo import ZoneInfo
 import duckdb
 import polars as pl
 import pytest
-from click.testing import CliRunner
-from conftest import write_case
-
-from reduce.cli import main
+from conftest import invoke, write_case
 
 CHI = "America/Chicago"
 
@@ -42,9 +39,6 @@ def _events() -> pl.DataFrame:
                          pl.Series("k", ["x"] * len(times))])
 
 
-def invoke(*args: str) -> tuple[int, str, str]:
-    res = CliRunner().invoke(main, list(args))
-    return res.exit_code, res.stdout, res.stderr
 
 
 def _kept(tmp_path: Path, events: pl.DataFrame | None, column: str, flt: dict[str, Any],

@@ -60,7 +60,6 @@ layout = "geojson"
 
 @pytest.fixture(autouse=True)
 def _cache(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setenv("REDUCE_CACHE_DIR", str(tmp_path / "cache"))
     monkeypatch.chdir(tmp_path)
 
 

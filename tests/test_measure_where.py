@@ -41,7 +41,6 @@ path = "out/flights.json"
 
 @pytest.fixture(autouse=True)
 def _in_tmp(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setenv("REDUCE_CACHE_DIR", str(tmp_path / "cache"))
     monkeypatch.chdir(tmp_path)
 
 

@@ -12,9 +12,8 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 import pytest
-from click.testing import CliRunner
+from conftest import invoke
 
-from reduce.cli import main
 from tests._builders import FIXTURES, write_recipe
 
 NAMES = {"A": "Avra", "B": "Brell", "C": "Cosk", "D": "Dunmere"}
@@ -22,7 +21,6 @@ NAMES = {"A": "Avra", "B": "Brell", "C": "Cosk", "D": "Dunmere"}
 
 @pytest.fixture(autouse=True)
 def _in_tmp(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setenv("REDUCE_CACHE_DIR", str(tmp_path / "cache"))
     monkeypatch.chdir(tmp_path)
 
 
@@ -53,9 +51,6 @@ def _case(folder: Path, layout: str, label: str = "name", names: dict[str, objec
         """)
 
 
-def invoke(*args: str) -> tuple[int, str, str]:
-    res = CliRunner().invoke(main, list(args))
-    return res.exit_code, res.stdout, res.stderr
 
 
 def test_geojson_features_carry_the_label_property(tmp_path: Path) -> None:

@@ -26,9 +26,8 @@ from typing import Any
 
 import polars as pl
 import pytest
-from click.testing import CliRunner
+from conftest import invoke
 
-from reduce.cli import main
 from tests._builders import events
 
 PAYLOAD_RECIPE = """
@@ -67,13 +66,8 @@ AWKWARD = [
 @pytest.fixture(autouse=True)
 def _isolated(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.chdir(tmp_path)
-    monkeypatch.setenv("REDUCE_CACHE_DIR", str(tmp_path / "cache"))
 
 
-def invoke(*args: str) -> tuple[int, str, str]:
-    res = CliRunner().invoke(main, list(args))
-    assert res.exception is None or isinstance(res.exception, SystemExit), repr(res.exception)
-    return res.exit_code, res.stdout, res.stderr
 
 
 def _refuse_constant(name: str) -> Any:
