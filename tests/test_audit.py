@@ -163,7 +163,7 @@ def _broken(tmp_path: Path, **overrides: Any) -> FileAudit:
     return audit_one(write_payload(tmp_path / "x.json", columns_payload(**overrides)))
 
 
-def test_short_column(tmp_path: Path) -> None:
+def test_a_column_shorter_than_rows_is_a_problem(tmp_path: Path) -> None:
     columns = columns_payload()["columns"] | {"count": [12, 5]}
     f = _broken(tmp_path, columns=columns)
     assert f.problems == ("column 'count' has 2 values, expected rows = 3",)
@@ -194,7 +194,7 @@ def test_nan_written_by_hand(tmp_path: Path) -> None:
         (b"[1, 2,]", "trailing comma is not allowed at line 1 column 6 (byte 5)"),
     ],
 )
-def test_invalid_json_positions(tmp_path: Path, text: bytes, message: str) -> None:
+def test_invalid_json_is_a_problem_naming_line_and_column(tmp_path: Path, text: bytes, message: str) -> None:
     f = audit_one(write_bytes(tmp_path / "any.json", text))
     assert f.problems == (f"not valid JSON (RFC 8259): {message}",)
 
@@ -205,7 +205,7 @@ def test_integer_beyond_safe_range(tmp_path: Path) -> None:
     assert f.problems == (f"column 'count': integer 1152921504606846976 at row 1 is {SAFE}",)
 
 
-def test_safe_integer_boundary(tmp_path: Path) -> None:
+def test_integers_up_to_2_53_minus_1_pass_and_beyond_fail(tmp_path: Path) -> None:
     # Number.MAX_SAFE_INTEGER = 2**53 - 1 (ECMA-262): allowed; 2**53 and beyond are not.
     ok = columns_payload()["columns"] | {"count": [2**53 - 1, -(2**53 - 1), 0]}
     assert _broken(tmp_path, columns=ok).problems == ()
@@ -235,7 +235,7 @@ def test_unsafe_integer_elsewhere_in_payload(tmp_path: Path) -> None:
     assert f.problems == (f"key 'meta': integer 1152921504606846976 is {SAFE}",)
 
 
-def test_wrong_manifest_checksum(tmp_path: Path) -> None:
+def test_a_manifest_checksum_that_differs_is_a_problem(tmp_path: Path) -> None:
     path = write_payload(tmp_path / "x.json")
     write_manifest(path, sha256="0" * 64)
     digest = hashlib.sha256(path.read_bytes()).hexdigest()  # hashlib SHA-256 (FIPS 180-4)
@@ -286,7 +286,7 @@ def test_manifest_naming_another_payload(tmp_path: Path) -> None:
     )
 
 
-def test_broken_accounting(tmp_path: Path) -> None:
+def test_accounting_that_does_not_add_up_is_a_problem(tmp_path: Path) -> None:
     accounting = columns_payload()["accounting"] | {"represented_rows": 23}
     f = _broken(tmp_path, accounting=accounting)
     assert f.problems == (
@@ -319,7 +319,7 @@ def test_accounting_keys_missing_or_wrong(tmp_path: Path) -> None:
     )
 
 
-def test_index_outside_dictionary(tmp_path: Path) -> None:
+def test_a_dictionary_index_outside_its_labels_is_a_problem(tmp_path: Path) -> None:
     columns = columns_payload()["columns"] | {"kind": [0, 3, 1]}
     f = _broken(tmp_path, columns=columns)
     assert f.problems == (
@@ -390,7 +390,7 @@ def _compact_len(value: Any) -> int:
     return len(dump(value))
 
 
-def test_row_json(tmp_path: Path) -> None:
+def test_row_json_is_measured_field_by_field_with_precision_notes(tmp_path: Path) -> None:
     rows = [
         {"id": 1, "lat": 52.5200001, "lon": 13.4, "name": "Mitte"},
         {"id": 2, "lat": 52.51, "lon": 13.3999999, "name": "Kreuzberg"},
@@ -414,7 +414,7 @@ def test_row_json_unsafe_integer_names_the_row(tmp_path: Path) -> None:
     assert f.problems == (f"key 'a': integer 1152921504606846976 at row 2 is {SAFE}",)
 
 
-def test_geojson(tmp_path: Path) -> None:
+def test_geojson_is_measured_with_coordinate_precision_notes(tmp_path: Path) -> None:
     features = [
         {
             "type": "Feature",
@@ -447,7 +447,7 @@ def test_geojson(tmp_path: Path) -> None:
     assert f.fields[0].name == "geometry"  # the costliest field comes first
 
 
-def test_csv(tmp_path: Path) -> None:
+def test_csv_is_measured_column_by_column(tmp_path: Path) -> None:
     text = (
         "hex,count,share,label\n"
         '8928308280fffff,12,0.1234567,"a, quoted"\n'
@@ -476,7 +476,7 @@ def test_unreadable_csv_is_a_finding(tmp_path: Path) -> None:
 
 
 @pytest.mark.parametrize("fmt", ["file", "stream", "feather"])
-def test_arrow_ipc(tmp_path: Path, fmt: str) -> None:
+def test_arrow_ipc_is_measured_column_by_column(tmp_path: Path, fmt: str) -> None:
     table = pa.table(
         {
             "lat": pa.array([52.1234567, 52.5, None, 48.1], pa.float64()),
@@ -657,7 +657,7 @@ def test_glob_is_also_matched_against_the_given_path(tmp_path: Path) -> None:
         ("./data/a.json", "data/a.json", True),
     ],
 )
-def test_glob_semantics(glob: str, path: str, matches: bool) -> None:
+def test_budget_globs_match_paths_as_documented(glob: str, path: str, matches: bool) -> None:
     assert bool(audit_module._glob_regex(glob).fullmatch(path)) is matches
 
 
@@ -690,7 +690,7 @@ def test_glob_semantics(glob: str, path: str, matches: bool) -> None:
         ("[[file]\n", None),
     ],
 )
-def test_budgets_file_errors(tmp_path: Path, text: str, message: str | None) -> None:
+def test_a_malformed_budgets_file_is_one_error_naming_the_key(tmp_path: Path, text: str, message: str | None) -> None:
     path = _budgets(tmp_path, text)
     with pytest.raises(AuditError) as info:
         load_budgets(path)
@@ -701,7 +701,7 @@ def test_budgets_file_errors(tmp_path: Path, text: str, message: str | None) -> 
         assert info.value.message == f"{path}: {message}"
 
 
-def test_missing_budgets_file(tmp_path: Path) -> None:
+def test_a_missing_budgets_file_is_an_error(tmp_path: Path) -> None:
     with pytest.raises(AuditError, match="budgets file not found"):
         audit_paths([write_payload(tmp_path / "x.json")], budgets_file=tmp_path / "no.toml")
 
@@ -718,7 +718,7 @@ def test_bad_budget_and_measure(tmp_path: Path) -> None:
     )
 
 
-def test_budget_verdict_boundary(tmp_path: Path) -> None:
+def test_a_file_exactly_at_its_budget_passes_and_one_byte_over_fails(tmp_path: Path) -> None:
     path = write_payload(tmp_path / "x.json")
     size = path.stat().st_size
     at = audit_one(path, budget=size, on="raw")
@@ -747,7 +747,7 @@ def test_budget_verdict_boundary(tmp_path: Path) -> None:
         (10**9, "WebGL (GPU)"),
     ],
 )
-def test_advice_thresholds(elements: int, surface: str) -> None:
+def test_advice_names_the_surface_for_the_element_count(elements: int, surface: str) -> None:
     # Rules of thumb (common practice): ~1,000 DOM nodes, ~100,000 canvas marks.
     assert advice(elements) == surface
 
@@ -771,7 +771,7 @@ def _mixed_report(tmp_path: Path) -> AuditReport:
     return audit_paths([tmp_path], budget="100KB", total="1KB", on="gzip")
 
 
-def test_render_table(tmp_path: Path) -> None:
+def test_the_table_report_names_files_sizes_and_surfaces(tmp_path: Path) -> None:
     report = _mixed_report(tmp_path)
     text = render_table(report)
     assert f"{tmp_path / 'x.json'}  [reduce.columns/1]" in text
@@ -782,7 +782,7 @@ def test_render_table(tmp_path: Path) -> None:
     assert f"{len(report.findings)} problem(s)" in text
 
 
-def test_render_markdown(tmp_path: Path) -> None:
+def test_the_markdown_report_has_one_row_per_file(tmp_path: Path) -> None:
     report = _mixed_report(tmp_path)
     text = render_markdown(report)
     assert text.startswith("### reduce audit\n")

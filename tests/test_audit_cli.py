@@ -282,7 +282,7 @@ def test_unreadable_file_exit_2(tmp_path: Path, monkeypatch: pytest.MonkeyPatch)
 # ---------------------------------------------------------------------------- formats
 
 
-def test_json_output(tmp_path: Path) -> None:
+def test_json_output_is_the_report_as_json_with_exit_code(tmp_path: Path) -> None:
     path = builders.write_payload(tmp_path / "x.json")
     result = run(path, "--json", "--budget", "300KB")
     assert result.exit_code == 0
@@ -295,7 +295,7 @@ def test_json_output(tmp_path: Path) -> None:
     assert entry["bytes"]["gzip"] == len(gzip.compress(path.read_bytes(), 9, mtime=0))
 
 
-def test_markdown_output(tmp_path: Path) -> None:
+def test_markdown_output_is_a_table_for_a_pull_request(tmp_path: Path) -> None:
     path = builders.write_payload(tmp_path / "x.json")
     result = run(path, "--markdown")
     assert result.exit_code == 0

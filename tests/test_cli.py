@@ -80,7 +80,7 @@ def test_coordinates_stored_as_text_are_a_type_error(tmp_path: Path) -> None:
         "source.lat needs numbers (decimal degrees); convert the column or pick another")
 
 
-def test_missing_source_file(tmp_path: Path) -> None:
+def test_a_missing_source_file_is_one_error_line_exit_2(tmp_path: Path) -> None:
     recipe = write_recipe(tmp_path, HEX_RECIPE)
     code, _, err = invoke("run", str(recipe))
     assert code == 2
@@ -98,7 +98,7 @@ def test_unknown_time_zone_with_hint(tmp_path: Path) -> None:
         "'Europe/Paris'?); use an IANA name such as UTC or Europe/Paris")
 
 
-def test_missing_denominators_file(tmp_path: Path) -> None:
+def test_a_missing_denominators_file_is_one_error_line_exit_2(tmp_path: Path) -> None:
     recipe = project(tmp_path, REGION_RECIPE.replace("pop.csv", "people.csv"))
     code, _, err = invoke("run", str(recipe))
     assert code == 2

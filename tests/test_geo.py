@@ -115,12 +115,12 @@ def error_of(path: Path, id_property: str = "code") -> str:
     return msg
 
 
-def test_missing_file_error(tmp_path: Path) -> None:
+def test_a_missing_boundaries_file_is_an_error(tmp_path: Path) -> None:
     path = tmp_path / "nope.geojson"
     assert error_of(path) == f"{path}: boundaries file not found; check the path"
 
 
-def test_not_json_error(tmp_path: Path) -> None:
+def test_a_boundaries_file_that_is_not_json_is_an_error(tmp_path: Path) -> None:
     path = tmp_path / "b.geojson"
     path.write_text('{"type": "FeatureCollection",\n "features": [}')
     assert error_of(path) == (
@@ -155,7 +155,7 @@ def test_feature_without_id_names_its_index(tmp_path: Path) -> None:
         "another id property")
 
 
-def test_duplicate_ids_error(tmp_path: Path) -> None:
+def test_duplicate_polygon_ids_are_an_error(tmp_path: Path) -> None:
     path = write_collection(tmp_path / "b.geojson", [
         square_feature("A", 0, 0), square_feature("B", 1, 0), square_feature("A", 2, 0)])
     assert error_of(path) == (
@@ -186,7 +186,7 @@ def test_invalid_polygon_error_says_how_to_make_it_valid(tmp_path: Path) -> None
         "valid, e.g. with shapely.make_valid")
 
 
-def test_malformed_coordinates_error(tmp_path: Path) -> None:
+def test_malformed_polygon_coordinates_are_an_error(tmp_path: Path) -> None:
     bad = {"type": "Feature", "properties": {"code": "X"},
            "geometry": {"type": "Polygon", "coordinates": [[[0, 0], [1, "east"], [1, 1], [0, 0]]]}}
     path = write_collection(tmp_path / "b.geojson", [bad])

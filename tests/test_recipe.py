@@ -136,7 +136,7 @@ def test_bad_recipe_gives_exact_message(tmp_path: Path, change: tuple[str, str],
     assert error_of(tmp_path, HEX_RECIPE.replace(old, new, 1)) == expected
 
 
-def test_normalisation_without_denominators(tmp_path: Path) -> None:
+def test_rates_without_denominators_are_refused(tmp_path: Path) -> None:
     text = REGION_RECIPE.replace(
         'denominators = { path = "pop.csv", key = "prov", value = "pop" }\n', "")
     assert error_of(tmp_path, text) == (
@@ -151,7 +151,7 @@ def test_rates_of_a_distinct_measure_are_refused(tmp_path: Path) -> None:
         "additive measures can be normalised")
 
 
-def test_missing_recipe_file(tmp_path: Path) -> None:
+def test_a_missing_recipe_file_is_one_error(tmp_path: Path) -> None:
     with pytest.raises(RecipeError, match=r"^nope.toml: recipe file not found; check the "
                                           r"path$"):
         load_recipe(tmp_path / "nope.toml")
@@ -159,7 +159,7 @@ def test_missing_recipe_file(tmp_path: Path) -> None:
 
 @pytest.mark.parametrize(("text", "minutes"), [("15m", 15), ("1h", 60), ("6h", 360),
                                                 ("1d", 1440), ("1w", 10080), ("1mo", None)])
-def test_time_bins_parse(text: str, minutes: int | None) -> None:
+def test_time_bins_parse_to_their_width(text: str, minutes: int | None) -> None:
     assert parse_time_bin(text).minutes == minutes
     assert parse_time_bin(text).text == text
 
@@ -174,7 +174,7 @@ def test_time_bin_that_does_not_divide_its_unit_is_refused() -> None:
     ("3mo", "1mo", True), ("1y", "3mo", True), ("1mo", "1w", False), ("1d", "1mo", False),
     ("1h", "1d", False), ("6h", "4h", False),
 ])
-def test_time_bin_nesting(coarse: str, fine: str, expected: bool) -> None:
+def test_a_time_bin_nests_in_another_only_when_whole_bins_fit(coarse: str, fine: str, expected: bool) -> None:
     assert parse_time_bin(coarse).nests(parse_time_bin(fine)) is expected
 
 
