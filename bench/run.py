@@ -8,9 +8,9 @@ Steps (see bench/README.md for the targets and the measured results):
 1. Generate (or reuse) the synthetic event table under ``bench/data/<rows>/`` (``synth.py``)
    and write the two recipes beside it.
 2. Read every input file once so all tasks start from a warm page cache.
-3. Run the timed tasks round-robin (a, b, c, c′, d, e, p, q, s, a, b, ...), each repetition in a fresh
-   process; wall seconds from the parent, CPU seconds and peak RSS from ``os.wait4`` (the
-   child alone, with its own children).
+3. Run the timed tasks round-robin (a, b, c, c′, d, e, p, q, s, a, b, ...), each repetition
+   in a fresh process; wall seconds from the parent, CPU seconds and peak RSS from
+   ``os.wait4`` (the child alone, with its own children).
 4. H3 indexing throughput (``h3_points.py``), the re-fit from a cached finest partial, and a
    check that (b), (d) and (e) publish the same numbers, and that c′ publishes the rows and
    counts of (a).
