@@ -1,23 +1,27 @@
 """The benchmark harness: ``reduce`` against bare polars, DuckDB and pandas on one table.
 
-    python bench/run.py --rows 20M [--repeat 3] [--tasks a,b,c,d,e,p,q,s,h3,refit] [--json FILE]
+    python bench/run.py --rows 20M [--repeat 3] [--tasks a,b,c,cprime,d,e,p,q,s,h3,refit]
+                        [--json FILE]
 
 Steps (see bench/README.md for the targets and the measured results):
 
 1. Generate (or reuse) the synthetic event table under ``bench/data/<rows>/`` (``synth.py``)
    and write the two recipes beside it.
 2. Read every input file once so all tasks start from a warm page cache.
-3. Run the timed tasks round-robin (a, b, c, d, e, p, a, b, ...), each repetition in a fresh
-   process; wall seconds from the parent, CPU seconds and peak RSS from ``os.wait4`` (the
-   child alone, with its own children).
+3. Run the timed tasks round-robin (a, b, c, c′, d, e, p, q, s, a, b, ...), each repetition
+   in a fresh process; wall seconds from the parent, CPU seconds and peak RSS from
+   ``os.wait4`` (the child alone, with its own children).
 4. H3 indexing throughput (``h3_points.py``), the re-fit from a cached finest partial, and a
-   check that (b), (d) and (e) publish the same numbers.
+   check that (b), (d) and (e) publish the same numbers, and that c′ publishes the rows and
+   counts of (a).
 5. Print the table and the ratios against the targets; ``--json`` writes every figure.
 
 Tasks:
   a  reduce run recipe_a.toml --no-cache --quiet  (hex x time x kind, full ladder, budget fit)
   b  reduce run recipe_b.toml --no-cache --quiet  (region x kind, rate per 100,000, top 5)
   c  bare polars: the finest level of (a) only (tasks.py c)
+  cprime  (c′ in the report) by hand, polars + polars-h3: exactly the level (a) published, read
+     from (a)'s manifest, computed directly and written as gzip-9 JSON (tasks.py cprime)
   d  DuckDB SQL doing (b) by hand (tasks.py d)
   e  pandas doing (b) by hand (tasks.py e)
   p  (a) with progress forced on a pseudo-terminal (``script -qec``)
@@ -52,7 +56,8 @@ sys.path.insert(0, str(BENCH))
 
 import synth  # noqa: E402
 
-TIMED = ("a", "b", "c", "d", "e", "p", "q", "s")
+TIMED = ("a", "b", "c", "cprime", "d", "e", "p", "q", "s")
+LABEL = {"cprime": "c′"}  # task names as printed
 EXTRA = ("h3", "refit")
 GB = 1000**3
 
@@ -206,6 +211,9 @@ class Bench:
             if task in ("d", "e"):
                 argv += ["--out", str(d / "out" / f"{task}.json")]
             return argv
+        if task == "cprime":
+            return [self.py, str(BENCH / "tasks.py"), task, str(d), "--manifest",
+                    str(a_manifest(d)), "--out", str(cprime_payload(d))]
         if task in ("p", "q"):
             # p: progress on a terminal; q: the same terminal with --quiet, to tell the cost
             # of the progress display from the cost of the terminal wrapper.
@@ -223,7 +231,7 @@ class Bench:
         wall, ru, rc, out, err = run_proc(argv or self.argv(task), env=self.env, cwd=REPO,
                                           timeout=self.timeout)
         info: dict[str, Any] = {}
-        if task in ("c", "d", "e") and rc == 0:
+        if task in ("c", "cprime", "d", "e") and rc == 0:
             try:
                 info = json.loads(out.strip().splitlines()[-1])
             except (ValueError, IndexError):
@@ -235,7 +243,7 @@ class Bench:
         s = Sample(task, rep, wall, ru.ru_utime + ru.ru_stime, ru.ru_maxrss * 1024 / 1e6, rc,
                    load[0] if load else None, info, err.strip()[-2000:] if rc else "")
         flag = "" if rc == 0 else f"  EXIT {rc}: {err.strip().splitlines()[-1:]}"
-        print(f"  {task} #{rep + 1}: {wall:8.2f} s wall, {s.cpu:8.2f} s cpu, "
+        print(f"  {LABEL.get(task, task)} #{rep + 1}: {wall:8.2f} s wall, {s.cpu:8.2f} s cpu, "
               f"{s.rss_mb:8.0f} MB peak, load {s.load1}{flag}", flush=True)
         return s
 
@@ -243,6 +251,19 @@ class Bench:
 # --------------------------------------------------------------------------------------------
 # Setup
 # --------------------------------------------------------------------------------------------
+
+def a_payload(d: Path) -> Path:
+    """Where task (a) publishes (``--out d/out/a`` and the recipe's file name)."""
+    return d / "out" / "a" / "hex_time_kind.json"
+
+
+def a_manifest(d: Path) -> Path:
+    return a_payload(d).with_name("hex_time_kind.manifest.json")
+
+
+def cprime_payload(d: Path) -> Path:
+    return d / "out" / "cprime" / "hex_time_kind.json.gz"
+
 
 def write_recipes(d: Path, budget: str) -> None:
     (d / "recipe_a.toml").write_text(RECIPE_A.format(budget=budget))
@@ -333,6 +354,47 @@ def check_b(d: Path) -> dict[str, Any]:
     return out
 
 
+def check_cprime(d: Path) -> dict[str, Any]:
+    """Does c′ publish what (a) published? Same level, the same rows and the same count per
+    (time, hex, kind) key, value sums within the payload's rounding; and are the bytes the
+    same (c′'s gzip member decompressed, Python's gzip module)?"""
+    import gzip
+    import hashlib
+
+    try:
+        raw_a = a_payload(d).read_bytes()
+        man = json.loads(a_manifest(d).read_text())
+        raw_c = gzip.decompress(cprime_payload(d).read_bytes())
+    except (OSError, ValueError, EOFError):
+        return {"checked": False}
+
+    def rows(raw: bytes) -> tuple[dict[str, Any], dict[tuple[Any, ...], tuple[int, float]]]:
+        doc = json.loads(raw)
+        cols, dicts = doc["columns"], doc.get("dictionaries", {})
+        kind = [dicts["kind"][i] for i in cols["kind"]] if "kind" in dicts else cols["kind"]
+        keyed = {(t, h, k): (n, v) for t, h, k, n, v in zip(cols["time"], cols["hex"], kind,
+                                                             cols["events"], cols["value_sum"])}
+        return doc, keyed
+
+    doc_a, ra = rows(raw_a)
+    doc_c, rc = rows(raw_c)
+    digits = int(man["level"]["digits"])
+    same_keys = ra.keys() == rc.keys()
+    same_counts = same_keys and all(ra[k][0] == rc[k][0] for k in ra)
+    diff = max((abs((ra[k][1] or 0) - (rc[k][1] or 0)) for k in ra), default=0.0) \
+        if same_keys else None
+    return {"checked": True, "level_a": man["level"], "level_cprime": doc_c["level"],
+            "rows_a": doc_a["rows"], "rows_cprime": doc_c["rows"],
+            "same_keys": same_keys, "same_counts": same_counts,
+            "value_sum_max_diff": diff,
+            "value_sums_agree": diff is not None and diff <= 1.01 * 10**-digits,
+            "identical_bytes": raw_a == raw_c,
+            "sha256_a_manifest": man.get("sha256"),
+            "sha256_cprime": hashlib.sha256(raw_c).hexdigest(),
+            "agree": bool(man["level"] == doc_c["level"] and same_counts
+                          and doc_a["rows"] == doc_c["rows"])}
+
+
 def h3_throughput(bench: Bench) -> dict[str, Any]:
     with tempfile.NamedTemporaryFile(suffix=".json", delete=False) as tmp:
         path = Path(tmp.name)
@@ -350,9 +412,21 @@ def h3_throughput(bench: Bench) -> dict[str, Any]:
 
 
 def refit(bench: Bench, budget: str) -> dict[str, Any]:
-    """Warm the partial cache with one run, then re-fit from it with another budget."""
+    """Warm the partial cache with one run, then re-fit from it with another budget.
+
+    A re-fit or a ladder stores what it measures, so each one would make the next faster:
+    the cache as the warm run left it is copied aside and put back before every timed
+    re-fit run and every first ladder, so each of those samples starts from one cold run's
+    cache. "ladder again" is a second ladder right after the first (everything measured)."""
     d = bench.data
     shutil.rmtree(bench.cache, ignore_errors=True)
+    snapshot = bench.cache.with_name("cache-after-warm")
+    shutil.rmtree(snapshot, ignore_errors=True)
+
+    def restore() -> None:
+        shutil.rmtree(bench.cache, ignore_errors=True)
+        shutil.copytree(snapshot, bench.cache, symlinks=True)
+
     recipe = str(d / "recipe_a.toml")
     warm = bench.sample("warm", 0, [*bench.reduce, "run", recipe, "--quiet",
                                     "--out", str(d / "out" / "refit")])
@@ -368,17 +442,29 @@ def refit(bench: Bench, budget: str) -> dict[str, Any]:
         got = subprocess.run([bench.py, "-c", code, str(entries[0])], capture_output=True,
                              text=True)
         partial_rows = int(got.stdout) if got.returncode == 0 and got.stdout.strip() else None
-    ladder, run = [], []
+    shutil.copytree(bench.cache, snapshot, symlinks=True)
+    ladder_argv = [*bench.reduce, "ladder", recipe, "--budget", budget, "--quiet"]
+    ladder, again, run = [], [], []
     for i in range(bench.repeat):
-        ladder.append(bench.sample("ladder", i, [*bench.reduce, "ladder", recipe, "--budget",
-                                                 budget, "--quiet"]))
+        restore()
         run.append(bench.sample("refit-run", i, [*bench.reduce, "run", recipe, "--budget",
                                                  budget, "--quiet", "--out",
                                                  str(d / "out" / "refit")]))
+        restore()
+        ladder.append(bench.sample("ladder", i, ladder_argv))
+        again.append(bench.sample("ladder-again", i, ladder_argv))
+    shutil.rmtree(snapshot, ignore_errors=True)
+
+    def med(xs: list[Sample], key: str) -> float | None:
+        return _median([getattr(s, key) for s in xs if s.rc == 0])
+
     return {"budget": budget, "warm_run": asdict(warm), "finest_partial_rows": partial_rows,
             "ladder": [asdict(s) for s in ladder], "run": [asdict(s) for s in run],
-            "ladder_median": _median([s.wall for s in ladder if s.rc == 0]),
-            "run_median": _median([s.wall for s in run if s.rc == 0]),
+            "ladder_again": [asdict(s) for s in again],
+            "ladder_median": med(ladder, "wall"), "run_median": med(run, "wall"),
+            "ladder_again_median": med(again, "wall"),
+            "ladder_cpu_median": med(ladder, "cpu"), "run_cpu_median": med(run, "cpu"),
+            "ladder_again_cpu_median": med(again, "cpu"),
             "run_failed": sum(s.rc != 0 for s in run)}
 
 
@@ -409,7 +495,7 @@ def summarize(samples: list[Sample]) -> dict[str, dict[str, Any]]:
 
 
 def verdicts(rows: int, summary: dict[str, dict[str, Any]], h3: dict[str, Any] | None,
-             ) -> list[dict[str, Any]]:
+             ref: dict[str, Any] | None = None) -> list[dict[str, Any]]:
     def med(t: str, key: str = "median") -> float | None:
         v = summary.get(t, {}).get(key)
         return float(v) if v else None
@@ -425,8 +511,21 @@ def verdicts(rows: int, summary: dict[str, dict[str, Any]], h3: dict[str, Any] |
                         "met": met})
 
     ratio("a/c", "a", "c", "<=", 1.15)
+    ratio("a/c′", "a", "cprime", "<=", 1.15)
     ratio("b/d", "b", "d", "<=", 1.0)
     ratio("e/b", "e", "b", ">=", 10.0)
+    if ref:
+        # Warm re-fits from the cached partial against the cold run (a), same process rules.
+        for name, key, target in (("re-fit run --budget / a", "run", 0.10),
+                                  ("warm ladder / a", "ladder", 0.20),
+                                  ("warm ladder again / a", "ladder_again", 0.20)):
+            for suffix, label in (("median", "wall"), ("cpu_median", "cpu")):
+                n = ref.get(f"{key}_{suffix}")
+                d = med("a", suffix)
+                value = n / d if n and d else None
+                out.append({"figure": f"{name} ({label})", "value": value,
+                            "target": f"<= {target}",
+                            "met": None if value is None else value <= target})
     limit = 1.5 if rows <= 20_000_000 else 2.5
     rss = med("a", "rss_mb")
     out.append({"figure": "peak RSS of (a), GB", "value": rss / 1000 if rss else None,
@@ -454,10 +553,13 @@ def _f(v: float | None, fmt: str = "{:.2f}") -> str:
 
 
 def print_report(rows: int, summary: dict[str, dict[str, Any]], ver: list[dict[str, Any]],
-                 ref: dict[str, Any] | None, checks: dict[str, Any]) -> None:
+                 ref: dict[str, Any] | None, checks: dict[str, Any],
+                 cprime: dict[str, Any] | None = None,
+                 loads: dict[str, Any] | None = None) -> None:
     names = {"a": "a reduce run, hex x time x kind (ladder fit)",
              "b": "b reduce run, region x kind rates",
              "c": "c polars, finest level of (a) only",
+             "cprime": "c′ polars, (a)'s published level by hand",
              "d": "d duckdb SQL, (b) by hand",
              "e": "e pandas, (b) by hand",
              "p": "p (a) with progress on a pty",
@@ -480,8 +582,10 @@ def print_report(rows: int, summary: dict[str, dict[str, Any]], ver: list[dict[s
         cold = summary.get("a", {}).get("median")
         print(f"\nre-fit from the cached partial (budget {ref['budget']}, "
               f"{_f(ref['finest_partial_rows'], '{:,}')} rows in the cached partial):")
-        for name, key in (("reduce ladder --budget", "ladder_median"),
-                          ("reduce run --budget   ", "run_median")):
+        print("  (re-fit run and first ladder: each from the cache one cold run left)")
+        for name, key in (("reduce run --budget         ", "run_median"),
+                          ("reduce ladder --budget      ", "ladder_median"),
+                          ("reduce ladder --budget again", "ladder_again_median")):
             v = ref[key]
             if v is None:
                 print(f"  {name}: every run failed (exit 1: does the budget fit?)")
@@ -492,6 +596,23 @@ def print_report(rows: int, summary: dict[str, dict[str, Any]], ver: list[dict[s
         same = ", ".join(f"{k[-1]}: {'yes' if v else 'NO'}" for k, v in checks.items()
                          if k.startswith("b_equals_"))
         print(f"\n(b) payload rows {checks['rows']}; same numbers as {same}")
+    if cprime is not None:
+        if not cprime.get("checked"):
+            print("\n(a) and c′ payloads: not compared (a payload is missing)")
+        else:
+            yn = {True: "yes", False: "NO"}
+            lv = cprime["level_a"]
+            print(f"\n(a) and c′ payloads agree: {yn[cprime['agree']]} (level hex "
+                  f"{lv.get('hex')}, {lv.get('time')}, top {lv.get('top')}, digits "
+                  f"{lv.get('digits')}; rows {cprime['rows_a']:,} and "
+                  f"{cprime['rows_cprime']:,}; same keys {yn[cprime['same_keys']]}, same "
+                  f"counts {yn[cprime['same_counts']]}, value sums within rounding "
+                  f"{yn[cprime['value_sums_agree']]}; identical bytes "
+                  f"{yn[cprime['identical_bytes']]})")
+    if loads:
+        print(f"\nload average (1, 5, 15 min): before {loads['before']}, after "
+              f"{loads['after']}; 1-minute load at the timed starts: median "
+              f"{_f(loads['median'])}, range {_f(loads['min'])}-{_f(loads['max'])}")
 
 
 # --------------------------------------------------------------------------------------------
@@ -500,10 +621,10 @@ def print_report(rows: int, summary: dict[str, dict[str, Any]], ver: list[dict[s
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description="Benchmark reduce against polars, DuckDB, pandas.")
-    ap.add_argument("--rows", default="1M", help="1M, 20M, 100M or a plain integer")
+    ap.add_argument("--rows", default="1M", help="1M, 5M, 20M, 100M or a plain integer")
     ap.add_argument("--repeat", type=int, default=3, help="repetitions of each timed task")
     ap.add_argument("--tasks", default=",".join((*TIMED, *EXTRA)),
-                    help="comma-separated: a,b,c,d,e,p,q,s (timed), h3, refit")
+                    help="comma-separated: a,b,c,cprime,d,e,p,q,s (timed), h3, refit")
     ap.add_argument("--budget", default="2MB", help="budget.max of recipe (a)")
     ap.add_argument("--refit-budget", default="1.5MB",
                     help="budget of the re-fit from the cached partial (must fit)")
@@ -547,6 +668,10 @@ def main(argv: list[str] | None = None) -> int:
 
     samples: list[Sample] = []
     timed = [t for t in TIMED if t in tasks]
+    if "cprime" in timed and "a" not in timed:
+        # c′ computes the level (a) published: publish it once (untimed) for this commit.
+        print("c′ needs (a)'s manifest: one untimed run of (a)", flush=True)
+        bench.sample("a", -1)
     for rep in range(a.repeat):
         print(f"round {rep + 1}/{a.repeat}", flush=True)
         for t in timed:
@@ -562,16 +687,22 @@ def main(argv: list[str] | None = None) -> int:
         print(f"re-fit from the cached partial (budget {a.refit_budget})", flush=True)
         ref = refit(bench, a.refit_budget)
 
+    cprime = check_cprime(d) if "cprime" in timed else None
     summary = summarize(samples)
-    ver = verdicts(rows, summary, h3)
-    print_report(rows, summary, ver, ref, checks)
+    ver = verdicts(rows, summary, h3, ref)
+    started = [s.load1 for s in samples if s.load1 is not None]
+    loads = {"before": load_before, "after": loadavg(),
+             "median": _median(started), "min": min(started, default=None),
+             "max": max(started, default=None)}
+    print_report(rows, summary, ver, ref, checks, cprime, loads)
     if a.json:
         doc = {"rows": rows, "files": len(files), "bytes": sum(f.stat().st_size for f in files),
                "repeat": a.repeat, "cores": os.cpu_count(), "budget": a.budget,
-               "load_before": load_before, "load_after": loadavg(),
+               "load_before": load_before, "load_after": loads["after"],
                "versions_before": ver_before, "versions": versions(),
                "measured_commit": sha or "working tree",
                "summary": summary, "targets": ver, "h3": h3, "refit": ref, "checks": checks,
+               "cprime_check": cprime, "loads": loads,
                "progress_seen": [s.info.get("progress_seen") for s in samples
                                  if s.task == "p"],
                "samples": [asdict(s) for s in samples],
