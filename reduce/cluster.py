@@ -31,8 +31,17 @@ import polars as pl
 
 from reduce.errors import ReduceError
 
-# Seconds to wait for the scheduler to answer before giving up (one error line, exit 2).
+# Seconds to wait for the scheduler to answer before giving up (one error line, exit 2):
+# ``$REDUCE_CLUSTER_TIMEOUT`` or 10.
 CONNECT_TIMEOUT = 10.0
+
+
+def connect_timeout() -> float:
+    env = os.environ.get("REDUCE_CLUSTER_TIMEOUT", "")
+    try:
+        return max(0.5, float(env)) if env else CONNECT_TIMEOUT
+    except ValueError:
+        return CONNECT_TIMEOUT
 # Seconds a local cluster (``local:N``) may take to start its workers.
 LOCAL_START_TIMEOUT = 60.0
 
@@ -108,12 +117,12 @@ def _first(e: BaseException) -> str:
 @contextlib.contextmanager
 def _client(address: str) -> Iterator[Any]:
     distributed = _distributed()
+    wait = connect_timeout()
     try:
-        client = distributed.Client(address, timeout=CONNECT_TIMEOUT,
-                                    set_as_default=False)
+        client = distributed.Client(address, timeout=wait, set_as_default=False)
     except (OSError, TimeoutError, ValueError) as e:
         raise ClusterError(f"cluster {address}: the scheduler does not answer within "
-                           f"{CONNECT_TIMEOUT:g} s ({_first(e) or type(e).__name__}); start "
+                           f"{wait:g} s ({_first(e) or type(e).__name__}); start "
                            "it (dask scheduler) or check the address and port") from None
     try:
         yield client
