@@ -243,7 +243,7 @@ def test_partly_matching_denominators_warn_on_stderr_even_quiet_and_in_json(
     lines = err.strip().splitlines()
     assert "warning: regions: keys in the data but not in the denominators: DDD" in lines
     assert "warning: regions: keys in the denominators but not in the data: ZZZ" in lines
-    manifest = json.loads((tmp_path / "out" / "regions.manifest.json").read_bytes())
+    manifest = json.loads((tmp_path / "out" / "regions.json.manifest.json").read_bytes())
     assert manifest["denominators"]["data_only_keys"] == ["DDD"]
     assert manifest["denominators"]["denominator_only_keys"] == ["ZZZ"]
     code, out, err = invoke("run", str(recipe), "--json")

@@ -151,7 +151,7 @@ def test_unreadable_coordinate_and_time_are_invalid_rows_by_reason(
                      {"hex": {"levels": [4]}, "time": {"levels": ["1d"]}}, {"n": "count"})
     code, _, err = invoke("run", str(recipe), "--quiet", "--no-cache")
     assert code == 0, err
-    manifest = json.loads((tmp_path / "out" / "case.manifest.json").read_bytes())
+    manifest = json.loads((tmp_path / "out" / "case.json.manifest.json").read_bytes())
     assert manifest["accounting"]["invalid_by_reason"] == {"coordinates": 1, "time": 1}
     assert manifest["accounting"]["invalid_rows"] == 2
     assert manifest["accounting"]["represented_rows"] == n - 2
@@ -164,7 +164,7 @@ def test_unreadable_times_do_not_count_as_naive_times(tmp_path: Path) -> None:
                      {"time": {"levels": ["1d"]}}, {"n": "count"})
     code, _, err = invoke("run", str(recipe), "--quiet", "--no-cache")
     assert code == 0, err
-    manifest = json.loads((tmp_path / "out" / "case.manifest.json").read_bytes())
+    manifest = json.loads((tmp_path / "out" / "case.json.manifest.json").read_bytes())
     assert manifest["accounting"]["invalid_by_reason"] == {"time": 1}
 
 
@@ -175,7 +175,7 @@ def test_null_marker_in_coordinates_is_an_invalid_row(tmp_path: Path) -> None:
                      {"hex": {"levels": [4]}}, {"n": "count"})
     code, _, err = invoke("run", str(recipe), "--quiet", "--no-cache")
     assert code == 0, err
-    manifest = json.loads((tmp_path / "out" / "case.manifest.json").read_bytes())
+    manifest = json.loads((tmp_path / "out" / "case.json.manifest.json").read_bytes())
     assert manifest["accounting"]["invalid_by_reason"] == {"coordinates": 1}
 
 
