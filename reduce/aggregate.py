@@ -249,7 +249,8 @@ def _scan_measures(recipe: Recipe, float_inputs: set[str]
 def scan_partial(recipe: Recipe, src: OpenSource, *,
                  progress: Callable[[str], None] | None = None,
                  spill_dir: Callable[[], Path] | None = None, whole: bool = True,
-                 always_spill: bool = False, parts: int | None = None) -> Partial | Spilled:
+                 always_spill: bool = False, parts: int | None = None,
+                 probe: int | None = None) -> Partial | Spilled:
     """Compute the finest partial with one streaming scan of the source.
 
     With ``spill_dir`` (which makes a folder to write to; called only when needed), a large
@@ -261,7 +262,9 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
     invalid file is not an error there, the merged source is checked instead
     (:func:`check_merged`). ``always_spill`` spills whatever the probe would say (a file
     merged with spilled files), ``parts`` fixes the number of parts of the spilled rows (so
-    that the parts of several files line up).
+    that the parts of several files line up), ``probe`` the rows of the probe (default
+    :func:`probe_rows`; a file of a large source is probed on fewer rows, see
+    ``tables.LevelTables._scan_file``).
     """
     label = _label(src)
     lf = src.frame
@@ -295,7 +298,7 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
         return out.drop([_ovf(m) for m in renamed if _ovf(m) in out.columns])
 
     input_rows = src.count_rows()
-    probe = probe_rows()
+    probe = probe or probe_rows()
     can_spill = spill_dir is not None and not dnames and src.format == "parquet"
     always = always_spill and can_spill
     if not always and (not can_spill or input_rows <= probe):

@@ -1,6 +1,7 @@
 """Per-file partials computed on a Dask cluster's workers and merged on the client.
 
-``reduce run --cluster tcp://host:8786`` (or ``$REDUCE_CLUSTER``) connects to a running
+``reduce run --cluster tcp://host:8786`` (or ``$REDUCE_CLUSTER``; from Python,
+``with reduce.cluster.using("tcp://host:8786"): reduce.run(...)``) connects to a running
 Dask scheduler; ``--cluster local:N`` starts a local cluster of N worker processes for one
 run. The client submits one task per source file that is not cached: the task is
 :func:`scan_file_task`, a function of this package, called with plain arguments (the recipe
@@ -53,9 +54,9 @@ class ClusterError(ReduceError, OSError):
 
 
 def current() -> str | None:
-    """The cluster this run uses: the one set by :func:`using`, else ``$REDUCE_CLUSTER``,
-    else None (scan in this process)."""
-    return _address or os.environ.get("REDUCE_CLUSTER") or None
+    """The cluster the runs use (set by :func:`using`; ``reduce run`` reads ``--cluster`` or
+    ``$REDUCE_CLUSTER``), or None: scan in this process."""
+    return _address
 
 
 def _distributed() -> Any:
@@ -71,7 +72,7 @@ def _distributed() -> Any:
 @contextlib.contextmanager
 def using(address: str | None) -> Iterator[str | None]:
     """Use ``address`` for the runs inside (``local:N`` starts N local worker processes,
-    closed on the way out); None leaves ``$REDUCE_CLUSTER`` or no cluster."""
+    closed on the way out); None: no cluster (this process scans)."""
     global _address
     if not address:
         yield current()

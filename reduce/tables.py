@@ -65,6 +65,7 @@ class LevelTables:
         self._key: str | None = None
         self._file_keys: list[str] = []
         self._files: dict[str, int] | None = None  # see files
+        self._rows_in_source: int | None = None
         self._partial: Partial | None = None
         self._finest: Partial | Spilled | None = None
         self._rollups: dict[tuple[Any, Any], Partial] = {}
@@ -235,6 +236,13 @@ class LevelTables:
                 self._entry_stored(entry)
         return out
 
+    def _source_rows(self) -> int:
+        """Input rows of the whole source (parquet: from metadata), counted once."""
+        if self._rows_in_source is None:
+            assert self.source is not None
+            self._rows_in_source = self.source.count_rows()
+        return self._rows_in_source
+
     def _keep_file(self, i: int, p: Partial | Spilled, tag: str) -> Partial | Spilled:
         """Cache file ``i``'s partial (with the cache on); returns it as stored."""
         assert self.source is not None
@@ -255,10 +263,17 @@ class LevelTables:
             weakref.finalize(self, shutil.rmtree, d, True)
             return d
 
+        n = len(self.source.files)
+        probe = None
+        if n > 1 and self._source_rows() > aggregate.probe_rows():
+            # The source is large enough to be probed: so is each of its files, however small
+            # (on half its rows at most), so that a source of many small sparse files spills
+            # file by file instead of merging into one partial the size of the source.
+            probe = min(aggregate.probe_rows(), max(1, fsrc.count_rows() // 2))
         try:
             p = aggregate.scan_partial(self.recipe, fsrc, spill_dir=spill, whole=False,
                                        always_spill=always_spill,
-                                       parts=FILE_PARTS if len(self.source.files) > 1 else None)
+                                       parts=FILE_PARTS if n > 1 else None, probe=probe)
         except pl.exceptions.PolarsError as e:  # e.g. a malformed NDJSON line
             raise (fsrc.read_error(e) or e) from None
         fsrc.check_unchanged()

@@ -158,3 +158,15 @@ def test_a_missing_extra_is_one_line_and_exit_2(tmp_path: Path,
     assert out.exit_code == 2
     lines = out.stderr.strip().splitlines()
     assert len(lines) == 1 and "reduce[cluster]" in lines[0]
+
+
+def test_reduce_run_reads_the_cluster_from_the_environment(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    _split(random_events(np.random.default_rng(1), 300), tmp_path)
+    recipe = _recipe(tmp_path, {"source": {"path": "ev/*.parquet", "lat": "lat", "lon": "lon"},
+                                "group": {"hex": {"levels": [7]}}})
+    monkeypatch.setenv("REDUCE_CLUSTER", "tcp://127.0.0.1:1")
+    monkeypatch.setenv("REDUCE_CLUSTER_TIMEOUT", "1")
+    out = CliRunner().invoke(main, ["run", str(recipe), "--quiet"])
+    assert out.exit_code == 2
+    assert out.stderr.strip().splitlines()[-1].startswith("error: cluster tcp://127.0.0.1:1")

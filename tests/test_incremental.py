@@ -181,3 +181,19 @@ def test_spilled_files_merge_and_match_a_fresh_run(tmp_path: Path,
     assert inc == fresh and files == {"total": 5, "scanned": 1, "reused": 4}
     inc, files, fresh = _runs(recipe, tmp_path)
     assert inc == fresh and files == {"total": 5, "scanned": 0, "reused": 5}
+
+
+def test_many_small_sparse_files_of_a_large_source_spill_file_by_file(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # Every file is under the probe, the source is not: each file is probed on its own rows,
+    # so the merged partial is not held in memory when the events do not group.
+    monkeypatch.setenv("REDUCE_PROBE_ROWS", "1000")
+    recipe = _recipe(tmp_path, distinct=False)
+    for i in range(4):
+        _write(tmp_path, f"day-{i}.parquet", seed=i, n=600)
+    inc, files, fresh = _runs(recipe, tmp_path)
+    assert inc == fresh and files == {"total": 4, "scanned": 4, "reused": 0}
+    assert all((d / "rows").is_dir() for d in _file_entries(recipe).values())
+    _write(tmp_path, "day-4.parquet", seed=4, n=600)
+    inc, files, fresh = _runs(recipe, tmp_path)
+    assert inc == fresh and files == {"total": 5, "scanned": 1, "reused": 4}
