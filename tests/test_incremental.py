@@ -197,3 +197,67 @@ def test_many_small_sparse_files_of_a_large_source_spill_file_by_file(
     _write(tmp_path, "day-4.parquet", seed=4, n=600)
     inc, files, fresh = _runs(recipe, tmp_path)
     assert inc == fresh and files == {"total": 5, "scanned": 1, "reused": 4}
+
+
+def test_csv_files_added_and_changed_in_place_match_a_fresh_run(tmp_path: Path) -> None:
+    doc = {"name": "inc", "source": {"path": "ev/*.csv", "time": "t", "lat": "lat",
+                                     "lon": "lon"},
+           "group": {"hex": {"levels": [8, 6]}, "time": {"levels": ["1d"]},
+                     "category": {"column": "kind"}},
+           "measures": {"n": "count", "sx": {"sum": "x"}, "kinds": {"distinct": "kind"}},
+           "output": {"path": "out/inc.json"}}
+    recipe = tmp_path / "recipe.toml"
+    recipe.write_text(to_toml(doc), encoding="utf-8")
+    (tmp_path / "ev").mkdir()
+
+    def write(i: int, seed: int) -> Path:
+        df = random_events(np.random.default_rng(seed), 400, span_days=3)
+        path = tmp_path / "ev" / f"day-{i}.csv"
+        df.with_columns(pl.col("x").round(3)).write_csv(path)
+        return path
+
+    for i in range(3):
+        write(i, i)
+    inc, files, fresh = _runs(recipe, tmp_path)
+    assert inc == fresh and files == {"total": 3, "scanned": 3, "reused": 0}
+    write(3, 3)
+    inc, files, fresh = _runs(recipe, tmp_path)
+    assert inc == fresh and files == {"total": 4, "scanned": 1, "reused": 3}
+    # One digit changed in place: same size, same modification time, other content (the
+    # digest of a text file covers its last 64 KiB, here the whole file).
+    path = tmp_path / "ev" / "day-2.csv"
+    st = os.stat(path)
+    text = path.read_text()
+    last = text.rstrip("\n").rsplit("\n", 1)[1]
+    digit = next(c for c in reversed(last) if c.isdigit() and c != "9")
+    at = text.rindex(digit)
+    path.write_text(text[:at] + str(int(digit) + 1) + text[at + 1:])
+    os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns))
+    assert os.stat(path).st_size == st.st_size
+    inc2, files, fresh2 = _runs(recipe, tmp_path)
+    assert inc2 == fresh2 and files == {"total": 4, "scanned": 1, "reused": 3}
+
+
+def test_hive_partitioned_folders_keep_their_partition_column(tmp_path: Path) -> None:
+    doc = {"name": "inc", "source": {"path": "ev", "time": "t", "lat": "lat", "lon": "lon"},
+           "group": {"hex": {"levels": [8, 6]}, "time": {"levels": ["1d"]},
+                     "category": {"column": "zone"}},
+           "measures": {"n": "count", "sx": {"sum": "x"}},
+           "output": {"path": "out/inc.json"}}
+    recipe = tmp_path / "recipe.toml"
+    recipe.write_text(to_toml(doc), encoding="utf-8")
+
+    def write(zone: str, seed: int) -> None:
+        folder = tmp_path / "ev" / f"zone={zone}"
+        folder.mkdir(parents=True)
+        random_events(np.random.default_rng(seed), 500, span_days=3).write_parquet(
+            folder / "part.parquet")
+
+    write("north", 1)
+    write("south", 2)
+    inc, files, fresh = _runs(recipe, tmp_path)
+    assert inc == fresh and files == {"total": 2, "scanned": 2, "reused": 0}
+    write("west", 3)
+    inc, files, fresh = _runs(recipe, tmp_path)
+    assert inc == fresh and files == {"total": 3, "scanned": 1, "reused": 2}
+    assert b'"west"' in inc  # the partition value reached the payload
