@@ -132,17 +132,19 @@ def _client(address: str) -> Iterator[Any]:
             client.close()
 
 
-def scan_files(address: str, recipe: Any, files: Sequence[Path], *,
+def scan_files(address: str, recipe: Any, files: Sequence[Any], *,
                progress: Callable[[str], None] | None = None) -> list[Any]:
-    """The finest partial of each of ``files`` (of ``recipe``'s source), scanned by the
-    cluster's workers, in the order given."""
+    """The finest partial of each of ``files`` (``source.FileState``: each file as the
+    client saw it, which the worker checks before it scans) of ``recipe``'s source, scanned by
+    the cluster's workers, in the order given."""
     from reduce.aggregate import Partial
 
     overrides = [list(kv) for kv in recipe.overrides]
     recipe_path = str(Path(recipe.file).resolve())
     with _client(address) as client:
         futures = [client.submit(scan_file_task, recipe_path, overrides,
-                                 str(Path(f).resolve()), recipe.scan_hash, pure=False,
+                                 str(Path(f.path).resolve()), recipe.scan_hash,
+                                 [f.size, f.mtime_ns, f.digest], pure=False,
                                  key=f"reduce-scan-{i}-{os.getpid()}-{id(files)}")
                    for i, f in enumerate(files)]
         out: list[Partial] = []
@@ -153,7 +155,7 @@ def scan_files(address: str, recipe: Any, files: Sequence[Path], *,
                 raise
             except (OSError, TimeoutError) as e:
                 raise ClusterError(f"cluster {address}: lost while scanning "
-                                   f"{Path(files[i - 1]).name} ({_first(e)}); check the "
+                                   f"{Path(files[i - 1].path).name} ({_first(e)}); check the "
                                    "workers and run again") from None
             out.append(from_wire(doc))
             if progress:
@@ -162,12 +164,14 @@ def scan_files(address: str, recipe: Any, files: Sequence[Path], *,
 
 
 def scan_file_task(recipe_path: str, overrides: list[list[str]], path: str,
-                   scan_hash: str) -> dict[str, Any]:
+                   scan_hash: str, seen: list[Any]) -> dict[str, Any]:
     """Runs on a worker: the finest partial of one source file, as Arrow tables (see the
     module docstring). The recipe is loaded from its path (shared storage) and must be the
-    one the client loaded (same scan-relevant content)."""
+    one the client loaded (same scan-relevant content); the file must be as the client saw
+    it (``seen``: size, modification time, content digest), since the client caches the
+    partial under that state."""
     from reduce import aggregate
-    from reduce.errors import RecipeError, shown_path
+    from reduce.errors import RecipeError, SourceError, shown_path
     from reduce.recipe import load_recipe
     from reduce.source import file_source, file_state, open_source
 
@@ -175,8 +179,13 @@ def scan_file_task(recipe_path: str, overrides: list[list[str]], path: str,
     if recipe.scan_hash != scan_hash:
         raise RecipeError(f"{shown_path(Path(recipe_path))}: differs on the worker from the "
                           "client's copy; the workers must see the same files (shared storage)")
+    state = file_state(Path(path))
+    if [state.size, state.mtime_ns, state.digest] != list(seen):
+        raise SourceError(f"{shown_path(Path(path))}: differs on the worker from what the "
+                          "client saw (changed meanwhile, or not the same shared file); nothing "
+                          "was published or cached: run again once the file is complete")
     src = open_source(recipe)
-    fsrc = file_source(src, file_state(Path(path)))
+    fsrc = file_source(src, state)
     try:
         p = aggregate.scan_partial(recipe, fsrc, whole=False)
     except pl.exceptions.PolarsError as e:

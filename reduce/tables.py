@@ -188,7 +188,8 @@ class LevelTables:
         if todo and address is not None:
             self.progress(f"scanning {len(todo):,} of {n:,} files on the cluster {address}")
             scanned = cluster.scan_files(address, self.recipe,
-                                         [src.files[i] for i in todo], progress=self.progress)
+                                         [src.states[i] for i in todo],
+                                         progress=self.progress)
             for i, p in zip(todo, scanned):
                 got[i] = self._keep_file(i, p, tag)
         else:

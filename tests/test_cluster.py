@@ -170,3 +170,18 @@ def test_reduce_run_reads_the_cluster_from_the_environment(
     out = CliRunner().invoke(main, ["run", str(recipe), "--quiet"])
     assert out.exit_code == 2
     assert out.stderr.strip().splitlines()[-1].startswith("error: cluster tcp://127.0.0.1:1")
+
+
+def test_a_file_the_worker_sees_otherwise_is_refused(tmp_path: Path, address: str) -> None:
+    from reduce.errors import SourceError
+    from reduce.source import file_state
+
+    _split(random_events(np.random.default_rng(1), 300), tmp_path)
+    recipe = reduce.load_recipe(_recipe(tmp_path, {
+        "source": {"path": "ev/*.parquet", "lat": "lat", "lon": "lon"},
+        "group": {"hex": {"levels": [7]}}}))
+    path = tmp_path / "ev" / "part-0.parquet"
+    seen = file_state(path)
+    random_events(np.random.default_rng(2), 120).write_parquet(path)  # rewritten meanwhile
+    with pytest.raises(SourceError, match="part-0.parquet: differs on the worker"):
+        cluster.scan_files(address, recipe, [seen])
