@@ -261,3 +261,18 @@ def test_hive_partitioned_folders_keep_their_partition_column(tmp_path: Path) ->
     inc, files, fresh = _runs(recipe, tmp_path)
     assert inc == fresh and files == {"total": 3, "scanned": 1, "reused": 2}
     assert b'"west"' in inc  # the partition value reached the payload
+
+
+def test_the_files_block_is_in_the_manifest_schema(tmp_path: Path) -> None:
+    import jsonschema
+
+    from reduce.schema import manifest_schema
+
+    recipe = _recipe(tmp_path)
+    for i in range(2):
+        _write(tmp_path, f"day-{i}.parquet", seed=i)
+    manifest = reduce.run(recipe).manifest
+    jsonschema.validate(manifest, manifest_schema())  # the jsonschema package's validator
+    bad = {**manifest, "files": {"total": 2, "scanned": -1, "reused": 3}}
+    with pytest.raises(jsonschema.ValidationError):
+        jsonschema.validate(bad, manifest_schema())
