@@ -48,8 +48,8 @@ def _split(df: pl.DataFrame, folder: Path, parts: int = 3) -> None:
 
 def _recipe(folder: Path, doc: dict[str, object]) -> Path:
     path = folder / "recipe.toml"
-    path.write_text(to_toml({"name": "c", **doc, "output": {
-        "path": "out/c.json", **doc.get("output", {})}}), encoding="utf-8")  # type: ignore[dict-item]
+    output = {"path": "out/c.json", **doc.get("output", {})}  # type: ignore[dict-item]
+    path.write_text(to_toml({"name": "c", **doc, "output": output}), encoding="utf-8")
     return path
 
 
