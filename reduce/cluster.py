@@ -3,9 +3,9 @@
 ``reduce run --cluster tcp://host:8786`` (or ``$REDUCE_CLUSTER``; from Python, ``with
 cluster.using("tcp://host:8786"): reduce.run(...)``) connects to a running Dask scheduler;
 ``--cluster local:N`` starts a local cluster of N worker processes for one run. The client
-submits one task per source file that is not cached: the task is :func:`scan_file_task`, a function of this package, called with plain arguments (the recipe
-file's path, its ``--set`` overrides, the file's path). Each worker loads the recipe, opens
-the source and scans that one file itself, so **every worker must see the recipe, the
+submits one task per source file that is not cached: the task is :func:`scan_file_task`, a
+function of this package, called with plain arguments (the recipe file's path, its ``--set``
+overrides, the file's path and state). Each worker loads the recipe, opens the source and scans that one file itself, so **every worker must see the recipe, the
 source files and any boundaries file at the same paths as the client** (shared storage: NFS,
 a mounted bucket, the same disk for a local cluster). No user code is sent: the recipe is
 data, and a partial comes back as Arrow tables (pyarrow; Int128 sums as decimal text, which
