@@ -5,11 +5,12 @@ cluster.using("tcp://host:8786"): reduce.run(...)``) connects to a running Dask 
 ``--cluster local:N`` starts a local cluster of N worker processes for one run. The client
 submits one task per source file that is not cached: the task is :func:`scan_file_task`, a
 function of this package, called with plain arguments (the recipe file's path, its ``--set``
-overrides, the file's path and state). Each worker loads the recipe, opens the source and scans that one file itself, so **every worker must see the recipe, the
-source files and any boundaries file at the same paths as the client** (shared storage: NFS,
-a mounted bucket, the same disk for a local cluster). No user code is sent: the recipe is
-data, and a partial comes back as Arrow tables (pyarrow; Int128 sums as decimal text, which
-Arrow cannot hold) with a small JSON-like header.
+overrides, the file's path and state). Each worker loads the recipe, opens the source and
+scans that one file itself, so **every worker must see the recipe, the source files and any
+boundaries file at the same paths as the client** (shared storage: NFS, a mounted bucket,
+the same disk for a local cluster). No user code is sent: the recipe is data, and a partial
+comes back as Arrow tables (pyarrow; Int128 sums as decimal text, which Arrow cannot hold)
+with a small JSON-like header.
 
 On a cluster a file's partial is always built in memory (a worker's spill files would live
 on that worker's disk): each file's partial must fit a worker's memory, and the merged
