@@ -27,6 +27,13 @@ Tasks:
   p  (a) with progress forced on a pseudo-terminal (``script -qec``)
   q  (a) --quiet on the same kind of pseudo-terminal: progress overhead = p / q - 1
   s  reduce check recipe_b.toml: start-up cost of the command line (imports, recipe, schema)
+
+Extra (not round-robin):
+  f  an incremental night: the events split into 10 equal files; ``reduce run`` with the
+     cache after 1 new file of 10 (9 cached) against a full ``--no-cache`` run of the 10
+     (target <= 0.30); payloads compared byte for byte
+  g  (a) on a local 2-worker Dask cluster (``--cluster local:2``) against (a) in one process
+     (target <= 1.3 on a 2-core machine); payloads compared byte for byte
 """
 
 from __future__ import annotations
@@ -58,7 +65,7 @@ import synth  # noqa: E402
 
 TIMED = ("a", "b", "c", "cprime", "d", "e", "p", "q", "s")
 LABEL = {"cprime": "c′"}  # task names as printed
-EXTRA = ("h3", "refit")
+EXTRA = ("h3", "refit", "f", "g")
 GB = 1000**3
 
 RECIPE_A = """\
@@ -468,6 +475,77 @@ def refit(bench: Bench, budget: str) -> dict[str, Any]:
             "run_failed": sum(s.rc != 0 for s in run)}
 
 
+def split_tenths(d: Path) -> Path:
+    """The events as 10 files of equal row counts under ``tenths/`` (made once)."""
+    out = d / "tenths"
+    if len(list(out.glob("part-*.parquet"))) == 10:
+        return out
+    code = ("import sys, polars as pl; from pathlib import Path; d = Path(sys.argv[1]); "
+            "lf = pl.scan_parquet(str(d / 'events' / '*.parquet')); "
+            "n = lf.select(pl.len()).collect().item(); step = -(-n // 10); "
+            "(d / 'tenths').mkdir(exist_ok=True); "
+            "[lf.slice(i * step, step).sink_parquet(d / 'tenths' / f'part-{i}.parquet') "
+            "for i in range(10)]")
+    subprocess.run([sys.executable, "-c", code, str(d)], check=True)
+    return out
+
+
+def incremental(bench: Bench) -> dict[str, Any]:
+    """(f): 1 new file of 10, with the 9 others cached, against a full --no-cache run."""
+    d = bench.data
+    tenths = split_tenths(d)
+    recipe = d / "recipe_f.toml"
+    recipe.write_text(RECIPE_A.format(budget="2MB").replace('"events/*.parquet"',
+                                                             '"tenths/*.parquet"'))
+    out_full, out_inc = d / "out" / "f-full", d / "out" / "f-inc"
+    shutil.rmtree(bench.cache, ignore_errors=True)
+    last, aside = tenths / "part-9.parquet", d / "part-9.parquet.aside"
+    full, inc = [], []
+    for i in range(bench.repeat):
+        full.append(bench.sample("f-full", i, [*bench.reduce, "run", str(recipe), "--no-cache",
+                                               "--quiet", "--out", str(out_full)]))
+        os.replace(last, aside)
+        try:  # the 9 earlier nights, cached (untimed)
+            bench.sample("f-warm", i, [*bench.reduce, "run", str(recipe), "--quiet", "--out",
+                                       str(out_inc)])
+        finally:
+            os.replace(aside, last)
+        inc.append(bench.sample("f-inc", i, [*bench.reduce, "run", str(recipe), "--quiet",
+                                             "--out", str(out_inc)]))
+    same = _same_payloads(out_full, out_inc)
+    fm, im = _median([s.wall for s in full if s.rc == 0]), _median([s.wall for s in inc
+                                                                    if s.rc == 0])
+    return {"full": [asdict(s) for s in full], "incremental": [asdict(s) for s in inc],
+            "full_median": fm, "incremental_median": im,
+            "ratio": im / fm if fm and im else None, "target": "<= 0.30", "same_bytes": same}
+
+
+def on_cluster(bench: Bench) -> dict[str, Any]:
+    """(g): recipe (a) on a local 2-worker cluster against one process."""
+    d = bench.data
+    recipe = str(d / "recipe_a.toml")
+    one, two = [], []
+    for i in range(bench.repeat):
+        one.append(bench.sample("g-local", i, [*bench.reduce, "run", recipe, "--no-cache",
+                                               "--quiet", "--out", str(d / "out" / "g1")]))
+        two.append(bench.sample("g-cluster", i, [*bench.reduce, "run", recipe, "--no-cache",
+                                                 "--quiet", "--cluster", "local:2", "--out",
+                                                 str(d / "out" / "g2")]))
+    om, tm = _median([s.wall for s in one if s.rc == 0]), _median([s.wall for s in two
+                                                                   if s.rc == 0])
+    return {"local": [asdict(s) for s in one], "cluster": [asdict(s) for s in two],
+            "local_median": om, "cluster_median": tm, "ratio": tm / om if om and tm else None,
+            "target": "<= 1.3", "same_bytes": _same_payloads(d / "out" / "g1",
+                                                             d / "out" / "g2")}
+
+
+def _same_payloads(a: Path, b: Path) -> bool:
+    pa, pb = sorted(a.glob("*.json")), sorted(b.glob("*.json"))
+    return bool(pa) and [p.name for p in pa] == [p.name for p in pb] and all(
+        x.read_bytes() == y.read_bytes() for x, y in zip(pa, pb)
+        if not x.name.endswith(".manifest.json"))
+
+
 def _median(xs: list[float]) -> float | None:
     return statistics.median(xs) if xs else None
 
@@ -687,6 +765,15 @@ def main(argv: list[str] | None = None) -> int:
         print(f"re-fit from the cached partial (budget {a.refit_budget})", flush=True)
         ref = refit(bench, a.refit_budget)
 
+    inc = None
+    if "f" in tasks:
+        print("(f) an incremental night: 1 new file of 10", flush=True)
+        inc = incremental(bench)
+    clu = None
+    if "g" in tasks:
+        print("(g) (a) on a local 2-worker cluster", flush=True)
+        clu = on_cluster(bench)
+
     cprime = check_cprime(d) if "cprime" in timed else None
     summary = summarize(samples)
     ver = verdicts(rows, summary, h3, ref)
@@ -695,6 +782,10 @@ def main(argv: list[str] | None = None) -> int:
              "median": _median(started), "min": min(started, default=None),
              "max": max(started, default=None)}
     print_report(rows, summary, ver, ref, checks, cprime, loads)
+    for name, doc, what in (("f", inc, "incremental / full"), ("g", clu, "cluster / local")):
+        if doc:
+            print(f"({name}) {what}: {_f(doc['ratio'], '{:.3f}')} (target {doc['target']}); "
+                  f"same payload bytes: {'yes' if doc['same_bytes'] else 'NO'}")
     if a.json:
         doc = {"rows": rows, "files": len(files), "bytes": sum(f.stat().st_size for f in files),
                "repeat": a.repeat, "cores": os.cpu_count(), "budget": a.budget,
@@ -703,6 +794,7 @@ def main(argv: list[str] | None = None) -> int:
                "measured_commit": sha or "working tree",
                "summary": summary, "targets": ver, "h3": h3, "refit": ref, "checks": checks,
                "cprime_check": cprime, "loads": loads,
+               "incremental": inc, "cluster": clu,
                "progress_seen": [s.info.get("progress_seen") for s in samples
                                  if s.task == "p"],
                "samples": [asdict(s) for s in samples],

@@ -248,13 +248,23 @@ def _scan_measures(recipe: Recipe, float_inputs: set[str]
 
 def scan_partial(recipe: Recipe, src: OpenSource, *,
                  progress: Callable[[str], None] | None = None,
-                 spill_dir: Callable[[], Path] | None = None) -> Partial | Spilled:
+                 spill_dir: Callable[[], Path] | None = None, whole: bool = True,
+                 always_spill: bool = False, parts: int | None = None,
+                 probe: int | None = None) -> Partial | Spilled:
     """Compute the finest partial with one streaming scan of the source.
 
     With ``spill_dir`` (which makes a folder to write to; called only when needed), a large
     parquet source whose events are too sparse to shrink at the finest level becomes a
     :class:`Spilled` partial instead (see :data:`PROBE_ROWS`), so memory does not grow with
     the source.
+
+    ``whole=False`` scans one file of a source (see :func:`merge_all`): an empty or wholly
+    invalid file is not an error there, the merged source is checked instead
+    (:func:`check_merged`). ``always_spill`` spills whatever the probe would say (a file
+    merged with spilled files), ``parts`` fixes the number of parts of the spilled rows (so
+    that the parts of several files line up), ``probe`` the rows of the probe (default
+    :func:`probe_rows`; a file of a large source is probed on fewer rows, see
+    ``tables.LevelTables._scan_file``).
     """
     label = _label(src)
     lf = src.frame
@@ -299,15 +309,17 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
             raise _scan_error(recipe, src, label, e) from None
 
     input_rows = src.count_rows()
-    probe = probe_rows()
-    if spill_dir is None or dnames or src.format != "parquet" or input_rows <= probe:
+    probe = probe or probe_rows()
+    can_spill = spill_dir is not None and not dnames and src.format == "parquet"
+    always = always_spill and can_spill
+    if not always and (not can_spill or input_rows <= probe):
         if progress:
             progress("scanning the source")
         grouped = scan(lf)
     else:
-        if progress:
+        if not always and progress:
             progress(f"scanning the source: the first {probe:,} of {input_rows:,} rows")
-        if _probe_groups(src.rows_frame(0, probe)) <= _SPARSE * probe:
+        if not always and _probe_groups(src.rows_frame(0, probe)) <= _SPARSE * probe:
             # Dense enough to group in memory: one pass over every row. (The probe computed
             # the finest keys only, not the coarser exact cells nor any measure: its groups
             # decide, and a dense source's probe rows cost little to read again.)
@@ -315,6 +327,7 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
                 progress("scanning the source")
             grouped = scan(lf)
         else:
+            assert spill_dir is not None
             if progress:
                 progress(f"scanning the source: writing its {input_rows:,} keyed rows to disk "
                          "(events too sparse to group in memory)")
@@ -322,7 +335,7 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
             rows = lf.select(select)
             if reason is None:
                 rows = rows.with_columns(reason_of_groups(list(keys)))
-            n_parts = max(1, min(64, -(-input_rows // PART_ROWS)))
+            n_parts = parts or max(1, min(64, -(-input_rows // PART_ROWS)))
             target = pl.PartitionBy(folder / "rows", include_key=False,
                                     key={"__part": _part_of(recipe, keys, n_parts)})
             try:
@@ -336,7 +349,8 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
                                   f"({why}); free space there or point REDUCE_CACHE_DIR (TMPDIR "
                                   "with --no-cache) at a disk with room for about 16 bytes per "
                                   "event") from None
-            return _spilled(recipe, label, keys, folder, input_rows, renamed, floats)
+            return _spilled(recipe, label, keys, folder, input_rows, renamed, floats,
+                            check=whole)
     if progress:
         progress("building the finest partial")
     kept = int(grouped.get_column(N).sum()) if grouped.height else 0
@@ -364,7 +378,7 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
         table = table.drop([GROUP, *dnames])
     else:
         table = valid
-    acc = _accounting(recipe, label, input_rows, kept, by_reason)
+    acc = _accounting(recipe, label, input_rows, kept, by_reason, check=whole)
     return Partial(keys=keys, table=table, pairs=pairs, values=values,
                    hex_res=recipe.hex.levels[0] if recipe.hex else None,
                    time_bin=recipe.time.levels[0] if recipe.time else None, accounting=acc)
@@ -406,7 +420,8 @@ def _part_of(recipe: Recipe, keys: Sequence[str], n: int) -> pl.Expr:
 
 
 def _spilled(recipe: Recipe, label: str, keys: tuple[str, ...], root: Path, input_rows: int,
-             renamed: Sequence[MeasureSpec], floats: set[str]) -> Spilled:
+             renamed: Sequence[MeasureSpec], floats: set[str], *, check: bool = True
+             ) -> Spilled:
     """Account for the keyed rows written under ``root`` (one pass over a few columns)."""
     found: dict[int, list[str]] = {}
     for f in sorted((root / "rows").glob("__part=*/*.parquet")):
@@ -423,7 +438,7 @@ def _spilled(recipe: Recipe, label: str, keys: tuple[str, ...], root: Path, inpu
     inv = counts.filter(pl.col(INVALID) != 0).sort(INVALID)
     by_reason = {INVALID_REASONS[int(r)]: int(n)
                  for r, n in inv.select(INVALID, N).iter_rows()}
-    acc = _accounting(recipe, label, input_rows, kept, by_reason)
+    acc = _accounting(recipe, label, input_rows, kept, by_reason, check=check)
     return Spilled(keys=keys, root=root, parts=parts, rows=kept - sum(by_reason.values()),
                    hex_res=recipe.hex.levels[0] if recipe.hex else None,
                    time_bin=recipe.time.levels[0] if recipe.time else None, accounting=acc)
@@ -515,9 +530,10 @@ def _scan_error(recipe: Recipe, src: OpenSource, label: str,
 
 
 def _accounting(recipe: Recipe, label: str, input_rows: int, kept: int,
-                by_reason: dict[str, int]) -> Accounting:
-    """Where the scanned rows went; refuses a scan that kept nothing usable."""
-    _check_not_empty(recipe, label, input_rows, kept, by_reason)
+                by_reason: dict[str, int], *, check: bool = True) -> Accounting:
+    """Where the scanned rows went; refuses a scan that kept nothing usable (``check``)."""
+    if check:
+        _check_not_empty(recipe, label, input_rows, kept, by_reason)
     return Accounting(input_rows=input_rows, filtered_rows=input_rows - kept,
                       invalid_rows=sum(n for r, n in by_reason.items() if r != "unassigned"),
                       invalid_by_reason=by_reason)
@@ -695,6 +711,98 @@ def merge(recipe: Recipe, a: Partial, b: Partial) -> Partial:
                    pairs=pairs, values=values, hex_res=a.hex_res, time_bin=a.time_bin,
                    accounting=acc)
     return regroup(recipe, both, [])
+
+
+def add_accounting(a: Accounting, b: Accounting) -> Accounting:
+    """Where the rows of two sources went, together."""
+    return Accounting(
+        a.input_rows + b.input_rows, a.filtered_rows + b.filtered_rows,
+        a.invalid_rows + b.invalid_rows,  # unassigned stays apart
+        {k: a.invalid_by_reason.get(k, 0) + b.invalid_by_reason.get(k, 0)
+         for k in sorted({*a.invalid_by_reason, *b.invalid_by_reason})})
+
+
+def merge_all(recipe: Recipe, partials: Sequence[Partial]) -> Partial:
+    """Merge the partials of several files of one source in one pass (what :func:`merge`
+    does for two): tables stacked, pair ids translated to one union dictionary per distinct
+    measure, hidden hex cells kept as keys, then one regroup. Equals the partial of one scan
+    over all the files, up to row order."""
+    if not partials:
+        raise ValueError("nothing to merge")
+    a = partials[0]
+    for b in partials[1:]:
+        if b.keys != a.keys or b.hex_res != a.hex_res or b.time_bin != a.time_bin:
+            raise ValueError("partials of different levels cannot be merged; roll up first")
+    if len(partials) == 1:
+        return a
+    acc = a.accounting
+    for b in partials[1:]:
+        acc = add_accounting(acc, b.accounting)
+    pairs: dict[str, pl.DataFrame] = {}
+    values: dict[str, pl.Series] = {}
+    offsets: list[int] = []
+    n = 0
+    for p in partials:
+        offsets.append(n)
+        n += p.table.height
+    for k in a.pairs:
+        dtype = next((p.values[k].dtype for p in partials if p.values[k].dtype != pl.Null),
+                     a.values[k].dtype)
+        vals = [p.values[k].cast(dtype) for p in partials]
+        union = pl.concat(vals).unique().sort()
+        groups, ids = [], []
+        for p, v, off in zip(partials, vals, offsets):
+            pt = p.pairs[k]
+            groups.append(pt.get_column(GROUP).cast(pl.UInt32) + off)
+            ids.append(union.search_sorted(v).cast(pl.UInt32).gather(pt.get_column(PAIR)))
+        pairs[k] = pl.DataFrame({GROUP: pl.concat(groups).cast(pl.UInt32),
+                                 PAIR: pl.concat(ids).cast(pl.UInt32)})
+        values[k] = union
+    columns = a.table.columns
+    tables = [p.table.select(columns) for p in partials]
+    both = Partial(keys=a.keys, table=pl.concat(tables, how="vertical_relaxed"),
+                   pairs=pairs, values=values, hex_res=a.hex_res, time_bin=a.time_bin,
+                   accounting=acc)
+    return regroup(recipe, both, [])
+
+
+_PART_RE = re.compile(r"__part=(\d+)")
+
+
+def merge_spilled(parts: Sequence[Spilled]) -> Spilled:
+    """The spilled rows of several files as one :class:`Spilled` (files written with the
+    same number of parts, see ``scan_partial(parts=...)``: part ``i`` of the result is part
+    ``i`` of every file, so a group of any level still lies in one part). The result keeps
+    the given objects (and the entry locks they hold) alive as long as it lives."""
+    import os
+    import weakref
+
+    if not parts:
+        raise ValueError("nothing to merge")
+    first = parts[0]
+    root = Path(os.path.commonpath([str(s.root) for s in parts]))
+    by_part: dict[int, list[str]] = {}
+    acc = first.accounting
+    for i, s in enumerate(parts):
+        if i:
+            acc = add_accounting(acc, s.accounting)
+        for f in s.files:
+            m = _PART_RE.search(str(f))
+            by_part.setdefault(int(m.group(1)) if m else 0, []).append(
+                str(f.relative_to(root)))
+    merged = Spilled(keys=first.keys, root=root,
+                     parts=tuple(tuple(by_part[k]) for k in sorted(by_part)),
+                     rows=sum(s.rows for s in parts), hex_res=first.hex_res,
+                     time_bin=first.time_bin, accounting=acc)
+    weakref.finalize(merged, len, tuple(parts))  # holds the originals while merged lives
+    return merged
+
+
+def check_merged(recipe: Recipe, label: str, acc: Accounting) -> None:
+    """The whole-source checks of a scan (no rows; every row filtered or invalid) over
+    the accounting of files scanned one by one and merged."""
+    _check_not_empty(recipe, label, acc.input_rows, acc.input_rows - acc.filtered_rows,
+                     acc.invalid_by_reason)
 
 
 def finalize(recipe: Recipe, p: Partial, *, only: Sequence[str] | None = None

@@ -47,6 +47,7 @@ from reduce._util.procs import process_alive
 from reduce._version import __version__
 from reduce.aggregate import Accounting, Partial, Spilled
 from reduce.recipe import Recipe, parse_time_bin
+from reduce.source import FileState
 
 SUMS = "sums.json"
 SUMS_FORMAT = "reduce.cache-sums/1"
@@ -95,6 +96,23 @@ def cache_key(recipe: Recipe, fingerprint: str) -> str:
     h = hashlib.sha256(f"{__version__}\0{ENTRY_FORMAT}\0{recipe.scan_hash}\0{fingerprint}"
                        f"\0{stamps}".encode())
     return h.hexdigest()[:40]
+
+
+def file_key(recipe: Recipe, state: FileState, frame_schema: str) -> str:
+    """The key of one source file's partial: :func:`cache_key` over the file's path, size,
+    modification time and content hash (``source.FileState``: the parquet footer, or the
+    text's last bytes) and the column types the whole source reads it with (``frame_schema``:
+    a text file's types, or hive columns, depend on the other files)."""
+    stamp = (f"file\0{state.path.resolve()}\0{state.size}\0{state.mtime_ns}\0{state.digest}"
+             f"\0{frame_schema}")
+    return cache_key(recipe, hashlib.sha256(stamp.encode()).hexdigest()[:32])
+
+
+def files_key(recipe: Recipe, keys: list[str] | tuple[str, ...]) -> str:
+    """The key of the merged partial of a set of files (from their :func:`file_key`), which
+    also holds the store of measured levels: any change of the file set is a new entry."""
+    joined = "\0".join(sorted(keys))
+    return cache_key(recipe, "files:" + hashlib.sha256(joined.encode()).hexdigest()[:32])
 
 
 def spill_dir(key: str) -> Path | None:
@@ -377,6 +395,8 @@ def load(key: str) -> Partial | Spilled | None:
     keep = False
     try:
         meta = orjson.loads(read_file(d, "meta.json"))
+        if isinstance(meta, dict) and "files" in meta and "keys" not in meta:
+            return None  # a file set's entry holding measured levels only (see mark_files)
         tb = parse_time_bin(meta["time_bin"]) if meta["time_bin"] else None
         acc = Accounting(**meta["accounting"])
         if "parts" in meta:
@@ -425,14 +445,16 @@ def _parquet_bytes(df: pl.DataFrame) -> bytes:
     return buf.getvalue()
 
 
-def store(key: str, p: Partial | Spilled, *, recipe: str = "") -> Partial | Spilled | None:
+def store(key: str, p: Partial | Spilled, *, recipe: str = "",
+          drop_others: bool = True) -> Partial | Spilled | None:
     """Store a partial; returns it as stored (a spilled partial's files move into the
     entry, locked for reading while the returned object lives) or None on failure, which is
     otherwise ignored (the cache is an optimisation).
 
     ``recipe`` (the recipe's scan-relevant hash) is recorded, and the entries of the same
     recipe over other versions of the source are removed (unless a run is reading them): a
-    nightly job keeps one entry, not one per night.
+    nightly job keeps one entry, not one per night. ``drop_others=False`` keeps them (the
+    entries of one file each, pruned by :func:`drop_except`).
     """
     root = cache_dir()
     final = root / key
@@ -455,7 +477,8 @@ def store(key: str, p: Partial | Spilled, *, recipe: str = "") -> Partial | Spil
             write_file(folder, "meta.json", orjson.dumps(meta))
             os.replace(folder, final)
             stored, fd = _hold(p.moved(final), fd), None
-            _drop_others(root, key, recipe)
+            if drop_others:
+                _drop_others(root, key, recipe)
             return stored
         except OSError:
             return None
@@ -474,7 +497,8 @@ def store(key: str, p: Partial | Spilled, *, recipe: str = "") -> Partial | Spil
         write_file(tmp, "meta.json", orjson.dumps({**_meta(p), "recipe": recipe,
                                                    "pairs": names}))
         os.replace(tmp, final)
-        _drop_others(root, key, recipe)
+        if drop_others:
+            _drop_others(root, key, recipe)
         return p
     except OSError:
         return None
@@ -511,3 +535,51 @@ def _drop_others(root: Path, key: str, recipe: str) -> None:
         with contextlib.suppress(OSError, orjson.JSONDecodeError, AttributeError):
             if orjson.loads((d / "meta.json").read_bytes()).get("recipe") == recipe:
                 _remove(d)
+
+
+# --------------------------------------------------------------------------------------------
+# Per-file entries
+# --------------------------------------------------------------------------------------------
+
+
+def mark_files(key: str, files: list[str], *, recipe: str) -> Path | None:
+    """An entry for a file set whose merged partial is not stored (spilled files, merged
+    from their own entries each run): it holds the list of file entries and, later, the
+    store of measured levels. Entries of ``recipe`` over other file sets are removed.
+    Returns its folder, or None when the cache cannot be written."""
+    root = cache_dir()
+    final = root / key
+    if final.is_dir() and not _remove_if_damaged(final):
+        return final
+    tmp = root / f".{key}.{os.getpid()}.tmp"
+    try:
+        tmp.mkdir(parents=True, exist_ok=True)
+        (tmp / _LOCK).touch()
+        write_file(tmp, "meta.json", orjson.dumps({"files": sorted(files), "recipe": recipe}))
+        os.replace(tmp, final)
+        _drop_others(root, key, recipe)
+        return final
+    except OSError:
+        return None
+    finally:
+        if tmp.exists():
+            shutil.rmtree(tmp, ignore_errors=True)
+
+
+def remove(key: str) -> bool:
+    """Remove the entry ``key`` unless a run is reading it."""
+    d = cache_dir() / key
+    return d.is_dir() and not d.is_symlink() and _remove(d)
+
+
+def drop_except(recipe: str, keep: set[str]) -> None:
+    """Remove the entries tagged ``recipe`` whose key is not in ``keep`` (files removed
+    from the source, or changed since), except those another run is reading."""
+    root = cache_dir()
+    with contextlib.suppress(OSError):
+        for d in root.iterdir():
+            if d.name in keep or d.name.startswith("."):
+                continue
+            with contextlib.suppress(OSError, orjson.JSONDecodeError, AttributeError):
+                if orjson.loads((d / "meta.json").read_bytes()).get("recipe") == recipe:
+                    _remove(d)

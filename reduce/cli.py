@@ -204,12 +204,18 @@ def _budget_opts(f: Callable[..., Any]) -> Callable[..., Any]:
 @click.option("--write-anyway", is_flag=True,
               help="When nothing fits, write the smallest payload anyway (still exit 1).")
 @click.option("--json", "as_json", is_flag=True, help="Print a JSON summary.")
+@click.option("--cluster", "cluster_address", envvar="REDUCE_CLUSTER", default=None,
+              metavar="ADDRESS",
+              help="Scan the source files on a Dask cluster: a scheduler address "
+                   "(tcp://host:8786) or local:N (N local workers for this run); needs "
+                   "pip install 'reduce[cluster]' and the files at the same paths on every "
+                   "worker. Default: $REDUCE_CLUSTER.")
 @_budget_opts
 def run_cmd(recipes: tuple[Path, ...], out_dir: Path | None, write_anyway: bool,
-            as_json: bool, budget_max: int | None, on: str | None, sets: tuple[str, ...],
-            no_cache: bool, quiet: bool) -> None:
+            as_json: bool, cluster_address: str | None, budget_max: int | None,
+            on: str | None, sets: tuple[str, ...], no_cache: bool, quiet: bool) -> None:
     """Run recipes: fit each to its budget and write payload and manifest."""
-    from reduce import report
+    from reduce import cluster, report
     from reduce.pipeline import run
     from reduce.validate import check
 
@@ -219,7 +225,7 @@ def run_cmd(recipes: tuple[Path, ...], out_dir: Path | None, write_anyway: bool,
     loaded = checked.recipes
     summaries = []
     over_budget = False
-    with _progress(quiet or as_json) as progress:
+    with _progress(quiet or as_json) as progress, cluster.using(cluster_address):
         for rec in loaded:
             res = run(rec, out_dir=out_dir, budget=budget_max, on=on,
                       write_anyway=write_anyway, use_cache=not no_cache, progress=progress)

@@ -56,6 +56,8 @@ def build_manifest(result: FitResult, path: Path) -> dict[str, Any]:
         "source": {"fingerprint": src.fingerprint if src else None,
                    "files": len(src.files) if src else None,
                    "format": src.format if src else None},
+        # source files: how many, how many this run scanned, how many partials it reused
+        "files": red.files,
     }
     if r.normalize is not None and r.normalize.rate_measures:
         m["denominators"] = rec.denominators

@@ -81,6 +81,7 @@ def run_json(res: RunResult) -> dict[str, Any]:
             "elements": c.elements, "bytes": {"raw": c.raw, "gzip": c.gzip,
                                               "brotli": c.brotli},
             "over_budget": res.over_budget, "accounting": f.accounting,
+            "files": f.reducer.files if f.reducer is not None else None,
             **({"denominators": f.record.denominators}
                if f.record is not None and f.record.denominators is not None
                and f.recipe.normalize and f.recipe.normalize.rate_measures else {}),

@@ -218,6 +218,9 @@ def manifest_schema() -> dict[str, Any]:
                                "estimated": {"type": "boolean"}}}},
             "accounting": {"type": "object", "required": ["input_rows", "represented_rows"]},
             "source": {"type": "object"},
+            "files": {"type": ["object", "null"], "required": ["total", "scanned", "reused"],
+                      "properties": {"total": count, "scanned": count, "reused": count},
+                      "additionalProperties": False},
             "denominators": {"type": "object"},
             "precompressed": {"type": "object", "properties": {
                 "gzip": {"type": "string"}, "brotli": {"type": "string"}},

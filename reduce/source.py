@@ -46,6 +46,7 @@ class OpenSource:
     text_columns: tuple[str, ...] = ()  # read as text, then converted by ``casts``
     casts: tuple[pl.Expr, ...] = ()
     states: tuple[FileState, ...] = ()  # each file as opened, see changed_files()
+    hive: bool | None = None  # hive-partitioned folders (None: told by the files themselves)
 
     def changed_files(self) -> list[Path]:
         """The files that differ now from when the source was opened (size, modification
@@ -85,7 +86,7 @@ class OpenSource:
         """Like ``frame``, over input rows ``offset`` to ``offset + length`` only (counted
         before filters, so consecutive ranges split the input without overlap)."""
         lf = _scan(self.files, self.format, list(self.columns), null_values=self.null_values,
-                   text_columns=self.text_columns).slice(offset, length)
+                   text_columns=self.text_columns, hive=self.hive).slice(offset, length)
         if self.casts:
             lf = lf.with_columns(self.casts)
         for e in self.filters:
@@ -165,15 +166,15 @@ def _hive(files: list[Path] | tuple[Path, ...]) -> bool:
 
 
 def _scan(files: list[Path] | tuple[Path, ...], fmt: str, columns: list[str] | None, *,
-          null_values: tuple[str, ...] = (), text_columns: tuple[str, ...] = ()
-          ) -> pl.LazyFrame:
+          null_values: tuple[str, ...] = (), text_columns: tuple[str, ...] = (),
+          hive: bool | None = None) -> pl.LazyFrame:
     """The files as a lazy frame. Text equal to one of the markers (see :func:`_markers`) is
     null: CSV fields, quoted or not, and NDJSON strings (JSON has its own null too).
     CSV ``text_columns`` are read as text (converted afterwards, see :func:`_text_casts`)."""
     srcs = [str(f) for f in files]
     markers = _markers(null_values)
     if fmt == "parquet":
-        lf = pl.scan_parquet(srcs, hive_partitioning=_hive(files))
+        lf = pl.scan_parquet(srcs, hive_partitioning=_hive(files) if hive is None else hive)
     elif fmt == "csv":
         # Invalid UTF-8 in text becomes U+FFFD (the documented policy), never a crash.
         lf = pl.scan_csv(srcs, try_parse_dates=True, infer_schema_length=10000,
@@ -490,6 +491,27 @@ def open_source(recipe: Recipe) -> OpenSource:
                       fingerprint=fingerprint(files), frame=lf, columns=tuple(cols),
                       filters=filters, null_values=src.null_values, text_columns=text,
                       casts=casts, states=states)
+
+
+def file_source(src: OpenSource, state: FileState) -> OpenSource:
+    """One file of an opened source, read exactly as the whole source reads it (same column
+    types, conversions, filters and hive columns), for a partial of that file alone."""
+    f = state.path
+    hive = _hive(src.files)
+    lf = _scan([f], src.format, list(src.columns), null_values=src.null_values,
+               text_columns=src.text_columns, hive=hive)
+    if src.casts:
+        lf = lf.with_columns(src.casts)
+    want = src.frame.collect_schema()
+    if lf.collect_schema() != want:  # a text file's types inferred from its own lines
+        lf = lf.cast(dict(want.items()), strict=False)  # type: ignore[arg-type]
+    for e in src.filters:
+        lf = lf.filter(e)
+    return OpenSource(files=(f,), format=src.format, schema=src.schema,
+                      fingerprint=fingerprint([f]), frame=lf, columns=src.columns,
+                      filters=src.filters, null_values=src.null_values,
+                      text_columns=src.text_columns, casts=src.casts, states=(state,),
+                      hive=hive)
 
 
 def _check_csv_numbers(recipe: Recipe, schema: pl.Schema, files: list[Path],

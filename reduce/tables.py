@@ -35,6 +35,11 @@ Progress = Callable[[str], None]
 # come from them instead of another pass over the spilled rows.
 KEEP_KEY_ROWS = 5_000_000
 
+# Parts of a source file's spilled rows: fixed, so that the parts of every file line up when
+# their partials merge (part i of the source is part i of each file; see
+# ``aggregate.merge_spilled``), whatever files a night adds.
+FILE_PARTS = 16
+
 
 @dataclass
 class LevelRows:
@@ -58,6 +63,9 @@ class LevelTables:
         self.source: OpenSource | None = None
         self.partial_from_cache = False
         self._key: str | None = None
+        self._file_keys: list[str] = []
+        self._files: dict[str, int] | None = None  # see files
+        self._rows_in_source: int | None = None
         self._partial: Partial | None = None
         self._finest: Partial | Spilled | None = None
         self._rollups: dict[tuple[Any, Any], Partial] = {}
@@ -88,7 +96,16 @@ class LevelTables:
     # -- the finest partial -----------------------------------------------------------------
     def finest(self) -> Partial | Spilled:
         """The finest partial: from the cache, or one scan of the source (kept on disk when
-        the source is large and sparse at the finest level: see ``aggregate.Spilled``)."""
+        the source is large and sparse at the finest level: see ``aggregate.Spilled``).
+
+        With the cache (or a cluster), the partial is merged from one partial per source
+        file, each cached apart: a run scans only the files that are new or changed."""
+        from reduce import cluster
+
+        if self._finest is None and (self.use_cache or cluster.current() is not None):
+            p = self._finest_by_file()
+            prune.check_rest_label(self.recipe, p.frame() if isinstance(p, Spilled) else p)
+            self._finest = p
         if self._finest is None:
             key = self.entry()
             p = cache.load(key) if self.use_cache else None
@@ -109,6 +126,8 @@ class LevelTables:
                 except pl.exceptions.PolarsError as e:  # e.g. a malformed NDJSON line
                     raise (self.source.read_error(e) or e) from None
                 self.source.check_unchanged()  # replaced mid-scan: neither used nor cached
+                n = len(self.source.files)
+                self._files = {"total": n, "scanned": n, "reused": 0}
                 if self.use_cache:
                     p = cache.store(key, p, recipe=self.recipe.scan_hash) or p
                     entry = cache.cache_dir() / key
@@ -120,12 +139,146 @@ class LevelTables:
 
     def entry(self) -> str:
         """The cache key of this recipe over the source as it is now (opens the source:
-        schema checks and fingerprint, no scan)."""
+        schema checks and fingerprint, no scan): the key of the merged partial of its files,
+        from each file's key (path, size, modification time, content hash)."""
         if self._key is None:
             self.progress("checking the source")
             self.source = open_source(self.recipe)
-            self._key = cache.cache_key(self.recipe, self.source.fingerprint)
+            schema = str(self.source.frame.collect_schema())
+            self._file_keys = [cache.file_key(self.recipe, s, schema)
+                               for s in self.source.states]
+            self._key = cache.files_key(self.recipe, self._file_keys)
         return self._key
+
+    @property
+    def files(self) -> dict[str, int] | None:
+        """Source files: how many, how many this run scanned, how many partials it reused
+        (all of them when the store of measured levels answered without the partial)."""
+        if self._files is None and self.source is not None:
+            n = len(self.source.files)
+            return {"total": n, "scanned": 0, "reused": n}
+        return self._files
+
+    def _finest_by_file(self) -> Partial | Spilled:
+        """The finest partial merged from per-file partials: those cached are reused, the
+        others scanned (here, or on the cluster's workers) and cached; entries of files no
+        longer in the source are removed."""
+        from reduce import cluster
+
+        key = self.entry()
+        src = self.source
+        assert src is not None
+        n = len(src.files)
+        if self.use_cache:
+            merged = cache.load(key)
+            if merged is not None:
+                self.partial_from_cache = True
+                self._files = {"total": n, "scanned": 0, "reused": n}
+                self.progress("using the cached finest partial")
+                return merged
+        tag = f"{self.recipe.scan_hash}:file"
+        got: dict[int, Partial | Spilled] = {}
+        if self.use_cache:
+            for i, fk in enumerate(self._file_keys):
+                p = cache.load(fk)
+                if p is not None:
+                    got[i] = p
+        todo = [i for i in range(n) if i not in got]
+        address = cluster.current()
+        if todo and address is not None:
+            self.progress(f"scanning {len(todo):,} of {n:,} files on the cluster {address}")
+            scanned = cluster.scan_files(address, self.recipe,
+                                         [src.states[i] for i in todo],
+                                         progress=self.progress)
+            for i, p in zip(todo, scanned):
+                got[i] = self._keep_file(i, p, tag)
+        else:
+            for k, i in enumerate(todo, start=1):
+                self.progress(f"scanning file {k:,} of {len(todo):,} ({n - len(todo):,} of "
+                              f"{n:,} reused): {src.files[i].name}")
+                spilled = any(isinstance(p, Spilled) for p in got.values())
+                got[i] = self._scan_file(i, tag, always_spill=spilled)
+        if any(isinstance(p, Spilled) for p in got.values()):
+            # Spilled rows and in-memory groups do not merge: spill the other files too.
+            for i in [i for i, p in got.items() if isinstance(p, Partial)]:
+                if self.use_cache:
+                    cache.remove(self._file_keys[i])
+                if i not in todo:
+                    todo.append(i)
+                got[i] = self._scan_file(i, tag, always_spill=True)
+        src.check_unchanged()  # a file replaced meanwhile: neither used nor cached
+        self._files = {"total": n, "scanned": len(todo), "reused": n - len(todo)}
+        self.partial_from_cache = not todo
+        parts = [got[i] for i in range(n)]
+        acc = parts[0].accounting
+        for p in parts[1:]:
+            acc = aggregate.add_accounting(acc, p.accounting)
+        aggregate.check_merged(self.recipe, _label(src), acc)
+        out: Partial | Spilled
+        entry: Path | None = None
+        if n == 1:  # the file's partial is the source's: one entry, under the merged key
+            out = parts[0]
+            if self.use_cache:
+                out = cache.store(key, out, recipe=self.recipe.scan_hash) or out
+                entry = cache.cache_dir() / key
+        elif all(isinstance(p, Partial) for p in parts):
+            self.progress(f"merging the partials of {n:,} files")
+            out = aggregate.merge_all(self.recipe, [p for p in parts if isinstance(p, Partial)])
+            if self.use_cache:
+                out = cache.store(key, out, recipe=self.recipe.scan_hash) or out
+                entry = cache.cache_dir() / key
+        else:
+            out = aggregate.merge_spilled([p for p in parts if isinstance(p, Spilled)])
+            if self.use_cache:
+                entry = cache.mark_files(key, self._file_keys, recipe=self.recipe.scan_hash)
+        if self.use_cache:
+            cache.drop_except(tag, set(self._file_keys))
+            if entry is not None and entry.is_dir():
+                self._entry_stored(entry)
+        return out
+
+    def _source_rows(self) -> int:
+        """Input rows of the whole source (parquet: from metadata), counted once."""
+        if self._rows_in_source is None:
+            assert self.source is not None
+            self._rows_in_source = self.source.count_rows()
+        return self._rows_in_source
+
+    def _keep_file(self, i: int, p: Partial | Spilled, tag: str) -> Partial | Spilled:
+        """Cache file ``i``'s partial (with the cache on); returns it as stored."""
+        assert self.source is not None
+        if not self.use_cache or len(self.source.files) == 1:
+            return p
+        return cache.store(self._file_keys[i], p, recipe=tag, drop_others=False) or p
+
+    def _scan_file(self, i: int, tag: str, *, always_spill: bool) -> Partial | Spilled:
+        """Scan source file ``i`` alone (spilled rows in :data:`FILE_PARTS` parts)."""
+        from reduce.source import file_source
+
+        assert self.source is not None
+        fsrc = file_source(self.source, self.source.states[i])
+        fk = self._file_keys[i] if len(self.source.files) > 1 else self.entry()
+
+        def spill() -> Path:  # made only if the file has to spill
+            d = (cache.spill_dir(fk) if self.use_cache else None) or cache.temp_spill_dir()
+            weakref.finalize(self, shutil.rmtree, d, True)
+            return d
+
+        n = len(self.source.files)
+        probe = None
+        if n > 1 and self._source_rows() > aggregate.probe_rows():
+            # The source is large enough to be probed: so is each of its files, however small
+            # (on half its rows at most), so that a source of many small sparse files spills
+            # file by file instead of merging into one partial the size of the source.
+            probe = min(aggregate.probe_rows(), max(1, fsrc.count_rows() // 2))
+        try:
+            p = aggregate.scan_partial(self.recipe, fsrc, spill_dir=spill, whole=False,
+                                       always_spill=always_spill,
+                                       parts=FILE_PARTS if n > 1 else None, probe=probe)
+        except pl.exceptions.PolarsError as e:  # e.g. a malformed NDJSON line
+            raise (fsrc.read_error(e) or e) from None
+        fsrc.check_unchanged()
+        return self._keep_file(i, p, tag)
 
     def partial(self) -> Partial:
         """The finest partial in memory (merged from its files when it was spilled)."""
@@ -321,6 +474,12 @@ class LevelTables:
     def forget(self, level: Mapping[str, Any]) -> None:
         """Drop a level's rows (a level over the budget is not needed again)."""
         self._rows.pop((level.get("hex"), level.get("time"), level.get("top")), None)
+
+
+def _label(src: OpenSource) -> str:
+    from reduce.source import _files_label
+
+    return _files_label(src.files)
 
 
 def _text(b: TimeBin | None) -> str | None:

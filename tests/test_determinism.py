@@ -185,7 +185,11 @@ def test_cached_partial_gives_identical_payload_and_manifest(runs: dict[str, Any
     payload, manifest = runs["base"][recipe]
     cached_payload, cached_manifest = runs["cached"][recipe]
     assert cached_payload == payload
-    assert cached_manifest == manifest
+    # The manifests differ only in what the runs did: the first scanned the 4 files, the
+    # second reused their cached partials.
+    assert manifest["files"] == {"total": 4, "scanned": 4, "reused": 0}
+    assert cached_manifest["files"] == {"total": 4, "scanned": 0, "reused": 4}
+    assert {**cached_manifest, "files": None} == {**manifest, "files": None}
 
 
 @pytest.mark.parametrize("recipe", RECIPES)
