@@ -28,15 +28,18 @@ import synth  # noqa: E402
 DATA = Path(__file__).resolve().parent / "data"
 
 
-def measure(data: Path, *, points: int | None, res: int, repeat: int,
-            compare: bool) -> dict[str, object]:
+def measure(
+    data: Path, *, points: int | None, res: int, repeat: int, compare: bool
+) -> dict[str, object]:
     import polars as pl
     import polars_h3 as plh3
 
     lat, lon = pl.col("lat"), pl.col("lon")
-    lf = (pl.scan_parquet([str(p) for p in synth.event_files(data)]).select("lat", "lon")
-          .filter(lat.is_not_null() & lon.is_not_null() & (lat.abs() <= 90)
-                  & (lon.abs() <= 180)))
+    lf = (
+        pl.scan_parquet([str(p) for p in synth.event_files(data)])
+        .select("lat", "lon")
+        .filter(lat.is_not_null() & lon.is_not_null() & (lat.abs() <= 90) & (lon.abs() <= 180))
+    )
     if points is not None:
         lf = lf.head(points)
     df = lf.collect()
@@ -50,8 +53,11 @@ def measure(data: Path, *, points: int | None, res: int, repeat: int,
         for _ in range(repeat):
             t, c = time.perf_counter(), time.process_time()
             if mode == "streaming":
-                cells = (df.lazy().select(plh3.latlng_to_cell("lat", "lon", res).alias("c"))
-                         .collect(engine="streaming"))
+                cells = (
+                    df.lazy()
+                    .select(plh3.latlng_to_cell("lat", "lon", res).alias("c"))
+                    .collect(engine="streaming")
+                )
             else:
                 cells = df.select(plh3.latlng_to_cell("lat", "lon", res).alias("c"))
             times.append(time.perf_counter() - t)
@@ -59,7 +65,9 @@ def measure(data: Path, *, points: int | None, res: int, repeat: int,
         assert cells is not None and cells.height == n
         med = statistics.median(times)
         out[mode] = {
-            "seconds": times, "cpu_seconds": cpu, "median_seconds": med,
+            "seconds": times,
+            "cpu_seconds": cpu,
+            "median_seconds": med,
             "points_per_second": n / med,
             # Per CPU-second of the process: not lowered by other processes competing for
             # the cores (only by their effect on caches and clocks).
@@ -96,14 +104,18 @@ def main(argv: list[str] | None = None) -> int:
     for mode in ("streaming", "eager"):
         m = res[mode]
         assert isinstance(m, dict)
-        print(f"H3 latlng_to_cell res {a.res}, {mode:>9}: {res['points']:,} points, "
-              f"{res['threads']} threads: median {m['median_seconds']:.3f} s = "
-              f"{m['points_per_second'] / 1e6:.2f} M points/s "
-              f"({m['points_per_cpu_second'] / 1e6:.2f} M per CPU-second)")
+        print(
+            f"H3 latlng_to_cell res {a.res}, {mode:>9}: {res['points']:,} points, "
+            f"{res['threads']} threads: median {m['median_seconds']:.3f} s = "
+            f"{m['points_per_second'] / 1e6:.2f} M points/s "
+            f"({m['points_per_cpu_second'] / 1e6:.2f} M per CPU-second)"
+        )
     if "h3_loop_points_per_second" in res:
-        print(f"h3 bindings, one call per point: "
-              f"{float(res['h3_loop_points_per_second']) / 1e6:.2f} M points/s "  # type: ignore[arg-type]
-              f"(cells agree: {res['agrees_with_h3']})")
+        print(
+            f"h3 bindings, one call per point: "
+            f"{float(res['h3_loop_points_per_second']) / 1e6:.2f} M points/s "  # type: ignore[arg-type]
+            f"(cells agree: {res['agrees_with_h3']})"
+        )
     if a.json:
         a.json.write_text(json.dumps(res, indent=2))
     return 0

@@ -54,8 +54,9 @@ def build_polygons(n: int, vertices: int, seed: int = 20240611) -> list[Any]:
     rng = np.random.default_rng(seed)
     r = RADIUS * np.sqrt(rng.uniform(0.0, 1.0, n))
     a = rng.uniform(0.0, 2 * np.pi, n)
-    seeds = shapely.multipoints(np.column_stack([CENTRE[0] + r * np.cos(a),
-                                                 CENTRE[1] + r * np.sin(a)]))
+    seeds = shapely.multipoints(
+        np.column_stack([CENTRE[0] + r * np.cos(a), CENTRE[1] + r * np.sin(a)])
+    )
     disc = shapely.Point(*CENTRE).buffer(RADIUS, quad_segs=64)
     cells = shapely.get_parts(shapely.voronoi_polygons(seeds, extend_to=disc.buffer(1.0)))
     polygons = shapely.intersection(cells, disc)
@@ -65,9 +66,14 @@ def build_polygons(n: int, vertices: int, seed: int = 20240611) -> list[Any]:
 
 
 def write_geojson(polygons: list[Any], path: Path) -> None:
-    features = [{"type": "Feature", "properties": {"id": f"R{i:02d}"},
-                 "geometry": json.loads(shapely.to_geojson(p))}
-                for i, p in enumerate(polygons)]
+    features = [
+        {
+            "type": "Feature",
+            "properties": {"id": f"R{i:02d}"},
+            "geometry": json.loads(shapely.to_geojson(p)),
+        }
+        for i, p in enumerate(polygons)
+    ]
     path.write_text(json.dumps({"type": "FeatureCollection", "features": features}))
 
 
@@ -78,8 +84,9 @@ def exact_bbox(b: Boundaries, lat: np.ndarray, lon: np.ndarray) -> np.ndarray:
     for k, g in enumerate(b.geoms):
         shapely.prepare(g)
         xmin, ymin, xmax, ymax = bounds[k]
-        sel = np.flatnonzero((out < 0) & (lon >= xmin) & (lon <= xmax)
-                             & (lat >= ymin) & (lat <= ymax))
+        sel = np.flatnonzero(
+            (out < 0) & (lon >= xmin) & (lon <= xmax) & (lat >= ymin) & (lat <= ymax)
+        )
         out[sel[shapely.intersects_xy(g, lon[sel], lat[sel])]] = k
     return out
 
@@ -93,8 +100,9 @@ def exact_strtree(b: Boundaries, lat: np.ndarray, lon: np.ndarray) -> np.ndarray
     return out.astype(np.int32)
 
 
-def measure(points: int, repeat: int, polygons: int, vertices: int,
-            compare: bool) -> dict[str, Any]:
+def measure(
+    points: int, repeat: int, polygons: int, vertices: int, compare: bool
+) -> dict[str, Any]:
     geoms = build_polygons(polygons, vertices)
     counts = shapely.get_num_coordinates(np.asarray(geoms, dtype=object))
     with tempfile.TemporaryDirectory() as tmp:
@@ -116,12 +124,17 @@ def measure(points: int, repeat: int, polygons: int, vertices: int,
         cpu.append(time.process_time() - c)
     med = statistics.median(times)
     res: dict[str, Any] = {
-        "points": points, "polygons": len(b.ids),
-        "vertices_min": int(counts.min()), "vertices_max": int(counts.max()),
+        "points": points,
+        "polygons": len(b.ids),
+        "vertices_min": int(counts.min()),
+        "vertices_max": int(counts.max()),
         "vertices_total": int(counts.sum()),
-        "cores": len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
+        "cores": len(os.sched_getaffinity(0))
+        if hasattr(os, "sched_getaffinity")
         else os.cpu_count(),
-        "grid_build_seconds": build, "seconds": times, "median_seconds": med,
+        "grid_build_seconds": build,
+        "seconds": times,
+        "median_seconds": med,
         "points_per_second": points / med,
         "points_per_cpu_second": points / statistics.median(cpu),
         "outside_share": float(np.mean(got < 0)),
@@ -149,19 +162,27 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--json", type=Path, default=None, help="write the figures here")
     a = ap.parse_args(argv)
     r = measure(a.points, a.repeat, a.polygons, a.vertices, a.compare)
-    print(f"{r['polygons']} polygons, {r['vertices_min']:,}-{r['vertices_max']:,} vertices "
-          f"each ({r['vertices_total']:,} in all); {r['points']:,} points; "
-          f"{r['cores']} cores")
+    print(
+        f"{r['polygons']} polygons, {r['vertices_min']:,}-{r['vertices_max']:,} vertices "
+        f"each ({r['vertices_total']:,} in all); {r['points']:,} points; "
+        f"{r['cores']} cores"
+    )
     print(f"lookup grid built in {r['grid_build_seconds']:.3f} s (once per boundaries)")
-    print(f"assign: median of {len(r['seconds'])} = {r['median_seconds']:.3f} s = "
-          f"{r['points_per_second']:,.0f} points/s "
-          f"({r['points_per_cpu_second']:,.0f} per CPU-second); "
-          f"{r['outside_share']:.1%} outside every polygon")
+    print(
+        f"assign: median of {len(r['seconds'])} = {r['median_seconds']:.3f} s = "
+        f"{r['points_per_second']:,.0f} points/s "
+        f"({r['points_per_cpu_second']:,.0f} per CPU-second); "
+        f"{r['outside_share']:.1%} outside every polygon"
+    )
     if a.compare:
-        print(f"exact bbox + intersects_xy: {r['bbox_intersects_xy_points_per_second']:,.0f} "
-              f"points/s (same answers: {r['agrees_with_bbox_intersects_xy']})")
-        print(f"exact STRtree query: {r['strtree_points_per_second']:,.0f} points/s "
-              f"(same answers: {r['agrees_with_strtree']})")
+        print(
+            f"exact bbox + intersects_xy: {r['bbox_intersects_xy_points_per_second']:,.0f} "
+            f"points/s (same answers: {r['agrees_with_bbox_intersects_xy']})"
+        )
+        print(
+            f"exact STRtree query: {r['strtree_points_per_second']:,.0f} points/s "
+            f"(same answers: {r['agrees_with_strtree']})"
+        )
     if a.json:
         a.json.write_text(json.dumps(r, indent=2))
     return 0

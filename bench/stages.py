@@ -71,8 +71,14 @@ def main(argv: list[str] | None = None) -> int:
 
     def close(next_name: str) -> None:
         now, cpu = time.perf_counter(), time.process_time()
-        stages.append({"stage": last["name"], "seconds": now - last["t"],
-                       "cpu": cpu - last["cpu"], "peak_mb": sampler.take() / 1e6})
+        stages.append(
+            {
+                "stage": last["name"],
+                "seconds": now - last["t"],
+                "cpu": cpu - last["cpu"],
+                "peak_mb": sampler.take() / 1e6,
+            }
+        )
         last.update(name=next_name, t=now, cpu=cpu)
 
     import inspect
@@ -94,8 +100,10 @@ def main(argv: list[str] | None = None) -> int:
     print(f"{'stage':<{width}} {'seconds':>8} {'cpu s':>8} {'peak MB':>8}")
     for s in stages:
         print(f"{s['stage']:<{width}} {s['seconds']:8.2f} {s['cpu']:8.2f} {s['peak_mb']:8.0f}")
-    print(f"{'total':<{width}} {total:8.2f} {time.process_time():8.2f} "
-          f"{max(s['peak_mb'] for s in stages):8.0f}")
+    print(
+        f"{'total':<{width}} {total:8.2f} {time.process_time():8.2f} "
+        f"{max(s['peak_mb'] for s in stages):8.0f}"
+    )
     if a.json:
         a.json.write_text(json.dumps({"stages": stages, "total": total}, indent=2))
     return 0

@@ -53,24 +53,40 @@ LON_RANGE = (-125.0, -110.0)
 YEAR_START_US = 1_735_689_600_000_000  # 2025-01-01T00:00:00Z in microseconds
 YEAR_US = 365 * 86_400 * 1_000_000
 
-KINDS = ("drift", "ping", "flare", "swell", "glint", "echo", "ripple", "haze", "spark",
-         "tide", "bloom", "squall", "murmur", "sheen", "vortex")
+KINDS = (
+    "drift",
+    "ping",
+    "flare",
+    "swell",
+    "glint",
+    "echo",
+    "ripple",
+    "haze",
+    "spark",
+    "tide",
+    "bloom",
+    "squall",
+    "murmur",
+    "sheen",
+    "vortex",
+)
 REGIONS = tuple(f"R{i:02d}" for i in range(N_REGIONS))
-
 
 
 def schema() -> pa.Schema:
     import pyarrow as pa
 
-    return pa.schema([
-        ("ts", pa.timestamp("us", tz="UTC")),
-        ("lat", pa.float64()),
-        ("lon", pa.float64()),
-        ("region", pa.string()),
-        ("kind", pa.string()),
-        ("value", pa.float64()),
-        ("who", pa.int64()),
-    ])
+    return pa.schema(
+        [
+            ("ts", pa.timestamp("us", tz="UTC")),
+            ("lat", pa.float64()),
+            ("lon", pa.float64()),
+            ("region", pa.string()),
+            ("kind", pa.string()),
+            ("value", pa.float64()),
+            ("who", pa.int64()),
+        ]
+    )
 
 
 @dataclass(frozen=True)
@@ -97,13 +113,13 @@ def world() -> World:
     sigma = np.clip(rng.lognormal(np.log(0.07), 0.6, N_CENTRES), 0.02, 0.3)
     w = 1.0 / np.arange(1, N_CENTRES + 1) ** 0.9
     w = w[rng.permutation(N_CENTRES)]
-    region = np.concatenate([np.arange(N_REGIONS),
-                             rng.integers(0, N_REGIONS, N_CENTRES - N_REGIONS)])
+    region = np.concatenate(
+        [np.arange(N_REGIONS), rng.integers(0, N_REGIONS, N_CENTRES - N_REGIONS)]
+    )
     kind_p = 1.0 / np.arange(1, len(KINDS) + 1) ** 1.1
     hours = np.arange(24)
     hour_p = 0.3 / 24 + 0.7 * np.exp(-0.5 * ((hours - 14) / 4.0) ** 2)
-    return World(lat, lon, sigma, w / w.sum(), region, kind_p / kind_p.sum(),
-                 hour_p / hour_p.sum())
+    return World(lat, lon, sigma, w / w.sum(), region, kind_p / kind_p.sum(), hour_p / hour_p.sum())
 
 
 def chunk(w: World, index: int, rows: int) -> pa.Table:
@@ -131,15 +147,18 @@ def chunk(w: World, index: int, rows: int) -> pa.Table:
     lat_null[bad[how == 0]] = True
     lat[bad[how == 1]] = 95.0
     lon[bad[how == 2]] = 200.0
-    return pa.Table.from_arrays([
-        pa.array(ts, type=pa.int64()).cast(pa.timestamp("us", tz="UTC")),
-        pa.array(lat, mask=lat_null),
-        pa.array(lon),
-        pa.array(REGIONS, type=pa.string()).take(pa.array(region)),
-        pa.array(KINDS, type=pa.string()).take(pa.array(kind)),
-        pa.array(value),
-        pa.array(who),
-    ], schema=schema())
+    return pa.Table.from_arrays(
+        [
+            pa.array(ts, type=pa.int64()).cast(pa.timestamp("us", tz="UTC")),
+            pa.array(lat, mask=lat_null),
+            pa.array(lon),
+            pa.array(REGIONS, type=pa.string()).take(pa.array(region)),
+            pa.array(KINDS, type=pa.string()).take(pa.array(kind)),
+            pa.array(value),
+            pa.array(who),
+        ],
+        schema=schema(),
+    )
 
 
 def population() -> str:
@@ -162,8 +181,7 @@ def parse_rows(text: str) -> int:
     try:
         n = round(float(t) * mult)
     except ValueError:
-        raise ValueError(f"--rows {text!r}: use e.g. 1M, 20M, 100M or a plain integer") \
-            from None
+        raise ValueError(f"--rows {text!r}: use e.g. 1M, 20M, 100M or a plain integer") from None
     if n <= 0:
         raise ValueError(f"--rows {text!r}: must be positive")
     return n
@@ -183,8 +201,13 @@ def estimate_bytes(rows: int) -> int:
 
 
 def _want(rows: int) -> dict[str, int]:
-    return {"rows": rows, "seed": SEED, "version": GENERATOR_VERSION,
-            "chunk_rows": CHUNK_ROWS, "file_rows": FILE_ROWS}
+    return {
+        "rows": rows,
+        "seed": SEED,
+        "version": GENERATOR_VERSION,
+        "chunk_rows": CHUNK_ROWS,
+        "file_rows": FILE_ROWS,
+    }
 
 
 def complete(root: Path, rows: int) -> bool:
@@ -206,8 +229,10 @@ def ensure(root: Path, rows: int, *, log: Callable[[str], None] = print) -> Path
     free = shutil.disk_usage(root if root.exists() else root.parent).free
     need = estimate_bytes(rows)
     if need > free * 0.8:
-        raise SystemExit(f"bench: {rows:,} rows need about {need / 1e9:.1f} GB but only "
-                         f"{free / 1e9:.1f} GB are free under {root}; free some space")
+        raise SystemExit(
+            f"bench: {rows:,} rows need about {need / 1e9:.1f} GB but only "
+            f"{free / 1e9:.1f} GB are free under {root}; free some space"
+        )
     if d.exists():
         shutil.rmtree(d)
     ev = d / "events"
@@ -223,8 +248,9 @@ def ensure(root: Path, rows: int, *, log: Callable[[str], None] = print) -> Path
             written = 0
             while written < f_rows:
                 n = min(CHUNK_ROWS, f_rows - written)
-                wr.write_table(chunk(w, (f * FILE_ROWS + written) // CHUNK_ROWS, n),
-                               row_group_size=CHUNK_ROWS)
+                wr.write_table(
+                    chunk(w, (f * FILE_ROWS + written) // CHUNK_ROWS, n), row_group_size=CHUNK_ROWS
+                )
                 written += n
         os.replace(tmp, ev / f"part-{f:03d}.parquet")
         done += f_rows

@@ -48,18 +48,34 @@ def task_c(data: Path) -> dict[str, object]:
 
     t1 = time.perf_counter()
     lat, lon = pl.col("lat"), pl.col("lon")
-    valid = (lat.is_not_null() & lon.is_not_null() & ~lat.is_nan() & ~lon.is_nan()
-             & (lat.abs() <= 90) & (lon.abs() <= 180))
-    out = (pl.scan_parquet(_files(data))
-           .select("ts", "lat", "lon", "kind", "value")
-           .filter(valid)
-           .select(plh3.latlng_to_cell("lat", "lon", 9).alias("cell"),
-                   pl.col("ts").dt.truncate("1h").alias("hour"), "kind", "value")
-           .group_by("cell", "hour", "kind")
-           .agg(pl.len().alias("n"), pl.col("value").sum().alias("value_sum"))
-           .collect(engine="streaming"))
-    return {"imports": t1 - T0, "compute": time.perf_counter() - t1, "rows": out.height,
-            "events": int(out.get_column("n").sum())}
+    valid = (
+        lat.is_not_null()
+        & lon.is_not_null()
+        & ~lat.is_nan()
+        & ~lon.is_nan()
+        & (lat.abs() <= 90)
+        & (lon.abs() <= 180)
+    )
+    out = (
+        pl.scan_parquet(_files(data))
+        .select("ts", "lat", "lon", "kind", "value")
+        .filter(valid)
+        .select(
+            plh3.latlng_to_cell("lat", "lon", 9).alias("cell"),
+            pl.col("ts").dt.truncate("1h").alias("hour"),
+            "kind",
+            "value",
+        )
+        .group_by("cell", "hour", "kind")
+        .agg(pl.len().alias("n"), pl.col("value").sum().alias("value_sum"))
+        .collect(engine="streaming")
+    )
+    return {
+        "imports": t1 - T0,
+        "compute": time.perf_counter() - t1,
+        "rows": out.height,
+        "events": int(out.get_column("n").sum()),
+    }
 
 
 def task_cprime(data: Path, manifest: Path, out: Path | None) -> dict[str, object]:
@@ -70,41 +86,70 @@ def task_cprime(data: Path, manifest: Path, out: Path | None) -> dict[str, objec
     t1 = time.perf_counter()
     man = json.loads(manifest.read_text())
     level = man["level"]
-    res, bin_, k, digits = int(level["hex"]), str(level["time"]), int(level["top"]), \
-        int(level["digits"])
+    res, bin_, k, digits = (
+        int(level["hex"]),
+        str(level["time"]),
+        int(level["top"]),
+        int(level["digits"]),
+    )
     recipe = tomllib.loads((data / "recipe_a.toml").read_text())
     zone = recipe["group"]["time"].get("zone", "UTC")
     files = _files(data)
     lat, lon = pl.col("lat"), pl.col("lon")
-    valid = (lat.is_not_null() & lon.is_not_null() & ~lat.is_nan() & ~lon.is_nan()
-             & (lat.abs() <= 90) & (lon.abs() <= 180) & pl.col("ts").is_not_null())
-    g = (pl.scan_parquet(files)
-         .select("ts", "lat", "lon", "kind", "value")
-         .filter(valid)
-         .select(pl.col("ts").dt.convert_time_zone(zone).dt.truncate(bin_).alias("time"),
-                 plh3.latlng_to_cell("lat", "lon", res).alias("hex"), "kind", "value")
-         .group_by("time", "hex", "kind")
-         .agg(pl.len().alias("events"), pl.col("value").sum().alias("value_sum"))
-         .collect(engine="streaming"))
+    valid = (
+        lat.is_not_null()
+        & lon.is_not_null()
+        & ~lat.is_nan()
+        & ~lon.is_nan()
+        & (lat.abs() <= 90)
+        & (lon.abs() <= 180)
+        & pl.col("ts").is_not_null()
+    )
+    g = (
+        pl.scan_parquet(files)
+        .select("ts", "lat", "lon", "kind", "value")
+        .filter(valid)
+        .select(
+            pl.col("ts").dt.convert_time_zone(zone).dt.truncate(bin_).alias("time"),
+            plh3.latlng_to_cell("lat", "lon", res).alias("hex"),
+            "kind",
+            "value",
+        )
+        .group_by("time", "hex", "kind")
+        .agg(pl.len().alias("events"), pl.col("value").sum().alias("value_sum"))
+        .collect(engine="streaming")
+    )
     # Top k kinds per (time, hex) by count, ties by kind; the others folded into one row.
-    ranked = (g.sort(["events", "kind"], descending=[True, False])
-              .with_columns(pl.int_range(pl.len()).over("time", "hex").alias("rank")))
-    top = (ranked.with_columns(pl.when(pl.col("rank") < k).then(pl.col("kind"))
-                               .otherwise(pl.lit(REST)).alias("kind"))
-           .group_by("time", "hex", "kind")
-           .agg(pl.col("events").sum(), pl.col("value_sum").sum())
-           .sort(["time", "hex", pl.col("kind") == REST, "kind"]))
-    plain = top.select(pl.col("time").dt.epoch("s"), plh3.int_to_str("hex").alias("hex"),
-                       "kind", "events",
-                       pl.when(pl.col("value_sum").is_finite())
-                       .then(pl.col("value_sum").round(digits))
-                       .cast(pl.Int64 if digits == 0 else pl.Float64).alias("value_sum"))
+    ranked = g.sort(["events", "kind"], descending=[True, False]).with_columns(
+        pl.int_range(pl.len()).over("time", "hex").alias("rank")
+    )
+    top = (
+        ranked.with_columns(
+            pl.when(pl.col("rank") < k).then(pl.col("kind")).otherwise(pl.lit(REST)).alias("kind")
+        )
+        .group_by("time", "hex", "kind")
+        .agg(pl.col("events").sum(), pl.col("value_sum").sum())
+        .sort(["time", "hex", pl.col("kind") == REST, "kind"])
+    )
+    plain = top.select(
+        pl.col("time").dt.epoch("s"),
+        plh3.int_to_str("hex").alias("hex"),
+        "kind",
+        "events",
+        pl.when(pl.col("value_sum").is_finite())
+        .then(pl.col("value_sum").round(digits))
+        .cast(pl.Int64 if digits == 0 else pl.Float64)
+        .alias("value_sum"),
+    )
     columns = {c: plain.get_column(c).to_list() for c in plain.columns}
     labels = sorted(set(columns["kind"]))
-    doc: dict[str, object] = {"format": "reduce.columns/1",
-                              "recipe": recipe.get("name", ""),
-                              "level": {"hex": res, "time": bin_, "top": k, "digits": digits},
-                              "rows": plain.height, "columns": columns}
+    doc: dict[str, object] = {
+        "format": "reduce.columns/1",
+        "recipe": recipe.get("name", ""),
+        "level": {"hex": res, "time": bin_, "top": k, "digits": digits},
+        "rows": plain.height,
+        "columns": columns,
+    }
     pos = {v: i for i, v in enumerate(labels)}
     coded = [pos[v] for v in columns["kind"]]
     if len(orjson.dumps(labels)) + len(orjson.dumps(coded)) < len(orjson.dumps(columns["kind"])):
@@ -112,17 +157,27 @@ def task_cprime(data: Path, manifest: Path, out: Path | None) -> dict[str, objec
         doc["dictionaries"] = {"kind": labels}
     input_rows = pl.scan_parquet(files).select(pl.len()).collect().item()
     represented = int(plain.get_column("events").sum())
-    doc["accounting"] = {"input_rows": input_rows, "filtered_rows": 0,
-                         "invalid_rows": input_rows - represented, "suppressed_rows": 0,
-                         "represented_rows": represented}
+    doc["accounting"] = {
+        "input_rows": input_rows,
+        "filtered_rows": 0,
+        "invalid_rows": input_rows - represented,
+        "suppressed_rows": 0,
+        "represented_rows": represented,
+    }
     doc["meta"] = {"time_zone": zone, "rest": REST}
     body = orjson.dumps(doc)
     packed = gzip.compress(body, compresslevel=9, mtime=0)
     if out is not None:
         out.parent.mkdir(parents=True, exist_ok=True)
         out.write_bytes(packed)
-    return {"imports": t1 - T0, "compute": time.perf_counter() - t1, "rows": plain.height,
-            "raw": len(body), "gzip": len(packed), "level": doc["level"]}
+    return {
+        "imports": t1 - T0,
+        "compute": time.perf_counter() - t1,
+        "rows": plain.height,
+        "raw": len(body),
+        "gzip": len(packed),
+        "level": doc["level"],
+    }
 
 
 _SQL = """
@@ -155,8 +210,16 @@ def task_d(data: Path, out: Path | None) -> dict[str, object]:
     t1 = time.perf_counter()
     con = duckdb.connect()
     con.execute("SET threads = 2")
-    rows = con.execute(_SQL, {"files": _files(data), "k": TOP_K, "rest": REST, "per": PER,
-                              "den": str(data / "population.csv")}).fetchall()
+    rows = con.execute(
+        _SQL,
+        {
+            "files": _files(data),
+            "k": TOP_K,
+            "rest": REST,
+            "per": PER,
+            "den": str(data / "population.csv"),
+        },
+    ).fetchall()
     if out is not None:
         out.write_text(json.dumps([list(r) for r in rows]))
     return {"imports": t1 - T0, "compute": time.perf_counter() - t1, "rows": len(rows)}
@@ -179,16 +242,22 @@ def task_e(data: Path, out: Path | None) -> dict[str, object]:
     g["is_rest"] = g["kind"] == REST
     g = g.sort_values(["region", "is_rest", "kind"])
     if out is not None:
-        out.write_text(json.dumps(g[["region", "kind", "n", "n_per_100000"]]
-                                  .astype(object).values.tolist()))
+        out.write_text(
+            json.dumps(g[["region", "kind", "n", "n_per_100000"]].astype(object).values.tolist())
+        )
     return {"imports": t1 - T0, "compute": time.perf_counter() - t1, "rows": len(g)}
 
 
 def main(argv: list[str]) -> int:
-    if len(argv) < 2 or argv[0] not in ("c", "cprime", "d", "e") or (
-            argv[0] == "cprime" and "--manifest" not in argv):
-        print("usage: tasks.py c|cprime|d|e DATA_DIR [--out FILE] [--manifest FILE (cprime)]",
-              file=sys.stderr)
+    if (
+        len(argv) < 2
+        or argv[0] not in ("c", "cprime", "d", "e")
+        or (argv[0] == "cprime" and "--manifest" not in argv)
+    ):
+        print(
+            "usage: tasks.py c|cprime|d|e DATA_DIR [--out FILE] [--manifest FILE (cprime)]",
+            file=sys.stderr,
+        )
         return 2
     task, data = argv[0], Path(argv[1])
     out = Path(argv[argv.index("--out") + 1]) if "--out" in argv else None

@@ -28,7 +28,21 @@ from reduce.recipe import Recipe, load_recipe
 from reduce.validate import CheckReport, check
 
 __all__ = [
-    "AuditError", "BudgetError", "CheckReport", "DenominatorError", "FitResult", "OutputError",
-    "Recipe", "RecipeError", "ReduceError", "RunResult", "SourceError", "__version__", "check",
-    "fit", "ladder", "load_recipe", "run",
+    "AuditError",
+    "BudgetError",
+    "CheckReport",
+    "DenominatorError",
+    "FitResult",
+    "OutputError",
+    "Recipe",
+    "RecipeError",
+    "ReduceError",
+    "RunResult",
+    "SourceError",
+    "__version__",
+    "check",
+    "fit",
+    "ladder",
+    "load_recipe",
+    "run",
 ]

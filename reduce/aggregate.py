@@ -201,8 +201,9 @@ class Spilled:
     def frame(self, part: int | None = None) -> pl.LazyFrame:
         """The valid keyed rows (of one part, or of all)."""
         names = [f for p in self.parts for f in p] if part is None else list(self.parts[part])
-        return (pl.scan_parquet([str(self.root / f) for f in names], hive_partitioning=False)
-                .filter(pl.col(INVALID) == 0))
+        return pl.scan_parquet([str(self.root / f) for f in names], hive_partitioning=False).filter(
+            pl.col(INVALID) == 0
+        )
 
     def moved(self, folder: Path) -> Spilled:
         return replace(self, root=folder)
@@ -234,23 +235,32 @@ def _measure_inputs(recipe: Recipe, schema: pl.Schema, label: str) -> list[pl.Ex
     return out
 
 
-def _scan_measures(recipe: Recipe, float_inputs: set[str]
-                   ) -> tuple[list[MeasureSpec], set[str]]:
+def _scan_measures(recipe: Recipe, float_inputs: set[str]) -> tuple[list[MeasureSpec], set[str]]:
     """Measures reading their renamed input columns (``__in_<name>``, so a measure column may
     share a name with a key), and which of those inputs are floats."""
-    renamed = [replace(m, column=f"__in_{m.name}")
-               if m.column is not None and m.kind != "distinct" else m
-               for m in recipe.measures]
-    floats = {f"__in_{o.name}" for o in recipe.measures
-              if o.column is not None and o.kind != "distinct" and o.column in float_inputs}
+    renamed = [
+        replace(m, column=f"__in_{m.name}") if m.column is not None and m.kind != "distinct" else m
+        for m in recipe.measures
+    ]
+    floats = {
+        f"__in_{o.name}"
+        for o in recipe.measures
+        if o.column is not None and o.kind != "distinct" and o.column in float_inputs
+    }
     return renamed, floats
 
 
-def scan_partial(recipe: Recipe, src: OpenSource, *,
-                 progress: Callable[[str], None] | None = None,
-                 spill_dir: Callable[[], Path] | None = None, whole: bool = True,
-                 always_spill: bool = False, parts: int | None = None,
-                 probe: int | None = None) -> Partial | Spilled:
+def scan_partial(
+    recipe: Recipe,
+    src: OpenSource,
+    *,
+    progress: Callable[[str], None] | None = None,
+    spill_dir: Callable[[], Path] | None = None,
+    whole: bool = True,
+    always_spill: bool = False,
+    parts: int | None = None,
+    probe: int | None = None,
+) -> Partial | Spilled:
     """Compute the finest partial with one streaming scan of the source.
 
     With ``spill_dir`` (which makes a folder to write to; called only when needed), a large
@@ -281,9 +291,12 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
             dcols.append(m.column)
     dnames = [f"__d{i}" for i in range(len(dcols))]
     renamed, floats = _scan_measures(recipe, {c for c, t in schema.items() if t.is_float()})
-    select = [*key_exprs, *([reason] if reason is not None else []),
-              *[pl.col(c).alias(n) for c, n in zip(dcols, dnames)],
-              *_measure_inputs(recipe, schema, label)]
+    select = [
+        *key_exprs,
+        *([reason] if reason is not None else []),
+        *[pl.col(c).alias(n) for c, n in zip(dcols, dnames)],
+        *_measure_inputs(recipe, schema, label),
+    ]
     by = [*keys, *hidden, *([INVALID] if reason is not None else []), *dnames]
     aggs = _scan_aggs(renamed, floats)
 
@@ -301,8 +314,11 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
         """Valid groups of the finest keys among ``frame``'s rows."""
         finest = [e for e in key_exprs if not is_hidden(e.meta.output_name())]
         rows = frame.select([*finest, *([reason] if reason is not None else [])])
-        rows = (rows.filter(pl.col(INVALID) == 0).drop(INVALID) if reason is not None
-                else rows.drop_nulls(list(keys)))
+        rows = (
+            rows.filter(pl.col(INVALID) == 0).drop(INVALID)
+            if reason is not None
+            else rows.drop_nulls(list(keys))
+        )
         try:
             return int(rows.unique().select(pl.len()).collect(engine="streaming").item())
         except pl.exceptions.PolarsError as e:
@@ -329,15 +345,18 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
         else:
             assert spill_dir is not None
             if progress:
-                progress(f"scanning the source: writing its {input_rows:,} keyed rows to disk "
-                         "(events too sparse to group in memory)")
+                progress(
+                    f"scanning the source: writing its {input_rows:,} keyed rows to disk "
+                    "(events too sparse to group in memory)"
+                )
             folder = spill_dir()
             rows = lf.select(select)
             if reason is None:
                 rows = rows.with_columns(reason_of_groups(list(keys)))
             n_parts = parts or max(1, min(64, -(-input_rows // PART_ROWS)))
-            target = pl.PartitionBy(folder / "rows", include_key=False,
-                                    key={"__part": _part_of(recipe, keys, n_parts)})
+            target = pl.PartitionBy(
+                folder / "rows", include_key=False, key={"__part": _part_of(recipe, keys, n_parts)}
+            )
             try:
                 rows.sink_parquet(target, compression="lz4", statistics=False, mkdir=True)
             except (pl.exceptions.PolarsError, OSError) as e:
@@ -345,12 +364,13 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
                 if full is None and isinstance(e, pl.exceptions.PolarsError):
                     raise _scan_error(recipe, src, label, e) from None
                 why = full or getattr(e, "strerror", None) or _first(e)
-                raise OutputError(f"{folder.parent}: cannot write the scan's keyed rows "
-                                  f"({why}); free space there or point REDUCE_CACHE_DIR (TMPDIR "
-                                  "with --no-cache) at a disk with room for about 16 bytes per "
-                                  "event") from None
-            return _spilled(recipe, label, keys, folder, input_rows, renamed, floats,
-                            check=whole)
+                raise OutputError(
+                    f"{folder.parent}: cannot write the scan's keyed rows "
+                    f"({why}); free space there or point REDUCE_CACHE_DIR (TMPDIR "
+                    "with --no-cache) at a disk with room for about 16 bytes per "
+                    "event"
+                ) from None
+            return _spilled(recipe, label, keys, folder, input_rows, renamed, floats, check=whole)
     if progress:
         progress("building the finest partial")
     kept = int(grouped.get_column(N).sum()) if grouped.height else 0
@@ -364,7 +384,8 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
     if dnames:
         # One row per finest group; each group's distinct values become (group, value) pairs.
         table = valid.group_by([*keys, *hidden]).agg(
-            [*_merge_aggs(renamed, present), *[pl.col(d) for d in dnames]])
+            [*_merge_aggs(renamed, present), *[pl.col(d) for d in dnames]]
+        )
         table = table.with_row_index(GROUP)
         for m in distinct:
             dn = dnames[dcols.index(str(m.column))]
@@ -379,18 +400,27 @@ def scan_partial(recipe: Recipe, src: OpenSource, *,
     else:
         table = valid
     acc = _accounting(recipe, label, input_rows, kept, by_reason, check=whole)
-    return Partial(keys=keys, table=table, pairs=pairs, values=values,
-                   hex_res=recipe.hex.levels[0] if recipe.hex else None,
-                   time_bin=recipe.time.levels[0] if recipe.time else None, accounting=acc)
+    return Partial(
+        keys=keys,
+        table=table,
+        pairs=pairs,
+        values=values,
+        hex_res=recipe.hex.levels[0] if recipe.hex else None,
+        time_bin=recipe.time.levels[0] if recipe.time else None,
+        accounting=acc,
+    )
 
 
-def _check_overflow(recipe: Recipe, renamed: Sequence[MeasureSpec], label: str,
-                    scanned: pl.DataFrame) -> None:
+def _check_overflow(
+    recipe: Recipe, renamed: Sequence[MeasureSpec], label: str, scanned: pl.DataFrame
+) -> None:
     for m, o in zip(renamed, recipe.measures):
         if _ovf(m) in scanned.columns and int(scanned.get_column(_ovf(m)).sum()):
-            raise SourceError(f"{label}: column {o.column!r} (measures.{o.name}) holds values "
-                              "beyond ±7.7e25 that cannot be summed exactly; rescale the "
-                              "column (e.g. to thousands)")
+            raise SourceError(
+                f"{label}: column {o.column!r} (measures.{o.name}) holds values "
+                "beyond ±7.7e25 that cannot be summed exactly; rescale the "
+                "column (e.g. to thousands)"
+            )
 
 
 def _disk_full(e: BaseException) -> str | None:
@@ -410,64 +440,95 @@ def _part_of(recipe: Recipe, keys: Sequence[str], n: int) -> pl.Expr:
     every axis, categories left out (so that roll-ups never merge rows of two parts, and
     all categories of a group, which top-k ranks together, share a part)."""
     outer = [k for k in keys if k not in recipe.categories] or list(keys)
-    coarse = coarsen(recipe, hex_res=recipe.hex.levels[-1] if recipe.hex else None,
-                     time_bin=recipe.time.levels[-1] if recipe.time else None,
-                     from_hex=recipe.hex.levels[0] if recipe.hex else None,
-                     from_time=recipe.time.levels[0] if recipe.time else None)
+    coarse = coarsen(
+        recipe,
+        hex_res=recipe.hex.levels[-1] if recipe.hex else None,
+        time_bin=recipe.time.levels[-1] if recipe.time else None,
+        from_hex=recipe.hex.levels[0] if recipe.hex else None,
+        from_time=recipe.time.levels[0] if recipe.time else None,
+    )
     mapped = {e.meta.output_name(): e for e in coarse}
     cols = [mapped.get(k, pl.col(k)).alias(k) for k in outer]
     return (pl.struct(cols).hash(seed=7) % n).cast(pl.UInt32)
 
 
-def _spilled(recipe: Recipe, label: str, keys: tuple[str, ...], root: Path, input_rows: int,
-             renamed: Sequence[MeasureSpec], floats: set[str], *, check: bool = True
-             ) -> Spilled:
+def _spilled(
+    recipe: Recipe,
+    label: str,
+    keys: tuple[str, ...],
+    root: Path,
+    input_rows: int,
+    renamed: Sequence[MeasureSpec],
+    floats: set[str],
+    *,
+    check: bool = True,
+) -> Spilled:
     """Account for the keyed rows written under ``root`` (one pass over a few columns)."""
     found: dict[int, list[str]] = {}
     for f in sorted((root / "rows").glob("__part=*/*.parquet")):
-        found.setdefault(int(f.parent.name.split("=", 1)[1]), []).append(
-            str(f.relative_to(root)))
+        found.setdefault(int(f.parent.name.split("=", 1)[1]), []).append(str(f.relative_to(root)))
     parts = tuple(tuple(found[k]) for k in sorted(found))
-    aggs = [pl.len().cast(pl.Int64).alias(N),
-            *[a for a in _scan_aggs(renamed, floats) if a.meta.output_name().startswith("__ovf")]]
-    counts = (pl.scan_parquet([str(root / f) for p in parts for f in p],
-                              hive_partitioning=False)
-              .group_by(INVALID).agg(aggs).collect(engine="streaming"))
+    aggs = [
+        pl.len().cast(pl.Int64).alias(N),
+        *[a for a in _scan_aggs(renamed, floats) if a.meta.output_name().startswith("__ovf")],
+    ]
+    counts = (
+        pl.scan_parquet([str(root / f) for p in parts for f in p], hive_partitioning=False)
+        .group_by(INVALID)
+        .agg(aggs)
+        .collect(engine="streaming")
+    )
     _check_overflow(recipe, renamed, label, counts)
     kept = int(counts.get_column(N).sum()) if counts.height else 0
     inv = counts.filter(pl.col(INVALID) != 0).sort(INVALID)
-    by_reason = {INVALID_REASONS[int(r)]: int(n)
-                 for r, n in inv.select(INVALID, N).iter_rows()}
+    by_reason = {INVALID_REASONS[int(r)]: int(n) for r, n in inv.select(INVALID, N).iter_rows()}
     acc = _accounting(recipe, label, input_rows, kept, by_reason, check=check)
-    return Spilled(keys=keys, root=root, parts=parts, rows=kept - sum(by_reason.values()),
-                   hex_res=recipe.hex.levels[0] if recipe.hex else None,
-                   time_bin=recipe.time.levels[0] if recipe.time else None, accounting=acc)
+    return Spilled(
+        keys=keys,
+        root=root,
+        parts=parts,
+        rows=kept - sum(by_reason.values()),
+        hex_res=recipe.hex.levels[0] if recipe.hex else None,
+        time_bin=recipe.time.levels[0] if recipe.time else None,
+        accounting=acc,
+    )
 
 
-def rollup_spilled_parts(recipe: Recipe, s: Spilled, *, hex_res: int | None,
-                         time_bin: TimeBin | None, keys_only: bool = False
-                         ) -> Iterator[pl.DataFrame]:
+def rollup_spilled_parts(
+    recipe: Recipe,
+    s: Spilled,
+    *,
+    hex_res: int | None,
+    time_bin: TimeBin | None,
+    keys_only: bool = False,
+) -> Iterator[pl.DataFrame]:
     """The table of a level (the finest included) from spilled keyed rows, part by part:
     the same aggregation the scan would have done, in memory for one part at a time
     (``keys_only``: just the level's distinct keys, which is all a row count needs)."""
-    mapping = coarsen(recipe, hex_res=hex_res, time_bin=time_bin, from_hex=s.hex_res,
-                      from_time=s.time_bin)
+    mapping = coarsen(
+        recipe, hex_res=hex_res, time_bin=time_bin, from_hex=s.hex_res, from_time=s.time_bin
+    )
     group = [*s.keys, *hidden_below(recipe, hex_res)]
     aggs: list[pl.Expr] = []
     if not keys_only:
         renamed, _ = _scan_measures(recipe, set())
         schema = s.frame(0).collect_schema()
         floats = {c for c, t in schema.items() if c.startswith("__in_") and t.is_float()}
-        aggs = [a for a in _scan_aggs(renamed, floats)
-                if not a.meta.output_name().startswith("__ovf")]
+        aggs = [
+            a for a in _scan_aggs(renamed, floats) if not a.meta.output_name().startswith("__ovf")
+        ]
     for i in range(len(s.parts)):
         lf = s.frame(i)
         if keys_only:
-            yield (lf.select([*s.keys, *hidden_below(recipe, None)]).with_columns(mapping)
-                   .select(group).unique().collect(engine="streaming"))
+            yield (
+                lf.select([*s.keys, *hidden_below(recipe, None)])
+                .with_columns(mapping)
+                .select(group)
+                .unique()
+                .collect(engine="streaming")
+            )
         else:
-            yield (lf.with_columns(mapping).group_by(group).agg(aggs)
-                   .collect(engine="streaming"))
+            yield (lf.with_columns(mapping).group_by(group).agg(aggs).collect(engine="streaming"))
 
 
 def split_cells(recipe: Recipe, s: Spilled, hex_res: int | None) -> pl.Series | None:
@@ -477,33 +538,44 @@ def split_cells(recipe: Recipe, s: Spilled, hex_res: int | None) -> pl.Series | 
     Parts split rows by their exact cell at the coarsest hex level; exact cells of finer
     levels do not nest in those, so a finer cell on a coarsest cell's edge has rows in two
     parts. One streaming pass over two columns of the spilled rows finds them."""
-    if (not recipe.hex or hex_res is None or len(s.parts) < 2
-            or hex_res == recipe.hex.levels[-1]):
+    if not recipe.hex or hex_res is None or len(s.parts) < 2 or hex_res == recipe.hex.levels[-1]:
         return None
     col = HEX if hex_res == s.hex_res else hidden_hex(hex_res)
     coarsest = hidden_hex(recipe.hex.levels[-1])
-    return (s.frame().select(pl.col(col).alias(HEX), pl.col(coarsest)).unique()
-            .group_by(HEX).len().filter(pl.col("len") > 1).collect(engine="streaming")
-            .get_column(HEX))
+    return (
+        s.frame()
+        .select(pl.col(col).alias(HEX), pl.col(coarsest))
+        .unique()
+        .group_by(HEX)
+        .len()
+        .filter(pl.col("len") > 1)
+        .collect(engine="streaming")
+        .get_column(HEX)
+    )
 
 
-def rollup_spilled(recipe: Recipe, s: Spilled, *, hex_res: int | None,
-                   time_bin: TimeBin | None) -> Partial:
+def rollup_spilled(
+    recipe: Recipe, s: Spilled, *, hex_res: int | None, time_bin: TimeBin | None
+) -> Partial:
     """The partial at a level from spilled keyed rows (see :func:`rollup_spilled_parts`)."""
     tables = list(rollup_spilled_parts(recipe, s, hex_res=hex_res, time_bin=time_bin))
     table = pl.concat(tables, how="vertical_relaxed") if tables else pl.DataFrame()
-    return Partial(keys=s.keys, table=table, pairs={},
-                   hex_res=(hex_res if hex_res is not None else s.hex_res) if recipe.hex
-                   else None,
-                   time_bin=(time_bin if time_bin is not None else s.time_bin) if recipe.time
-                   else None, accounting=s.accounting)
+    return Partial(
+        keys=s.keys,
+        table=table,
+        pairs={},
+        hex_res=(hex_res if hex_res is not None else s.hex_res) if recipe.hex else None,
+        time_bin=(time_bin if time_bin is not None else s.time_bin) if recipe.time else None,
+        accounting=s.accounting,
+    )
 
 
 _PARSE_RE = re.compile(r"could not parse `(.*?)` as dtype `([^`]+)` at column '([^']+)'")
 
 
-def _scan_error(recipe: Recipe, src: OpenSource, label: str,
-                e: pl.exceptions.PolarsError) -> SourceError:
+def _scan_error(
+    recipe: Recipe, src: OpenSource, label: str, e: pl.exceptions.PolarsError
+) -> SourceError:
     """Say whether the files cannot be read (and where) or the keys cannot be computed."""
     m = _PARSE_RE.search(str(e))
     if m:  # a value far down a CSV file that the inferred type cannot hold
@@ -514,46 +586,68 @@ def _scan_error(recipe: Recipe, src: OpenSource, label: str,
 
         at = locate_value(src, col, value)
         where, line = (shown_path(at[0]), f" at line {at[1]:,}") if at else (label, "")
-        return SourceError(f"{where}: column {col!r}{frm} holds {value!r}{line}, which cannot "
-                           f"be read as {dtype} like the rows before it; fix that value, list "
-                           "it in source.null_values, or convert the column")
+        return SourceError(
+            f"{where}: column {col!r}{frm} holds {value!r}{line}, which cannot "
+            f"be read as {dtype} like the rows before it; fix that value, list "
+            "it in source.null_values, or convert the column"
+        )
     try:  # on the error path only: read the needed columns without computing any key
         src.frame.select(pl.all().null_count()).collect(engine="streaming")
     except pl.exceptions.PolarsError as read_error:
         if (named := src.line_error()) is not None:  # an NDJSON line: say which
             return named
         files = "file is" if len(src.files) == 1 else "files are"
-        return SourceError(f"{label}: cannot read as {src.format} ({_first(read_error)}); "
-                           f"check that the {files} complete and of that format")
-    return SourceError(f"{label}: cannot compute the keys ({_first(e)}); check the column "
-                       "types named in the recipe")
+        return SourceError(
+            f"{label}: cannot read as {src.format} ({_first(read_error)}); "
+            f"check that the {files} complete and of that format"
+        )
+    return SourceError(
+        f"{label}: cannot compute the keys ({_first(e)}); check the column "
+        "types named in the recipe"
+    )
 
 
-def _accounting(recipe: Recipe, label: str, input_rows: int, kept: int,
-                by_reason: dict[str, int], *, check: bool = True) -> Accounting:
+def _accounting(
+    recipe: Recipe,
+    label: str,
+    input_rows: int,
+    kept: int,
+    by_reason: dict[str, int],
+    *,
+    check: bool = True,
+) -> Accounting:
     """Where the scanned rows went; refuses a scan that kept nothing usable (``check``)."""
     if check:
         _check_not_empty(recipe, label, input_rows, kept, by_reason)
-    return Accounting(input_rows=input_rows, filtered_rows=input_rows - kept,
-                      invalid_rows=sum(n for r, n in by_reason.items() if r != "unassigned"),
-                      invalid_by_reason=by_reason)
+    return Accounting(
+        input_rows=input_rows,
+        filtered_rows=input_rows - kept,
+        invalid_rows=sum(n for r, n in by_reason.items() if r != "unassigned"),
+        invalid_by_reason=by_reason,
+    )
 
 
-def _check_not_empty(recipe: Recipe, label: str, input_rows: int, kept: int,
-                     by_reason: dict[str, int]) -> None:
+def _check_not_empty(
+    recipe: Recipe, label: str, input_rows: int, kept: int, by_reason: dict[str, int]
+) -> None:
     """A payload with nothing in it is almost always a mistake upstream: say which."""
     if input_rows == 0:
-        raise SourceError(f"{label}: the source has no rows; check that the export that "
-                          "writes it succeeded")
+        raise SourceError(
+            f"{label}: the source has no rows; check that the export that writes it succeeded"
+        )
     if kept == 0:
-        raise SourceError(f"{label}: source.filter removes all {input_rows:,} rows; loosen "
-                          f"the filters in {recipe.file.name}")
+        raise SourceError(
+            f"{label}: source.filter removes all {input_rows:,} rows; loosen "
+            f"the filters in {recipe.file.name}"
+        )
     if kept == sum(by_reason.values()):
         why = ", ".join(f"{n:,} by {r}" for r, n in by_reason.items())
-        hint = {"coordinates": "check source.lat and source.lon (swapped? degrees?)",
-                "unassigned": "check that the boundaries cover the events",
-                "time": "check source.time and its format",
-                "key": "check the region and category columns for empty values"}
+        hint = {
+            "coordinates": "check source.lat and source.lon (swapped? degrees?)",
+            "unassigned": "check that the boundaries cover the events",
+            "time": "check source.time and its format",
+            "key": "check the region and category columns for empty values",
+        }
         main = max(by_reason, key=lambda r: by_reason[r])
         raise SourceError(f"{label}: every row is invalid ({why}); {hint[main]}")
 
@@ -569,8 +663,9 @@ def _label(src: OpenSource) -> str:
     return _files_label(src.files)
 
 
-def _regrouped(recipe: Recipe, p: Partial, mapped: pl.DataFrame,
-               keys: Sequence[str] | None = None) -> Partial:
+def _regrouped(
+    recipe: Recipe, p: Partial, mapped: pl.DataFrame, keys: Sequence[str] | None = None
+) -> Partial:
     """Merge the rows of ``mapped`` (``p.table`` with key columns rewritten, same row order)
     that share their keys; ``keys`` selects the key columns to keep (default: all)."""
     keep = _group_columns(p, keys)
@@ -579,26 +674,45 @@ def _regrouped(recipe: Recipe, p: Partial, mapped: pl.DataFrame,
     aggs = _merge_aggs(recipe.measures, present)
     if not p.pairs:
         # The streaming engine groups large tables faster and in less memory than eager.
-        table = (mapped.lazy().group_by(keep).agg(aggs).collect(engine="streaming")
-                 if keep else mapped.select(aggs))
-        return Partial(keys=visible, table=table, pairs={}, hex_res=p.hex_res,
-                       time_bin=p.time_bin, accounting=p.accounting)
+        table = (
+            mapped.lazy().group_by(keep).agg(aggs).collect(engine="streaming")
+            if keep
+            else mapped.select(aggs)
+        )
+        return Partial(
+            keys=visible,
+            table=table,
+            pairs={},
+            hex_res=p.hex_res,
+            time_bin=p.time_bin,
+            accounting=p.accounting,
+        )
     import numpy as np  # only for distinct measures: keeps start-up light
 
     # Keep the old row numbers of each new group, to carry the pairs over by integer ids.
-    grouped = (mapped.with_row_index(ROW).group_by(keep).agg([*aggs, pl.col(ROW)])
-               if keep else mapped.with_row_index(ROW).select([*aggs, pl.col(ROW).implode()]))
+    grouped = (
+        mapped.with_row_index(ROW).group_by(keep).agg([*aggs, pl.col(ROW)])
+        if keep
+        else mapped.with_row_index(ROW).select([*aggs, pl.col(ROW).implode()])
+    )
     remap = np.empty(mapped.height, dtype=np.uint32)
     rows = grouped.get_column(ROW)
-    new_ids = np.repeat(np.arange(grouped.height, dtype=np.uint32),
-                        rows.list.len().to_numpy())
+    new_ids = np.repeat(np.arange(grouped.height, dtype=np.uint32), rows.list.len().to_numpy())
     remap[rows.explode().to_numpy()] = new_ids
     lookup = pl.Series(GROUP, remap)
-    pairs = {name: _unique_pairs(lookup.gather(pt.get_column(GROUP)), pt.get_column(PAIR))
-             for name, pt in p.pairs.items()}
-    return Partial(keys=visible, table=grouped.drop(ROW), pairs=pairs, values=p.values,
-                   hex_res=p.hex_res,
-                   time_bin=p.time_bin, accounting=p.accounting)
+    pairs = {
+        name: _unique_pairs(lookup.gather(pt.get_column(GROUP)), pt.get_column(PAIR))
+        for name, pt in p.pairs.items()
+    }
+    return Partial(
+        keys=visible,
+        table=grouped.drop(ROW),
+        pairs=pairs,
+        values=p.values,
+        hex_res=p.hex_res,
+        time_bin=p.time_bin,
+        accounting=p.accounting,
+    )
 
 
 def _group_columns(p: Partial, keys: Sequence[str] | None) -> list[str]:
@@ -611,14 +725,20 @@ def _unique_pairs(groups: pl.Series, values: pl.Series) -> pl.DataFrame:
     import numpy as np  # only for distinct measures: keeps start-up light
 
     packed = (groups.to_numpy().astype(np.uint64) << np.uint64(32)) | values.to_numpy().astype(
-        np.uint64)
+        np.uint64
+    )
     u = pl.Series(packed).unique().to_numpy()
-    return pl.DataFrame({GROUP: (u >> np.uint64(32)).astype(np.uint32),
-                         PAIR: (u & np.uint64(0xFFFFFFFF)).astype(np.uint32)})
+    return pl.DataFrame(
+        {
+            GROUP: (u >> np.uint64(32)).astype(np.uint32),
+            PAIR: (u & np.uint64(0xFFFFFFFF)).astype(np.uint32),
+        }
+    )
 
 
-def regroup(recipe: Recipe, p: Partial, mapping: Sequence[pl.Expr],
-            keys: Sequence[str] | None = None) -> Partial:
+def regroup(
+    recipe: Recipe, p: Partial, mapping: Sequence[pl.Expr], keys: Sequence[str] | None = None
+) -> Partial:
     """Apply key mappings (e.g. coarser levels) and merge the groups that then coincide.
 
     ``keys`` selects the key columns to keep (default: all keys and hidden cells); dropping a
@@ -628,8 +748,13 @@ def regroup(recipe: Recipe, p: Partial, mapping: Sequence[pl.Expr],
         # Map and merge in one streaming query, without materialising the mapped table.
         keep = _group_columns(p, keys)
         present = [c for c in p.table.columns if c.startswith("__")]
-        table = (p.table.lazy().with_columns(mapping).group_by(keep)
-                 .agg(_merge_aggs(recipe.measures, present)).collect(engine="streaming"))
+        table = (
+            p.table.lazy()
+            .with_columns(mapping)
+            .group_by(keep)
+            .agg(_merge_aggs(recipe.measures, present))
+            .collect(engine="streaming")
+        )
         return replace(p, keys=tuple(k for k in keep if not is_hidden(k)), table=table)
     mapped = p.table.with_columns(mapping) if mapping else p.table
     return _regrouped(recipe, p, mapped, keys)
@@ -654,23 +779,28 @@ def take(p: Partial, keep: pl.Series) -> Partial:
     for name, pt in p.pairs.items():
         g = pt.get_column(GROUP)
         sel = pl.Series(mask).gather(g)
-        pairs[name] = pl.DataFrame({GROUP: lookup.gather(g.filter(sel)),
-                                    PAIR: pt.get_column(PAIR).filter(sel)})
+        pairs[name] = pl.DataFrame(
+            {GROUP: lookup.gather(g.filter(sel)), PAIR: pt.get_column(PAIR).filter(sel)}
+        )
     return replace(p, table=p.table.filter(keep), pairs=pairs)
 
 
-def rollup(recipe: Recipe, p: Partial, *, hex_res: int | None,
-           time_bin: TimeBin | None) -> Partial:
+def rollup(recipe: Recipe, p: Partial, *, hex_res: int | None, time_bin: TimeBin | None) -> Partial:
     """The partial at a coarser hex resolution and/or time bin, from a finer partial."""
-    mapping = coarsen(recipe, hex_res=hex_res, time_bin=time_bin, from_hex=p.hex_res,
-                      from_time=p.time_bin)
+    mapping = coarsen(
+        recipe, hex_res=hex_res, time_bin=time_bin, from_hex=p.hex_res, from_time=p.time_bin
+    )
     if not mapping:
         return p
-    kept = [c for c in hidden_below(recipe, hex_res if hex_res is not None else p.hex_res)
-            if c in p.table.columns]
+    kept = [
+        c
+        for c in hidden_below(recipe, hex_res if hex_res is not None else p.hex_res)
+        if c in p.table.columns
+    ]
     out = regroup(recipe, p, mapping, [*p.keys, *kept])
-    return replace(out, hex_res=hex_res if recipe.hex else None,
-                   time_bin=time_bin if recipe.time else None)
+    return replace(
+        out, hex_res=hex_res if recipe.hex else None, time_bin=time_bin if recipe.time else None
+    )
 
 
 def visible(recipe: Recipe, p: Partial) -> Partial:
@@ -696,30 +826,50 @@ def merge(recipe: Recipe, a: Partial, b: Partial) -> Partial:
         ra = union.search_sorted(va).cast(pl.UInt32)
         rb = union.search_sorted(vb).cast(pl.UInt32)
         pa, pb = a.pairs[k], b.pairs[k]
-        pairs[k] = pl.DataFrame({
-            GROUP: pl.concat([pa.get_column(GROUP).cast(pl.UInt32),
-                              (pb.get_column(GROUP).cast(pl.UInt32) + offset)]),
-            PAIR: pl.concat([ra.gather(pa.get_column(PAIR)), rb.gather(pb.get_column(PAIR))])})
+        pairs[k] = pl.DataFrame(
+            {
+                GROUP: pl.concat(
+                    [
+                        pa.get_column(GROUP).cast(pl.UInt32),
+                        (pb.get_column(GROUP).cast(pl.UInt32) + offset),
+                    ]
+                ),
+                PAIR: pl.concat([ra.gather(pa.get_column(PAIR)), rb.gather(pb.get_column(PAIR))]),
+            }
+        )
         values[k] = union
     acc = Accounting(
         a.accounting.input_rows + b.accounting.input_rows,
         a.accounting.filtered_rows + b.accounting.filtered_rows,
         a.accounting.invalid_rows + b.accounting.invalid_rows,  # unassigned stays apart
-        {k: a.accounting.invalid_by_reason.get(k, 0) + b.accounting.invalid_by_reason.get(k, 0)
-         for k in sorted({*a.accounting.invalid_by_reason, *b.accounting.invalid_by_reason})})
-    both = Partial(keys=a.keys, table=pl.concat([a.table, b.table], how="vertical_relaxed"),
-                   pairs=pairs, values=values, hex_res=a.hex_res, time_bin=a.time_bin,
-                   accounting=acc)
+        {
+            k: a.accounting.invalid_by_reason.get(k, 0) + b.accounting.invalid_by_reason.get(k, 0)
+            for k in sorted({*a.accounting.invalid_by_reason, *b.accounting.invalid_by_reason})
+        },
+    )
+    both = Partial(
+        keys=a.keys,
+        table=pl.concat([a.table, b.table], how="vertical_relaxed"),
+        pairs=pairs,
+        values=values,
+        hex_res=a.hex_res,
+        time_bin=a.time_bin,
+        accounting=acc,
+    )
     return regroup(recipe, both, [])
 
 
 def add_accounting(a: Accounting, b: Accounting) -> Accounting:
     """Where the rows of two sources went, together."""
     return Accounting(
-        a.input_rows + b.input_rows, a.filtered_rows + b.filtered_rows,
+        a.input_rows + b.input_rows,
+        a.filtered_rows + b.filtered_rows,
         a.invalid_rows + b.invalid_rows,  # unassigned stays apart
-        {k: a.invalid_by_reason.get(k, 0) + b.invalid_by_reason.get(k, 0)
-         for k in sorted({*a.invalid_by_reason, *b.invalid_by_reason})})
+        {
+            k: a.invalid_by_reason.get(k, 0) + b.invalid_by_reason.get(k, 0)
+            for k in sorted({*a.invalid_by_reason, *b.invalid_by_reason})
+        },
+    )
 
 
 def merge_all(recipe: Recipe, partials: Sequence[Partial]) -> Partial:
@@ -746,8 +896,9 @@ def merge_all(recipe: Recipe, partials: Sequence[Partial]) -> Partial:
         offsets.append(n)
         n += p.table.height
     for k in a.pairs:
-        dtype = next((p.values[k].dtype for p in partials if p.values[k].dtype != pl.Null),
-                     a.values[k].dtype)
+        dtype = next(
+            (p.values[k].dtype for p in partials if p.values[k].dtype != pl.Null), a.values[k].dtype
+        )
         vals = [p.values[k].cast(dtype) for p in partials]
         union = pl.concat(vals).unique().sort()
         groups, ids = [], []
@@ -755,14 +906,21 @@ def merge_all(recipe: Recipe, partials: Sequence[Partial]) -> Partial:
             pt = p.pairs[k]
             groups.append(pt.get_column(GROUP).cast(pl.UInt32) + off)
             ids.append(union.search_sorted(v).cast(pl.UInt32).gather(pt.get_column(PAIR)))
-        pairs[k] = pl.DataFrame({GROUP: pl.concat(groups).cast(pl.UInt32),
-                                 PAIR: pl.concat(ids).cast(pl.UInt32)})
+        pairs[k] = pl.DataFrame(
+            {GROUP: pl.concat(groups).cast(pl.UInt32), PAIR: pl.concat(ids).cast(pl.UInt32)}
+        )
         values[k] = union
     columns = a.table.columns
     tables = [p.table.select(columns) for p in partials]
-    both = Partial(keys=a.keys, table=pl.concat(tables, how="vertical_relaxed"),
-                   pairs=pairs, values=values, hex_res=a.hex_res, time_bin=a.time_bin,
-                   accounting=acc)
+    both = Partial(
+        keys=a.keys,
+        table=pl.concat(tables, how="vertical_relaxed"),
+        pairs=pairs,
+        values=values,
+        hex_res=a.hex_res,
+        time_bin=a.time_bin,
+        accounting=acc,
+    )
     return regroup(recipe, both, [])
 
 
@@ -788,12 +946,16 @@ def merge_spilled(parts: Sequence[Spilled]) -> Spilled:
             acc = add_accounting(acc, s.accounting)
         for f in s.files:
             m = _PART_RE.search(str(f))
-            by_part.setdefault(int(m.group(1)) if m else 0, []).append(
-                str(f.relative_to(root)))
-    merged = Spilled(keys=first.keys, root=root,
-                     parts=tuple(tuple(by_part[k]) for k in sorted(by_part)),
-                     rows=sum(s.rows for s in parts), hex_res=first.hex_res,
-                     time_bin=first.time_bin, accounting=acc)
+            by_part.setdefault(int(m.group(1)) if m else 0, []).append(str(f.relative_to(root)))
+    merged = Spilled(
+        keys=first.keys,
+        root=root,
+        parts=tuple(tuple(by_part[k]) for k in sorted(by_part)),
+        rows=sum(s.rows for s in parts),
+        hex_res=first.hex_res,
+        time_bin=first.time_bin,
+        accounting=acc,
+    )
     weakref.finalize(merged, len, tuple(parts))  # holds the originals while merged lives
     return merged
 
@@ -801,12 +963,12 @@ def merge_spilled(parts: Sequence[Spilled]) -> Spilled:
 def check_merged(recipe: Recipe, label: str, acc: Accounting) -> None:
     """The whole-source checks of a scan (no rows; every row filtered or invalid) over
     the accounting of files scanned one by one and merged."""
-    _check_not_empty(recipe, label, acc.input_rows, acc.input_rows - acc.filtered_rows,
-                     acc.invalid_by_reason)
+    _check_not_empty(
+        recipe, label, acc.input_rows, acc.input_rows - acc.filtered_rows, acc.invalid_by_reason
+    )
 
 
-def finalize(recipe: Recipe, p: Partial, *, only: Sequence[str] | None = None
-             ) -> pl.DataFrame:
+def finalize(recipe: Recipe, p: Partial, *, only: Sequence[str] | None = None) -> pl.DataFrame:
     """Key columns, ``__n`` and one column per measure (recipe order), row for row with
     ``visible(recipe, p).table`` (``p.table`` itself when it has no hidden cells); ``only``
     limits the measures computed (e.g. the one top-k ranks by)."""
@@ -822,8 +984,11 @@ def finalize(recipe: Recipe, p: Partial, *, only: Sequence[str] | None = None
         elif m.kind == "count":
             cols.append(pl.col(N).alias(m.name))
         elif m.kind in ("sum", "mean"):
-            total = (pl.col(_fsum(m)).cast(pl.Float64) / FIXED_SCALE
-                     if _fsum(m) in p.table.columns else pl.col(_sum(m)))
+            total = (
+                pl.col(_fsum(m)).cast(pl.Float64) / FIXED_SCALE
+                if _fsum(m) in p.table.columns
+                else pl.col(_sum(m))
+            )
             if m.kind == "mean":
                 total = total.cast(pl.Float64) / pl.col(_cnt(m))
             cols.append(pl.when(pl.col(_cnt(m)) > 0).then(total).alias(m.name))
@@ -842,5 +1007,18 @@ def finalize(recipe: Recipe, p: Partial, *, only: Sequence[str] | None = None
     return out.with_columns(list(distinct.values())) if distinct else out
 
 
-__all__ = ["HEX", "TIME", "N", "Accounting", "Partial", "Spilled", "finalize", "merge",
-           "regroup", "rollup", "rollup_spilled", "scan_partial", "visible"]
+__all__ = [
+    "HEX",
+    "TIME",
+    "N",
+    "Accounting",
+    "Partial",
+    "Spilled",
+    "finalize",
+    "merge",
+    "regroup",
+    "rollup",
+    "rollup_spilled",
+    "scan_partial",
+    "visible",
+]

@@ -22,15 +22,24 @@ from typing import Any
 
 from reduce.errors import ReduceError
 
-INSTALL_HINT = ("install it with: apt-get install -y chromium chromium-driver (as root), "
-                "and pip install selenium")
+INSTALL_HINT = (
+    "install it with: apt-get install -y chromium chromium-driver (as root), "
+    "and pip install selenium"
+)
 # Flags for a headless run as root in a container, with nothing fetched from the network.
 CHROMIUM_FLAGS = (
-    "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
-    "--disable-background-networking", "--disable-component-update", "--disable-sync",
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-quic",
+    "--no-first-run",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
     "--disable-dev-shm-usage",
     # WebGL without a GPU: the software rasterizer (SwiftShader) behind ANGLE.
-    "--use-angle=swiftshader", "--enable-unsafe-swiftshader",
+    "--use-angle=swiftshader",
+    "--enable-unsafe-swiftshader",
 )
 LOADS = 3
 PAGE_TIMEOUT_S = 60
@@ -80,8 +89,9 @@ def browser(*, window: tuple[int, int] = (1000, 760)) -> Iterator[Any]:
             drv = webdriver.Chrome(service=Service(executable_path=str(driver)), options=opts)
         except WebDriverException as e:
             first = (str(e.msg or e).strip().splitlines() or [""])[0]
-            raise BrowserMissing(f"{chromium}: the browser did not start ({first}); "
-                                 f"{INSTALL_HINT}") from None
+            raise BrowserMissing(
+                f"{chromium}: the browser did not start ({first}); {INSTALL_HINT}"
+            ) from None
         drv.set_page_load_timeout(PAGE_TIMEOUT_S)
         yield drv
     finally:
@@ -108,18 +118,26 @@ def load_page(drv: Any, page: Path) -> PageLoad:
 
     drv.get(page.resolve().as_uri())
     try:
-        WebDriverWait(drv, PAGE_TIMEOUT_S).until(lambda d: d.execute_script(
-            "return document.body && (document.body.dataset.drawn !== undefined "
-            "|| document.body.dataset.error !== undefined)"))
+        WebDriverWait(drv, PAGE_TIMEOUT_S).until(
+            lambda d: d.execute_script(
+                "return document.body && (document.body.dataset.drawn !== undefined "
+                "|| document.body.dataset.error !== undefined)"
+            )
+        )
     except TimeoutException:
-        raise PageError(f"{page}: the page did not finish drawing in {PAGE_TIMEOUT_S} s") \
-            from None
+        raise PageError(f"{page}: the page did not finish drawing in {PAGE_TIMEOUT_S} s") from None
     d = drv.execute_script("return Object.assign({}, document.body.dataset)")
     logs = [f"{e.get('level')}: {e.get('message')}" for e in drv.get_log("browser")]
     if "error" in d:
         raise PageError(f"{page}: the page failed to draw ({d['error']})")
-    return PageLoad(d["surface"], int(d["drawn"]), int(d.get("shapes", 0)),
-                    float(d["parseMs"]), float(d["drawMs"]), logs)
+    return PageLoad(
+        d["surface"],
+        int(d["drawn"]),
+        int(d.get("shapes", 0)),
+        float(d["parseMs"]),
+        float(d["drawMs"]),
+        logs,
+    )
 
 
 def measure_pages(pages: Sequence[Path], *, loads: int = LOADS) -> list[dict[str, Any]]:
@@ -131,12 +149,17 @@ def measure_pages(pages: Sequence[Path], *, loads: int = LOADS) -> list[dict[str
             errors = [m for r in runs for m in r.console if m.startswith("SEVERE")]
             if errors:
                 raise PageError(f"{page}: the page logged an error: {errors[0]}")
-            out.append({
-                "page": str(page), "surface": runs[0].surface, "drawn": runs[0].drawn,
-                "shapes": runs[0].shapes, "loads": loads,
-                "parse_ms": round(statistics.median(r.parse_ms for r in runs), 3),
-                "draw_ms": round(statistics.median(r.draw_ms for r in runs), 3),
-            })
+            out.append(
+                {
+                    "page": str(page),
+                    "surface": runs[0].surface,
+                    "drawn": runs[0].drawn,
+                    "shapes": runs[0].shapes,
+                    "loads": loads,
+                    "parse_ms": round(statistics.median(r.parse_ms for r in runs), 3),
+                    "draw_ms": round(statistics.median(r.draw_ms for r in runs), 3),
+                }
+            )
     return out
 
 
@@ -154,5 +177,4 @@ def measure_payloads(paths: Sequence[Path]) -> dict[Path, dict[str, Any]]:
             except PreviewError:
                 continue
         results = measure_pages(list(pages.values())) if pages else []
-        return {p: {k: v for k, v in m.items() if k != "page"}
-                for p, m in zip(pages, results)}
+        return {p: {k: v for k, v in m.items() if k != "page"} for p, m in zip(pages, results)}

@@ -68,8 +68,9 @@ def level_key(level: Mapping[str, Any]) -> tuple[tuple[str, Any], ...]:
     return tuple(sorted(level.items()))
 
 
-def search(ladder: Mapping[str, Sequence[Any]], order: Sequence[str],
-           fits: Callable[[Level], bool]) -> SearchResult:
+def search(
+    ladder: Mapping[str, Sequence[Any]], order: Sequence[str], fits: Callable[[Level], bool]
+) -> SearchResult:
     """Find the lexicographically finest level that fits (see the module docstring).
 
     ``fits`` is called at most once per distinct level.
@@ -134,10 +135,15 @@ def frontier_frame(cands: Sequence[Candidate], axes: Sequence[str]) -> pl.DataFr
         data[m] = [c.size(m) for c in cands]
     data["fits"] = [c.fits for c in cands]
     data["chosen"] = [c.chosen for c in cands]
-    schema = {a: pl.String for a in axes} | {"rows": pl.Int64, "elements": pl.Int64,
-                                              "raw": pl.Int64, "gzip": pl.Int64,
-                                              "brotli": pl.Int64, "fits": pl.Boolean,
-                                              "chosen": pl.Boolean}
+    schema = {a: pl.String for a in axes} | {
+        "rows": pl.Int64,
+        "elements": pl.Int64,
+        "raw": pl.Int64,
+        "gzip": pl.Int64,
+        "brotli": pl.Int64,
+        "fits": pl.Boolean,
+        "chosen": pl.Boolean,
+    }
     return pl.DataFrame(data, schema=schema)
 
 
@@ -145,8 +151,9 @@ def describe_level(level: Mapping[str, Any]) -> str:
     return ", ".join(f"{a}={v}" for a, v in level.items())
 
 
-def nothing_fits_message(recipe_label: str, limit: int, on: str, smallest: Candidate,
-                         axes: Sequence[str]) -> str:
+def nothing_fits_message(
+    recipe_label: str, limit: int, on: str, smallest: Candidate, axes: Sequence[str]
+) -> str:
     size = smallest.size(on)
     hints = ["raise budget.max (or --budget)"]
     if "hex" in axes:
@@ -155,6 +162,8 @@ def nothing_fits_message(recipe_label: str, limit: int, on: str, smallest: Candi
         hints.append("add a wider time bin")
     if "top" in axes:
         hints.append("lower prune.top.k")
-    return (f"{recipe_label}: no level fits the budget of {format_size(limit)} {on}: the "
-            f"smallest payload is {format_size(size or 0)} ({size} bytes {on}) at "
-            f"{describe_level(smallest.level)}; {', '.join(hints)}")
+    return (
+        f"{recipe_label}: no level fits the budget of {format_size(limit)} {on}: the "
+        f"smallest payload is {format_size(size or 0)} ({size} bytes {on}) at "
+        f"{describe_level(smallest.level)}; {', '.join(hints)}"
+    )

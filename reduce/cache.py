@@ -90,11 +90,18 @@ def cache_key(recipe: Recipe, fingerprint: str) -> str:
     """An entry's key: the software, the recipe's scan-relevant content, the source's
     fingerprint and the boundaries files regions are assigned from (a changed polygon file
     changes every region key)."""
-    shapes = [b for b in (recipe.region.boundaries if recipe.region else None,
-                          recipe.flow.boundaries if recipe.flow else None) if b is not None]
+    shapes = [
+        b
+        for b in (
+            recipe.region.boundaries if recipe.region else None,
+            recipe.flow.boundaries if recipe.flow else None,
+        )
+        if b is not None
+    ]
     stamps = "\0".join(file_stamp(b) for b in shapes)
-    h = hashlib.sha256(f"{__version__}\0{ENTRY_FORMAT}\0{recipe.scan_hash}\0{fingerprint}"
-                       f"\0{stamps}".encode())
+    h = hashlib.sha256(
+        f"{__version__}\0{ENTRY_FORMAT}\0{recipe.scan_hash}\0{fingerprint}\0{stamps}".encode()
+    )
     return h.hexdigest()[:40]
 
 
@@ -103,8 +110,10 @@ def file_key(recipe: Recipe, state: FileState, frame_schema: str) -> str:
     modification time and content hash (``source.FileState``: the parquet footer, or the
     text's last bytes) and the column types the whole source reads it with (``frame_schema``:
     a text file's types, or hive columns, depend on the other files)."""
-    stamp = (f"file\0{state.path.resolve()}\0{state.size}\0{state.mtime_ns}\0{state.digest}"
-             f"\0{frame_schema}")
+    stamp = (
+        f"file\0{state.path.resolve()}\0{state.size}\0{state.mtime_ns}\0{state.digest}"
+        f"\0{frame_schema}"
+    )
     return cache_key(recipe, hashlib.sha256(stamp.encode()).hexdigest()[:32])
 
 
@@ -129,8 +138,7 @@ def spill_dir(key: str) -> Path | None:
         _sweep(root)
         import tempfile
 
-        return Path(tempfile.mkdtemp(prefix=f".{key}.{os.getpid()}.", suffix=".spill",
-                                     dir=root))
+        return Path(tempfile.mkdtemp(prefix=f".{key}.{os.getpid()}.", suffix=".spill", dir=root))
     except OSError:
         return None
 
@@ -141,8 +149,13 @@ def _sweep(root: Path) -> None:
     for pattern in (".*.tmp", ".*.gone"):
         for old in root.glob(pattern):
             parts = old.name.split(".")  # "", key, pid, "tmp" or "gone"
-            if len(parts) == 4 and parts[2].isdigit() and old.is_dir() \
-                    and not old.is_symlink() and not process_alive(int(parts[2])):
+            if (
+                len(parts) == 4
+                and parts[2].isdigit()
+                and old.is_dir()
+                and not old.is_symlink()
+                and not process_alive(int(parts[2]))
+            ):
                 shutil.rmtree(old, ignore_errors=True)
 
 
@@ -166,8 +179,13 @@ def temp_spill_dir() -> Path:
 
 def _plain_name(name: str) -> bool:
     parts = name.split("/")
-    return bool(name) and not name.startswith("/") and "\\" not in name and "\0" not in name \
+    return (
+        bool(name)
+        and not name.startswith("/")
+        and "\\" not in name
+        and "\0" not in name
         and all(p not in ("", ".", "..") for p in parts)
+    )
 
 
 def _sums(entry: Path) -> dict[str, str]:
@@ -177,15 +195,20 @@ def _sums(entry: Path) -> dict[str, str]:
             raise DamagedEntry(f"{SUMS} is not a regular file of a plausible size")
         doc = orjson.loads((entry / SUMS).read_bytes())
     except FileNotFoundError:
-        raise DamagedEntry(f"no {SUMS} (an entry written before checksums, or unfinished)") \
-            from None
+        raise DamagedEntry(
+            f"no {SUMS} (an entry written before checksums, or unfinished)"
+        ) from None
     except (OSError, orjson.JSONDecodeError) as e:
         raise DamagedEntry(f"{SUMS} unreadable ({e})") from None
     sums = doc.get("sha256") if isinstance(doc, dict) else None
-    if not isinstance(doc, dict) or doc.get("format") != SUMS_FORMAT \
-            or not isinstance(sums, dict) \
-            or not all(isinstance(k, str) and _plain_name(k) and isinstance(v, str)
-                       for k, v in sums.items()):
+    if (
+        not isinstance(doc, dict)
+        or doc.get("format") != SUMS_FORMAT
+        or not isinstance(sums, dict)
+        or not all(
+            isinstance(k, str) and _plain_name(k) and isinstance(v, str) for k, v in sums.items()
+        )
+    ):
         raise DamagedEntry(f"{SUMS} is not a checksum list")
     return sums
 
@@ -241,8 +264,9 @@ def write_file(entry_dir: Path, name: str, data: bytes) -> None:
 @contextlib.contextmanager
 def _sums_lock(entry_dir: Path) -> Iterator[None]:
     """Two runs adding files to one entry update ``sums.json`` one after the other."""
-    fd = os.open(entry_dir / ".sums-lock", os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW
-                 | os.O_CLOEXEC, 0o644)
+    fd = os.open(
+        entry_dir / ".sums-lock", os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW | os.O_CLOEXEC, 0o644
+    )
     try:
         fcntl.flock(fd, fcntl.LOCK_EX)
         yield
@@ -260,8 +284,9 @@ def seal(entry_dir: Path, names: list[str] | tuple[str, ...]) -> None:
             sums = {}
         for name in names:
             if not _plain_name(name) or name == SUMS:
-                raise ValueError(f"cache file name {name!r} must be a relative path inside "
-                                 "the entry")
+                raise ValueError(
+                    f"cache file name {name!r} must be a relative path inside the entry"
+                )
             sums[name] = _digest_file(entry_dir / name)
         _write_sums(entry_dir, sums)
 
@@ -320,6 +345,7 @@ def _parquet(entry: Path, name: str) -> pl.DataFrame:
 # Readers' locks
 # --------------------------------------------------------------------------------------------
 
+
 def _lock_shared(entry: Path) -> int | None:
     """A shared lock on an entry (None if it has none or vanished meanwhile)."""
     try:
@@ -369,10 +395,14 @@ def _remove(entry: Path) -> bool:
 
 def _set_aside(entry: Path, why: str) -> None:
     removed = _remove(entry)
-    warnings.warn(CacheWarning(
-        f"cache entry {entry} is damaged ({why}); "
-        f"{'removed' if removed else 'not used (another run is reading it)'}, scanning the "
-        "source again"), stacklevel=3)
+    warnings.warn(
+        CacheWarning(
+            f"cache entry {entry} is damaged ({why}); "
+            f"{'removed' if removed else 'not used (another run is reading it)'}, scanning the "
+            "source again"
+        ),
+        stacklevel=3,
+    )
 
 
 # --------------------------------------------------------------------------------------------
@@ -404,19 +434,34 @@ def load(key: str) -> Partial | Spilled | None:
             for part in parts:
                 for f in part:
                     verified_path(d, f)
-            spilled = Spilled(keys=tuple(meta["keys"]), root=d, parts=parts,
-                              rows=int(meta["rows"]), hex_res=meta["hex_res"], time_bin=tb,
-                              accounting=acc)
+            spilled = Spilled(
+                keys=tuple(meta["keys"]),
+                root=d,
+                parts=parts,
+                rows=int(meta["rows"]),
+                hex_res=meta["hex_res"],
+                time_bin=tb,
+                accounting=acc,
+            )
             if fd is not None:
                 keep = True
                 return _hold(spilled, fd)
             return spilled
         table = _parquet(d, "table.parquet")
         pairs = {name: _parquet(d, f"pairs-{i}.parquet") for i, name in enumerate(meta["pairs"])}
-        values = {name: _parquet(d, f"values-{i}.parquet").to_series()
-                  for i, name in enumerate(meta["pairs"])}
-        return Partial(keys=tuple(meta["keys"]), table=table, pairs=pairs, values=values,
-                       hex_res=meta["hex_res"], time_bin=tb, accounting=acc)
+        values = {
+            name: _parquet(d, f"values-{i}.parquet").to_series()
+            for i, name in enumerate(meta["pairs"])
+        }
+        return Partial(
+            keys=tuple(meta["keys"]),
+            table=table,
+            pairs=pairs,
+            values=values,
+            hex_res=meta["hex_res"],
+            time_bin=tb,
+            accounting=acc,
+        )
     except DamagedEntry as e:
         why = str(e)
     except FileNotFoundError as e:  # a file the entry needs was never stored
@@ -431,12 +476,17 @@ def load(key: str) -> Partial | Spilled | None:
 
 
 def _meta(p: Partial | Spilled) -> dict[str, object]:
-    return {"keys": list(p.keys), "hex_res": p.hex_res,
-            "time_bin": p.time_bin.text if p.time_bin else None,
-            "accounting": {"input_rows": p.accounting.input_rows,
-                           "filtered_rows": p.accounting.filtered_rows,
-                           "invalid_rows": p.accounting.invalid_rows,
-                           "invalid_by_reason": p.accounting.invalid_by_reason}}
+    return {
+        "keys": list(p.keys),
+        "hex_res": p.hex_res,
+        "time_bin": p.time_bin.text if p.time_bin else None,
+        "accounting": {
+            "input_rows": p.accounting.input_rows,
+            "filtered_rows": p.accounting.filtered_rows,
+            "invalid_rows": p.accounting.invalid_rows,
+            "invalid_by_reason": p.accounting.invalid_by_reason,
+        },
+    }
 
 
 def _parquet_bytes(df: pl.DataFrame) -> bytes:
@@ -445,8 +495,9 @@ def _parquet_bytes(df: pl.DataFrame) -> bytes:
     return buf.getvalue()
 
 
-def store(key: str, p: Partial | Spilled, *, recipe: str = "",
-          drop_others: bool = True) -> Partial | Spilled | None:
+def store(
+    key: str, p: Partial | Spilled, *, recipe: str = "", drop_others: bool = True
+) -> Partial | Spilled | None:
     """Store a partial; returns it as stored (a spilled partial's files move into the
     entry, locked for reading while the returned object lives) or None on failure, which is
     otherwise ignored (the cache is an optimisation).
@@ -468,10 +519,15 @@ def store(key: str, p: Partial | Spilled, *, recipe: str = "",
         try:
             if folder.parent.resolve() != root.resolve():
                 return None
-            meta = {**_meta(p), "recipe": recipe, "parts": [list(part) for part in p.parts],
-                    "rows": p.rows}
-            fd = os.open(folder / _LOCK, os.O_RDONLY | os.O_CREAT | os.O_NOFOLLOW
-                         | os.O_CLOEXEC, 0o644)
+            meta = {
+                **_meta(p),
+                "recipe": recipe,
+                "parts": [list(part) for part in p.parts],
+                "rows": p.rows,
+            }
+            fd = os.open(
+                folder / _LOCK, os.O_RDONLY | os.O_CREAT | os.O_NOFOLLOW | os.O_CLOEXEC, 0o644
+            )
             fcntl.flock(fd, fcntl.LOCK_SH)  # this run reads the parts after storing them
             seal(folder, [f for part in p.parts for f in part])
             write_file(folder, "meta.json", orjson.dumps(meta))
@@ -494,8 +550,7 @@ def store(key: str, p: Partial | Spilled, *, recipe: str = "",
         for i, name in enumerate(names):
             write_file(tmp, f"pairs-{i}.parquet", _parquet_bytes(p.pairs[name]))
             write_file(tmp, f"values-{i}.parquet", _parquet_bytes(p.values[name].to_frame("v")))
-        write_file(tmp, "meta.json", orjson.dumps({**_meta(p), "recipe": recipe,
-                                                   "pairs": names}))
+        write_file(tmp, "meta.json", orjson.dumps({**_meta(p), "recipe": recipe, "pairs": names}))
         os.replace(tmp, final)
         if drop_others:
             _drop_others(root, key, recipe)

@@ -29,8 +29,7 @@ class _SizeType(click.ParamType):  # type: ignore[type-arg]
 
     name = "size"
 
-    def convert(self, value: Any, param: click.Parameter | None,
-                ctx: click.Context | None) -> int:
+    def convert(self, value: Any, param: click.Parameter | None, ctx: click.Context | None) -> int:
         if isinstance(value, int):
             return value
         try:
@@ -76,8 +75,9 @@ def _cache_warnings_as_lines() -> Iterator[None]:
     with warnings.catch_warnings():
         default = warnings.showwarning
 
-        def show(message: Warning | str, category: type[Warning], *args: Any,
-                 **kwargs: Any) -> None:
+        def show(
+            message: Warning | str, category: type[Warning], *args: Any, **kwargs: Any
+        ) -> None:
             if category.__name__ == "CacheWarning":
                 click.echo(f"warning: {message}", err=True)
             else:
@@ -111,8 +111,10 @@ class _Group(click.Group):
         try:
             return super().invoke(ctx)
         except Terminated:
-            click.echo("error: terminated (SIGTERM); nothing was published by the unfinished "
-                       "step", err=True)
+            click.echo(
+                "error: terminated (SIGTERM); nothing was published by the unfinished step",
+                err=True,
+            )
             ctx.exit(143)  # 128 + SIGTERM, the shell's convention
         except ReduceError as e:
             if ctx.obj and ctx.obj.get("debug"):
@@ -120,8 +122,7 @@ class _Group(click.Group):
             click.echo(error_line(e), err=True)
             ctx.exit(e.exit_code)
         except KeyboardInterrupt:
-            click.echo("error: interrupted; nothing was published by the unfinished step",
-                       err=True)
+            click.echo("error: interrupted; nothing was published by the unfinished step", err=True)
             ctx.exit(130)
         except (click.exceptions.Exit, click.ClickException, click.Abort):
             raise
@@ -129,8 +130,11 @@ class _Group(click.Group):
             if ctx.obj and ctx.obj.get("debug"):
                 raise
             first = (str(e).strip().splitlines() or [""])[0]
-            click.echo(f"error: internal error ({type(e).__name__}: {first}); rerun with "
-                       "--debug and report it", err=True)
+            click.echo(
+                f"error: internal error ({type(e).__name__}: {first}); rerun with "
+                "--debug and report it",
+                err=True,
+            )
             ctx.exit(3)
 
 
@@ -179,14 +183,29 @@ def _overrides(sets: tuple[str, ...]) -> dict[str, str]:
 
 
 _BUDGET_OPTS = [
-    click.option("--budget", "budget_max", type=SIZE, default=None,
-                 help="Byte budget, e.g. 300KB, 1.5MB, 200KiB (overrides budget.max)."),
-    click.option("--on", type=click.Choice(MEASURES), default=None,
-                 help="Measure the budget applies to (overrides budget.on)."),
-    click.option("--set", "sets", multiple=True, metavar="KEY=VALUE",
-                 help="Override any recipe key, e.g. --set prune.top.k=[10,5]. Repeatable."),
-    click.option("--no-cache", is_flag=True,
-                 help="Neither read nor write the cached finest partial."),
+    click.option(
+        "--budget",
+        "budget_max",
+        type=SIZE,
+        default=None,
+        help="Byte budget, e.g. 300KB, 1.5MB, 200KiB (overrides budget.max).",
+    ),
+    click.option(
+        "--on",
+        type=click.Choice(MEASURES),
+        default=None,
+        help="Measure the budget applies to (overrides budget.on).",
+    ),
+    click.option(
+        "--set",
+        "sets",
+        multiple=True,
+        metavar="KEY=VALUE",
+        help="Override any recipe key, e.g. --set prune.top.k=[10,5]. Repeatable.",
+    ),
+    click.option(
+        "--no-cache", is_flag=True, help="Neither read nor write the cached finest partial."
+    ),
     click.option("--quiet", "-q", is_flag=True, help="No progress output."),
 ]
 
@@ -199,21 +218,43 @@ def _budget_opts(f: Callable[..., Any]) -> Callable[..., Any]:
 
 @main.command("run")
 @click.argument("recipes", nargs=-1, required=True, type=click.Path(path_type=Path))
-@click.option("--out", "out_dir", type=click.Path(path_type=Path),
-              default=None, help="Write payloads into this folder (default: output.path).")
-@click.option("--write-anyway", is_flag=True,
-              help="When nothing fits, write the smallest payload anyway (still exit 1).")
+@click.option(
+    "--out",
+    "out_dir",
+    type=click.Path(path_type=Path),
+    default=None,
+    help="Write payloads into this folder (default: output.path).",
+)
+@click.option(
+    "--write-anyway",
+    is_flag=True,
+    help="When nothing fits, write the smallest payload anyway (still exit 1).",
+)
 @click.option("--json", "as_json", is_flag=True, help="Print a JSON summary.")
-@click.option("--cluster", "cluster_address", envvar="REDUCE_CLUSTER", default=None,
-              metavar="ADDRESS",
-              help="Scan the source files on a Dask cluster: a scheduler address "
-                   "(tcp://host:8786) or local:N (N local workers for this run); needs "
-                   "pip install 'reduce[cluster]' and the files at the same paths on every "
-                   "worker. Default: $REDUCE_CLUSTER.")
+@click.option(
+    "--cluster",
+    "cluster_address",
+    envvar="REDUCE_CLUSTER",
+    default=None,
+    metavar="ADDRESS",
+    help="Scan the source files on a Dask cluster: a scheduler address "
+    "(tcp://host:8786) or local:N (N local workers for this run); needs "
+    "pip install 'reduce[cluster]' and the files at the same paths on every "
+    "worker. Default: $REDUCE_CLUSTER.",
+)
 @_budget_opts
-def run_cmd(recipes: tuple[Path, ...], out_dir: Path | None, write_anyway: bool,
-            as_json: bool, cluster_address: str | None, budget_max: int | None,
-            on: str | None, sets: tuple[str, ...], no_cache: bool, quiet: bool) -> None:
+def run_cmd(
+    recipes: tuple[Path, ...],
+    out_dir: Path | None,
+    write_anyway: bool,
+    as_json: bool,
+    cluster_address: str | None,
+    budget_max: int | None,
+    on: str | None,
+    sets: tuple[str, ...],
+    no_cache: bool,
+    quiet: bool,
+) -> None:
     """Run recipes: fit each to its budget and write payload and manifest."""
     from reduce import cluster, report
     from reduce.pipeline import run
@@ -227,8 +268,15 @@ def run_cmd(recipes: tuple[Path, ...], out_dir: Path | None, write_anyway: bool,
     over_budget = False
     with _progress(quiet or as_json) as progress, cluster.using(cluster_address):
         for rec in loaded:
-            res = run(rec, out_dir=out_dir, budget=budget_max, on=on,
-                      write_anyway=write_anyway, use_cache=not no_cache, progress=progress)
+            res = run(
+                rec,
+                out_dir=out_dir,
+                budget=budget_max,
+                on=on,
+                write_anyway=write_anyway,
+                use_cache=not no_cache,
+                progress=progress,
+            )
             if as_json:
                 summaries.append(report.run_json(res))
             elif not quiet:
@@ -249,17 +297,34 @@ def run_cmd(recipes: tuple[Path, ...], out_dir: Path | None, write_anyway: bool,
 
 @main.command("ladder")
 @click.argument("recipe", type=click.Path(path_type=Path))
-@click.option("--order", default=None, metavar="AXES",
-              help="Comma-separated axes, first gives up detail first (overrides "
-                   "budget.order).")
+@click.option(
+    "--order",
+    default=None,
+    metavar="AXES",
+    help="Comma-separated axes, first gives up detail first (overrides budget.order).",
+)
 @click.option("--all", "every", is_flag=True, help="Evaluate every combination of levels.")
 @click.option("--json", "as_json", is_flag=True, help="Print the frontier as JSON.")
-@click.option("--page", "page", type=click.Path(path_type=Path), default=None,
-              help="Also write an HTML page showing every candidate level with its picture.")
+@click.option(
+    "--page",
+    "page",
+    type=click.Path(path_type=Path),
+    default=None,
+    help="Also write an HTML page showing every candidate level with its picture.",
+)
 @_budget_opts
-def ladder_cmd(recipe: Path, order: str | None, every: bool, as_json: bool,
-               budget_max: int | None, on: str | None, sets: tuple[str, ...], no_cache: bool,
-               quiet: bool, page: Path | None = None) -> None:
+def ladder_cmd(
+    recipe: Path,
+    order: str | None,
+    every: bool,
+    as_json: bool,
+    budget_max: int | None,
+    on: str | None,
+    sets: tuple[str, ...],
+    no_cache: bool,
+    quiet: bool,
+    page: Path | None = None,
+) -> None:
     """Show every candidate level evaluated: rows, drawn elements, bytes, fits or not."""
     from reduce import report
     from reduce.pipeline import ladder
@@ -272,9 +337,16 @@ def ladder_cmd(recipe: Path, order: str | None, every: bool, as_json: bool,
 
         check_page_target(page)
     with _progress(quiet or as_json) as progress:
-        res = ladder(recipe, budget=budget_max, on=on, order=order_list,
-                     overrides=_overrides(sets), use_cache=not no_cache, every_level=every,
-                     progress=progress)
+        res = ladder(
+            recipe,
+            budget=budget_max,
+            on=on,
+            order=order_list,
+            overrides=_overrides(sets),
+            use_cache=not no_cache,
+            every_level=every,
+            progress=progress,
+        )
     if page is not None:
         from reduce.ladder_page import write_ladder_page
 
@@ -294,8 +366,13 @@ def ladder_cmd(recipe: Path, order: str | None, every: bool, as_json: bool,
 
 @main.command("check")
 @click.argument("recipes", nargs=-1, required=True, type=click.Path(path_type=Path))
-@click.option("--set", "sets", multiple=True, metavar="KEY=VALUE",
-              help="Override any recipe key before checking.")
+@click.option(
+    "--set",
+    "sets",
+    multiple=True,
+    metavar="KEY=VALUE",
+    help="Override any recipe key before checking.",
+)
 def check_cmd(recipes: tuple[Path, ...], sets: tuple[str, ...]) -> None:
     """Validate recipes and their sources' schemas without scanning the data."""
     from reduce import report
@@ -309,10 +386,20 @@ def check_cmd(recipes: tuple[Path, ...], sets: tuple[str, ...]) -> None:
 
 
 @main.command("demo")
-@click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path),
-              default=Path("out"), show_default=True, help="Folder for the demo payloads.")
-@click.option("--rows", type=click.IntRange(1000, 50_000_000), default=None,
-              help="Rows of demo events to generate (default 2,000,000).")
+@click.option(
+    "--out",
+    "out_dir",
+    type=click.Path(file_okay=False, path_type=Path),
+    default=Path("out"),
+    show_default=True,
+    help="Folder for the demo payloads.",
+)
+@click.option(
+    "--rows",
+    type=click.IntRange(1000, 50_000_000),
+    default=None,
+    help="Rows of demo events to generate (default 2,000,000).",
+)
 @click.option("--regenerate", is_flag=True, help="Generate the demo data again.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress output.")
 def demo_cmd(out_dir: Path, rows: int | None, regenerate: bool, quiet: bool) -> None:
@@ -320,8 +407,9 @@ def demo_cmd(out_dir: Path, rows: int | None, regenerate: bool, quiet: bool) -> 
     from reduce import demo, report
 
     with _progress(quiet) as progress:
-        results, seconds = demo.run_demo(out_dir=out_dir, rows=rows, regenerate=regenerate,
-                                         progress=progress, echo=click.echo)
+        results, seconds = demo.run_demo(
+            out_dir=out_dir, rows=rows, regenerate=regenerate, progress=progress, echo=click.echo
+        )
     for res in results:
         click.echo(report.run_line(res))
     click.echo(f"demo: {len(results)} recipes in {seconds:.1f} s; payloads in {out_dir}")
@@ -329,17 +417,31 @@ def demo_cmd(out_dir: Path, rows: int | None, regenerate: bool, quiet: bool) -> 
 
 @main.command("preview")
 @click.argument("payloads", nargs=-1, required=True, type=click.Path(path_type=Path))
-@click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path), default=None,
-              help="Write the pictures and pages here (default: beside each payload).")
-@click.option("--measure", is_flag=True,
-              help="Open each page in headless Chromium; report parse and draw ms (median of "
-                   "3 loads).")
-@click.option("--reader", is_flag=True,
-              help="Also write columns-reader.js, the page-side payload reader.")
+@click.option(
+    "--out",
+    "out_dir",
+    type=click.Path(file_okay=False, path_type=Path),
+    default=None,
+    help="Write the pictures and pages here (default: beside each payload).",
+)
+@click.option(
+    "--measure",
+    is_flag=True,
+    help="Open each page in headless Chromium; report parse and draw ms (median of 3 loads).",
+)
+@click.option(
+    "--reader", is_flag=True, help="Also write columns-reader.js, the page-side payload reader."
+)
 @click.option("--json", "as_json", is_flag=True, help="Print a JSON summary.")
 @click.option("--quiet", "-q", is_flag=True, help="No progress output.")
-def preview_cmd(payloads: tuple[Path, ...], out_dir: Path | None, measure: bool, reader: bool,
-                as_json: bool, quiet: bool = False) -> None:
+def preview_cmd(
+    payloads: tuple[Path, ...],
+    out_dir: Path | None,
+    measure: bool,
+    reader: bool,
+    as_json: bool,
+    quiet: bool = False,
+) -> None:
     """Write STEM.png (a static picture) and STEM.html (a page drawing it) per payload."""
     from reduce import report
     from reduce.preview import expand_payloads, write_previews

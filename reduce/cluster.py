@@ -43,6 +43,8 @@ def connect_timeout() -> float:
         return max(0.5, float(env)) if env else CONNECT_TIMEOUT
     except ValueError:
         return CONNECT_TIMEOUT
+
+
 # Seconds a local cluster (``local:N``) may take to start its workers.
 LOCAL_START_TIMEOUT = 60.0
 
@@ -63,9 +65,11 @@ def _distributed() -> Any:
     try:
         import distributed
     except ImportError:
-        raise ClusterError("--cluster needs Dask's distributed scheduler, which is not "
-                           "installed; run pip install 'reduce[cluster]' (or pip install "
-                           "'dask[distributed]')") from None
+        raise ClusterError(
+            "--cluster needs Dask's distributed scheduler, which is not "
+            "installed; run pip install 'reduce[cluster]' (or pip install "
+            "'dask[distributed]')"
+        ) from None
     return distributed
 
 
@@ -83,13 +87,16 @@ def using(address: str | None) -> Iterator[str | None]:
         if address.startswith("local:"):
             n = address.split(":", 1)[1]
             if not n.isdigit() or not 1 <= int(n) <= 256:
-                raise ClusterError(f"--cluster {address}: local:N needs a number of workers "
-                                   "from 1 to 256, e.g. local:2")
+                raise ClusterError(
+                    f"--cluster {address}: local:N needs a number of workers "
+                    "from 1 to 256, e.g. local:2"
+                )
             cluster = _local_cluster(int(n))
             address = str(cluster.scheduler_address)
         elif "://" not in address:
-            raise ClusterError(f"--cluster {address}: give a scheduler address such as "
-                               "tcp://host:8786, or local:N")
+            raise ClusterError(
+                f"--cluster {address}: give a scheduler address such as tcp://host:8786, or local:N"
+            )
         _address = address
         yield address
     finally:
@@ -102,12 +109,19 @@ def using(address: str | None) -> Iterator[str | None]:
 def _local_cluster(n: int) -> Any:
     distributed = _distributed()
     try:
-        return distributed.LocalCluster(n_workers=n, threads_per_worker=1, processes=True,
-                                        host="127.0.0.1", dashboard_address=None,
-                                        silence_logs=50, timeout=LOCAL_START_TIMEOUT)
+        return distributed.LocalCluster(
+            n_workers=n,
+            threads_per_worker=1,
+            processes=True,
+            host="127.0.0.1",
+            dashboard_address=None,
+            silence_logs=50,
+            timeout=LOCAL_START_TIMEOUT,
+        )
     except Exception as e:  # noqa: BLE001 - Dask raises many kinds; one line says which
-        raise ClusterError(f"--cluster local:{n}: cannot start a local cluster "
-                           f"({type(e).__name__}: {_first(e)})") from None
+        raise ClusterError(
+            f"--cluster local:{n}: cannot start a local cluster ({type(e).__name__}: {_first(e)})"
+        ) from None
 
 
 def _first(e: BaseException) -> str:
@@ -122,9 +136,11 @@ def _client(address: str) -> Iterator[Any]:
     try:
         client = distributed.Client(address, timeout=wait, set_as_default=False)
     except (OSError, TimeoutError, ValueError) as e:
-        raise ClusterError(f"cluster {address}: the scheduler does not answer within "
-                           f"{wait:g} s ({_first(e) or type(e).__name__}); start "
-                           "it (dask scheduler) or check the address and port") from None
+        raise ClusterError(
+            f"cluster {address}: the scheduler does not answer within "
+            f"{wait:g} s ({_first(e) or type(e).__name__}); start "
+            "it (dask scheduler) or check the address and port"
+        ) from None
     try:
         yield client
     finally:
@@ -132,8 +148,13 @@ def _client(address: str) -> Iterator[Any]:
             client.close()
 
 
-def scan_files(address: str, recipe: Any, files: Sequence[Any], *,
-               progress: Callable[[str], None] | None = None) -> list[Any]:
+def scan_files(
+    address: str,
+    recipe: Any,
+    files: Sequence[Any],
+    *,
+    progress: Callable[[str], None] | None = None,
+) -> list[Any]:
     """The finest partial of each of ``files`` (``source.FileState``: each file as the
     client saw it, which the worker checks before it scans) of ``recipe``'s source, scanned by
     the cluster's workers, in the order given."""
@@ -142,11 +163,19 @@ def scan_files(address: str, recipe: Any, files: Sequence[Any], *,
     overrides = [list(kv) for kv in recipe.overrides]
     recipe_path = str(Path(recipe.file).resolve())
     with _client(address) as client:
-        futures = [client.submit(scan_file_task, recipe_path, overrides,
-                                 str(Path(f.path).resolve()), recipe.scan_hash,
-                                 [f.size, f.mtime_ns, f.digest], pure=False,
-                                 key=f"reduce-scan-{i}-{os.getpid()}-{id(files)}")
-                   for i, f in enumerate(files)]
+        futures = [
+            client.submit(
+                scan_file_task,
+                recipe_path,
+                overrides,
+                str(Path(f.path).resolve()),
+                recipe.scan_hash,
+                [f.size, f.mtime_ns, f.digest],
+                pure=False,
+                key=f"reduce-scan-{i}-{os.getpid()}-{id(files)}",
+            )
+            for i, f in enumerate(files)
+        ]
         out: list[Partial] = []
         for i, fut in enumerate(futures, start=1):
             try:
@@ -154,17 +183,20 @@ def scan_files(address: str, recipe: Any, files: Sequence[Any], *,
             except ReduceError:
                 raise
             except (OSError, TimeoutError) as e:
-                raise ClusterError(f"cluster {address}: lost while scanning "
-                                   f"{Path(files[i - 1].path).name} ({_first(e)}); check the "
-                                   "workers and run again") from None
+                raise ClusterError(
+                    f"cluster {address}: lost while scanning "
+                    f"{Path(files[i - 1].path).name} ({_first(e)}); check the "
+                    "workers and run again"
+                ) from None
             out.append(from_wire(doc))
             if progress:
                 progress(f"cluster: {i:,} of {len(files):,} files scanned")
         return out
 
 
-def scan_file_task(recipe_path: str, overrides: list[list[str]], path: str,
-                   scan_hash: str, seen: list[Any]) -> dict[str, Any]:
+def scan_file_task(
+    recipe_path: str, overrides: list[list[str]], path: str, scan_hash: str, seen: list[Any]
+) -> dict[str, Any]:
     """Runs on a worker: the finest partial of one source file, as Arrow tables (see the
     module docstring). The recipe is loaded from its path (shared storage) and must be the
     one the client loaded (same scan-relevant content); the file must be as the client saw
@@ -177,13 +209,17 @@ def scan_file_task(recipe_path: str, overrides: list[list[str]], path: str,
 
     recipe = load_recipe(recipe_path, overrides=dict((k, v) for k, v in overrides))
     if recipe.scan_hash != scan_hash:
-        raise RecipeError(f"{shown_path(Path(recipe_path))}: differs on the worker from the "
-                          "client's copy; the workers must see the same files (shared storage)")
+        raise RecipeError(
+            f"{shown_path(Path(recipe_path))}: differs on the worker from the "
+            "client's copy; the workers must see the same files (shared storage)"
+        )
     state = file_state(Path(path))
     if [state.size, state.mtime_ns, state.digest] != list(seen):
-        raise SourceError(f"{shown_path(Path(path))}: differs on the worker from what the "
-                          "client saw (changed meanwhile, or not the same shared file); nothing "
-                          "was published or cached: run again once the file is complete")
+        raise SourceError(
+            f"{shown_path(Path(path))}: differs on the worker from what the "
+            "client saw (changed meanwhile, or not the same shared file); nothing "
+            "was published or cached: run again once the file is complete"
+        )
     src = open_source(recipe)
     fsrc = file_source(src, state)
     try:
@@ -210,13 +246,21 @@ def _frame(table: Any, wide: list[str]) -> pl.DataFrame:
 def to_wire(p: Any) -> dict[str, Any]:
     """A :class:`~reduce.aggregate.Partial` as plain data and Arrow tables."""
     table, wide = _arrow(p.table)
-    return {"keys": list(p.keys), "hex_res": p.hex_res,
-            "time_bin": p.time_bin.text if p.time_bin else None,
-            "accounting": [p.accounting.input_rows, p.accounting.filtered_rows,
-                           p.accounting.invalid_rows, dict(p.accounting.invalid_by_reason)],
-            "table": table, "wide": wide,
-            "pairs": {k: _arrow(v)[0] for k, v in p.pairs.items()},
-            "values": {k: _arrow(v.to_frame("v"))[0] for k, v in p.values.items()}}
+    return {
+        "keys": list(p.keys),
+        "hex_res": p.hex_res,
+        "time_bin": p.time_bin.text if p.time_bin else None,
+        "accounting": [
+            p.accounting.input_rows,
+            p.accounting.filtered_rows,
+            p.accounting.invalid_rows,
+            dict(p.accounting.invalid_by_reason),
+        ],
+        "table": table,
+        "wide": wide,
+        "pairs": {k: _arrow(v)[0] for k, v in p.pairs.items()},
+        "values": {k: _arrow(v.to_frame("v"))[0] for k, v in p.values.items()},
+    }
 
 
 def from_wire(doc: dict[str, Any]) -> Any:
@@ -225,10 +269,14 @@ def from_wire(doc: dict[str, Any]) -> Any:
     from reduce.recipe import parse_time_bin
 
     inp, filt, inv, by = doc["accounting"]
-    return Partial(keys=tuple(doc["keys"]), table=_frame(doc["table"], doc["wide"]),
-                   pairs={k: _frame(v, []) for k, v in doc["pairs"].items()},
-                   values={k: _frame(v, []).to_series() for k, v in doc["values"].items()},
-                   hex_res=doc["hex_res"],
-                   time_bin=parse_time_bin(doc["time_bin"]) if doc["time_bin"] else None,
-                   accounting=Accounting(int(inp), int(filt), int(inv),
-                                         {str(k): int(n) for k, n in by.items()}))
+    return Partial(
+        keys=tuple(doc["keys"]),
+        table=_frame(doc["table"], doc["wide"]),
+        pairs={k: _frame(v, []) for k, v in doc["pairs"].items()},
+        values={k: _frame(v, []).to_series() for k, v in doc["values"].items()},
+        hex_res=doc["hex_res"],
+        time_bin=parse_time_bin(doc["time_bin"]) if doc["time_bin"] else None,
+        accounting=Accounting(
+            int(inp), int(filt), int(inv), {str(k): int(n) for k, n in by.items()}
+        ),
+    )

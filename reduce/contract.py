@@ -21,12 +21,23 @@ MAX_SAFE_INTEGER = 2**53 - 1
 
 # The accounting identity: input = filtered + invalid + suppressed + represented (plus
 # unassigned, apart from invalid, for recipes that assign regions from boundaries).
-ACCOUNTING_KEYS: tuple[str, ...] = ("input_rows", "filtered_rows", "invalid_rows",
-                                    "suppressed_rows", "represented_rows")
+ACCOUNTING_KEYS: tuple[str, ...] = (
+    "input_rows",
+    "filtered_rows",
+    "invalid_rows",
+    "suppressed_rows",
+    "represented_rows",
+)
 UNASSIGNED_KEY = "unassigned_rows"
 # The order the accounting block is written in (unassigned after invalid, when present).
-ACCOUNTING_ORDER: tuple[str, ...] = ("input_rows", "filtered_rows", "invalid_rows",
-                                     UNASSIGNED_KEY, "suppressed_rows", "represented_rows")
+ACCOUNTING_ORDER: tuple[str, ...] = (
+    "input_rows",
+    "filtered_rows",
+    "invalid_rows",
+    UNASSIGNED_KEY,
+    "suppressed_rows",
+    "represented_rows",
+)
 
 
 class Invalid(IntEnum):

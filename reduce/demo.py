@@ -26,9 +26,13 @@ SEED = 20261202
 _STAMP = ".complete.json"
 
 
-def ensure_scenario(*, rows: int | None = None, regenerate: bool = False,
-                    progress: Callable[[str], None] | None = None,
-                    dest: Path = FIXTURES) -> Path:
+def ensure_scenario(
+    *,
+    rows: int | None = None,
+    regenerate: bool = False,
+    progress: Callable[[str], None] | None = None,
+    dest: Path = FIXTURES,
+) -> Path:
     """Generate the scenario into ``dest`` unless an identical one is already there."""
     from reduce import _scenario
 
@@ -52,14 +56,21 @@ def ensure_scenario(*, rows: int | None = None, regenerate: bool = False,
 
 def recipe_files() -> list[Path]:
     if not RECIPES.is_dir():
-        raise SourceError(f"{RECIPES}: the demo recipes are not here; run the demo from a "
-                          "source checkout (pip install -e .)")
+        raise SourceError(
+            f"{RECIPES}: the demo recipes are not here; run the demo from a "
+            "source checkout (pip install -e .)"
+        )
     return sorted(RECIPES.glob("*.toml"))
 
 
-def run_demo(*, out_dir: Path, rows: int | None = None, regenerate: bool = False,
-             progress: Callable[[str], None] | None = None,
-             echo: Callable[[str], None] | None = None) -> tuple[list[RunResult], float]:
+def run_demo(
+    *,
+    out_dir: Path,
+    rows: int | None = None,
+    regenerate: bool = False,
+    progress: Callable[[str], None] | None = None,
+    echo: Callable[[str], None] | None = None,
+) -> tuple[list[RunResult], float]:
     """Generate (if needed) and run every recipe; returns results and elapsed seconds."""
     start = time.perf_counter()
     ensure_scenario(rows=rows, regenerate=regenerate, progress=progress)

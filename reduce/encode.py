@@ -47,8 +47,9 @@ def payload_columns(recipe: Recipe, df: pl.DataFrame) -> list[str]:
     """Output column order: keys, measures, derived columns (internal ``__`` columns dropped)."""
     keys = [k for k in recipe.key_names if k in df.columns]
     measures = [m.name for m in recipe.measures]
-    derived = [c for c in df.columns if c not in keys and c not in measures
-               and not c.startswith("__")]
+    derived = [
+        c for c in df.columns if c not in keys and c not in measures and not c.startswith("__")
+    ]
     return [*keys, *measures, *derived]
 
 
@@ -60,8 +61,9 @@ def sort_rows(recipe: Recipe, df: pl.DataFrame) -> pl.DataFrame:
     cats = [c for c in recipe.categories if c in df.columns]
     if recipe.top is not None and cats:
         rest = recipe.top.rest
-        df = df.with_columns(pl.all_horizontal([pl.col(c) == rest for c in cats])
-                             .alias("__is_rest"))
+        df = df.with_columns(
+            pl.all_horizontal([pl.col(c) == rest for c in cats]).alias("__is_rest")
+        )
         non_cat = [k for k in keys if k not in cats]
         return df.sort([*non_cat, "__is_rest", *cats]).drop("__is_rest")
     return df.sort(keys)
@@ -98,10 +100,13 @@ def _check_ints(df: pl.DataFrame, recipe: Recipe) -> None:
         if s.dtype.is_integer() and s.len() and s.null_count() < s.len():
             lo, hi = s.min(), s.max()
             if (lo is not None and int(lo) < -MAX_SAFE_INT) or (  # type: ignore[arg-type]
-                    hi is not None and int(hi) > MAX_SAFE_INT):  # type: ignore[arg-type]
-                raise ReduceError(f"{recipe.file.name}: column {c!r} holds an integer beyond "
-                                  "±2^53, which a browser cannot represent exactly; scale the "
-                                  "measure down or use a mean")
+                hi is not None and int(hi) > MAX_SAFE_INT  # type: ignore[arg-type]
+            ):
+                raise ReduceError(
+                    f"{recipe.file.name}: column {c!r} holds an integer beyond "
+                    "±2^53, which a browser cannot represent exactly; scale the "
+                    "measure down or use a mean"
+                )
 
 
 def _dictionary(values: list[Any]) -> tuple[list[str], list[int]] | None:
@@ -124,8 +129,7 @@ def inline_safe(data: bytes) -> bytes:
 
 
 @functools.lru_cache(maxsize=8)
-def _labels_of(path: str, mtime_ns: int, id_property: str,
-               label_property: str) -> dict[str, str]:
+def _labels_of(path: str, mtime_ns: int, id_property: str, label_property: str) -> dict[str, str]:
     from reduce.maps import boundaries as geo
 
     return geo.region_labels(Path(path), id_property, label_property)
@@ -155,13 +159,20 @@ def _with_labels(recipe: Recipe, plain: pl.DataFrame) -> pl.DataFrame:
     cols = plain.columns
     at = cols.index(r.column) + 1
     return plain.with_columns(label.alias(r.label_column)).select(
-        [*cols[:at], r.label_column, *cols[at:]])
+        [*cols[:at], r.label_column, *cols[at:]]
+    )
 
 
-def encode(recipe: Recipe, df: pl.DataFrame, *, level: Mapping[str, Any],
-           accounting: Mapping[str, int], digits: int,
-           meta: Mapping[str, Any] | None = None,
-           geometry: Callable[[pl.DataFrame], list[Any]] | None = None) -> bytes:
+def encode(
+    recipe: Recipe,
+    df: pl.DataFrame,
+    *,
+    level: Mapping[str, Any],
+    accounting: Mapping[str, int],
+    digits: int,
+    meta: Mapping[str, Any] | None = None,
+    geometry: Callable[[pl.DataFrame], list[Any]] | None = None,
+) -> bytes:
     """Encode finalized, sorted rows in the recipe's layout."""
     plain = _with_labels(recipe, _plain(recipe, df, digits))
     _check_ints(plain, recipe)
@@ -173,10 +184,16 @@ def encode(recipe: Recipe, df: pl.DataFrame, *, level: Mapping[str, Any],
 
         geoms = geometry(plain)
         props = {c: plain.get_column(c).to_list() for c in plain.columns}
-        extra = {"reduce": {"format": GEOJSON_FORMAT, "recipe": recipe.name,
-                            "level": dict(level), "rows": plain.height,
-                            "accounting": dict(accounting), **({"meta": dict(meta)}
-                                                               if meta else {})}}
+        extra = {
+            "reduce": {
+                "format": GEOJSON_FORMAT,
+                "recipe": recipe.name,
+                "level": dict(level),
+                "rows": plain.height,
+                "accounting": dict(accounting),
+                **({"meta": dict(meta)} if meta else {}),
+            }
+        }
         body = geojson.feature_collection(geoms, props, extra=extra)
         return inline_safe(body) if recipe.output.inline else body
     if layout == "csv":
@@ -224,16 +241,33 @@ def represented(df: pl.DataFrame) -> int:
     return int(df.get_column(N).sum()) if df.height else 0
 
 
-def accounting_block(*, input_rows: int, filtered_rows: int, invalid_rows: int,
-                     suppressed_rows: int, represented_rows: int,
-                     unassigned_rows: int | None = None) -> dict[str, int]:
+def accounting_block(
+    *,
+    input_rows: int,
+    filtered_rows: int,
+    invalid_rows: int,
+    suppressed_rows: int,
+    represented_rows: int,
+    unassigned_rows: int | None = None,
+) -> dict[str, int]:
     """The accounting identity's terms; ``unassigned_rows`` (events outside every boundary
     polygon) appears only for recipes that assign regions from boundaries."""
-    terms = {"input_rows": input_rows, "filtered_rows": filtered_rows,
-             "invalid_rows": invalid_rows, "unassigned_rows": unassigned_rows,
-             "suppressed_rows": suppressed_rows, "represented_rows": represented_rows}
+    terms = {
+        "input_rows": input_rows,
+        "filtered_rows": filtered_rows,
+        "invalid_rows": invalid_rows,
+        "unassigned_rows": unassigned_rows,
+        "suppressed_rows": suppressed_rows,
+        "represented_rows": represented_rows,
+    }
     return {k: v for k in ACCOUNTING_ORDER if (v := terms[k]) is not None}
 
 
-__all__: Sequence[str] = ["FORMAT", "encode", "inline_safe", "sort_rows", "payload_columns",
-                          "accounting_block"]
+__all__: Sequence[str] = [
+    "FORMAT",
+    "encode",
+    "inline_safe",
+    "sort_rows",
+    "payload_columns",
+    "accounting_block",
+]

@@ -31,8 +31,12 @@ class ReduceError(Exception):
         # show every other unprintable character (\r, \x1e, U+2028, bidi controls ...) as
         # an escape, so that a terminal shows exactly one line.
         text = " ".join(str(message).split("\n"))
-        super().__init__("".join(ch if ch.isprintable() else
-                                 ch.encode("unicode_escape").decode("ascii") for ch in text))
+        super().__init__(
+            "".join(
+                ch if ch.isprintable() else ch.encode("unicode_escape").decode("ascii")
+                for ch in text
+            )
+        )
 
     @property
     def message(self) -> str:

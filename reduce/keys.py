@@ -50,7 +50,7 @@ def hidden_hex(res: int) -> str:
 
 def is_hidden(name: str) -> bool:
     """Whether a column is a hidden exact-cell key (see the module docstring)."""
-    return name.startswith(_HIDDEN_HEX) and name[len(_HIDDEN_HEX):].isdigit()
+    return name.startswith(_HIDDEN_HEX) and name[len(_HIDDEN_HEX) :].isdigit()
 
 
 def hidden_below(recipe: Recipe, res: int | None) -> list[str]:
@@ -60,6 +60,7 @@ def hidden_below(recipe: Recipe, res: int | None) -> list[str]:
         return []
     top = recipe.hex.levels[0] if res is None else res
     return [hidden_hex(r) for r in recipe.hex.levels[1:] if r < top]
+
 
 # Reason codes of invalid rows, reported in manifests (the contract: reduce.contract).
 VALID = Invalid.VALID
@@ -78,8 +79,9 @@ def _time_expr(recipe: Recipe, lf: pl.LazyFrame, label: str) -> pl.Expr:
     if dtype == pl.String:
         e, dtype = parse_time_text(lf, col, label)
     if isinstance(dtype, pl.Date):
-        return e.cast(pl.Datetime("us")).dt.replace_time_zone(zone, ambiguous="earliest",
-                                                             non_existent="null")
+        return e.cast(pl.Datetime("us")).dt.replace_time_zone(
+            zone, ambiguous="earliest", non_existent="null"
+        )
     if isinstance(dtype, pl.Datetime) and dtype.time_zone is None:
         e = e.dt.replace_time_zone(naive, ambiguous="earliest", non_existent="null")
     return e.dt.convert_time_zone(zone)
@@ -95,8 +97,9 @@ def parse_time_text(lf: pl.LazyFrame, col: str, label: str) -> tuple[pl.Expr, pl
     """ISO 8601 text as datetimes: UTC instants when the text carries offsets, naive wall
     times otherwise. Text that cannot be read as a time gives null (an invalid row, reason
     "time"), never an error; text mixing offsets and none is an error."""
-    sample = (lf.select(pl.col(col)).drop_nulls().head(10000).collect()
-              .get_column(col).str.strip_chars())
+    sample = (
+        lf.select(pl.col(col)).drop_nulls().head(10000).collect().get_column(col).str.strip_chars()
+    )
     sample = sample.filter(sample.str.contains(_TIMELIKE_RE.pattern))
     aware = sample.str.contains(_AWARE_RE.pattern)
     n_aware = int(aware.sum())
@@ -104,7 +107,8 @@ def parse_time_text(lf: pl.LazyFrame, col: str, label: str) -> tuple[pl.Expr, pl
         raise SourceError(
             f"{label}: column {col!r} (source.time) mixes timestamps with a zone and "
             f"without one (e.g. {sample.filter(aware)[0]!r} and "
-            f"{sample.filter(~aware)[0]!r}); write them all with an offset or all without")
+            f"{sample.filter(~aware)[0]!r}); write them all with an offset or all without"
+        )
     text = pl.col(col).str.strip_chars()
     text = pl.when(text.str.contains(_TIMELIKE_RE.pattern)).then(text)
     if len(sample) and bool(sample.str.contains(_DATE_ONLY_RE.pattern).all()):
@@ -112,8 +116,10 @@ def parse_time_text(lf: pl.LazyFrame, col: str, label: str) -> tuple[pl.Expr, pl
         # column's are
         return text.str.to_date("%Y-%m-%d", strict=False), pl.Date()
     if n_aware:
-        return (text.str.to_datetime(time_zone="UTC", strict=False, time_unit="us"),
-                pl.Datetime("us", "UTC"))
+        return (
+            text.str.to_datetime(time_zone="UTC", strict=False, time_unit="us"),
+            pl.Datetime("us", "UTC"),
+        )
     return text.str.to_datetime(strict=False, time_unit="us"), pl.Datetime("us")
 
 
@@ -126,7 +132,8 @@ def parse_coordinate_text(col: str) -> pl.Expr:
 def _fixed_offset(zone: str) -> bool:
     """Zones whose offset never changes (UTC and the IANA ``Etc/`` zones)."""
     return zone in ("UTC", "GMT", "UCT", "Zulu", "Universal", "Greenwich") or zone.startswith(
-        "Etc/")
+        "Etc/"
+    )
 
 
 def truncate(expr: pl.Expr, b: TimeBin, zone: str) -> pl.Expr:
@@ -147,15 +154,23 @@ def truncate(expr: pl.Expr, b: TimeBin, zone: str) -> pl.Expr:
         # 2024-09-29: an event at 03:45 +13:45 gets 04:00 +13:45). The bin then starts at the
         # first of its wall times that exists (offsets change in steps of 15 minutes).
         wall = expr.dt.replace_time_zone(None).dt.truncate(b.text)
-        firsts = [(wall + pl.duration(minutes=m)).dt.replace_time_zone(
-            zone, ambiguous="earliest", non_existent="null") for m in range(0, 121, 15)]
+        firsts = [
+            (wall + pl.duration(minutes=m)).dt.replace_time_zone(
+                zone, ambiguous="earliest", non_existent="null"
+            )
+            for m in range(0, 121, 15)
+        ]
         return pl.when(start > expr).then(pl.coalesce(firsts)).otherwise(start)
     day = expr.dt.date()
     if b.unit != "d":
         day = day.dt.truncate(b.text)
     midnight = day.cast(pl.Datetime("us"))
-    starts = [(midnight + pl.duration(minutes=m)).dt.replace_time_zone(
-        zone, ambiguous="earliest", non_existent="null") for m in (0, 30, 60)]
+    starts = [
+        (midnight + pl.duration(minutes=m)).dt.replace_time_zone(
+            zone, ambiguous="earliest", non_existent="null"
+        )
+        for m in (0, 30, 60)
+    ]
     return pl.coalesce(starts)
 
 
@@ -170,8 +185,7 @@ def _boundaries(path: Path, id_property: str) -> Any:
     return geo.load_boundaries(path, id_property)
 
 
-def scan_keys(recipe: Recipe, lf: pl.LazyFrame,
-              label: str) -> tuple[list[pl.Expr], pl.Expr | None]:
+def scan_keys(recipe: Recipe, lf: pl.LazyFrame, label: str) -> tuple[list[pl.Expr], pl.Expr | None]:
     """Key expressions at the finest level, and the invalid-reason code expression.
 
     Key expressions are null on invalid rows, so all invalid rows collapse into a few groups.
@@ -184,12 +198,12 @@ def scan_keys(recipe: Recipe, lf: pl.LazyFrame,
     checks: list[tuple[int, pl.Expr]] = []
     if recipe.needs_coordinates:
         assert src.lat is not None and src.lon is not None
-        checks.append((Invalid.COORDINATES,
-                       _valid_coord(src.lat, 90.0) & _valid_coord(src.lon, 180.0)))
+        checks.append(
+            (Invalid.COORDINATES, _valid_coord(src.lat, 90.0) & _valid_coord(src.lon, 180.0))
+        )
     time_e = None
     if recipe.time:
-        time_e = truncate(_time_expr(recipe, lf, label), recipe.time.levels[0],
-                          recipe.time.zone)
+        time_e = truncate(_time_expr(recipe, lf, label), recipe.time.levels[0], recipe.time.zone)
         checks.append((Invalid.TIME, time_e.is_not_null()))
     named: list[tuple[str, pl.Expr]] = []  # key name -> String expression (null = invalid)
     unassigned: list[pl.Expr] = []  # null = outside every polygon
@@ -215,13 +229,17 @@ def scan_keys(recipe: Recipe, lf: pl.LazyFrame,
                 named.append((name, pl.col(end.column).cast(pl.String)))
                 continue
             assert end.lat is not None and end.lon is not None
-            checks.append((Invalid.COORDINATES,
-                           _valid_coord(end.lat, 90.0) & _valid_coord(end.lon, 180.0)))
+            checks.append(
+                (Invalid.COORDINATES, _valid_coord(end.lat, 90.0) & _valid_coord(end.lon, 180.0))
+            )
             if f.hex_res is not None:
-                e = plh3.int_to_str(plh3.latlng_to_cell(
-                    pl.col(end.lat).cast(pl.Float64),
-                    pl.col(end.lon).cast(pl.Float64),
-                    f.hex_res))
+                e = plh3.int_to_str(
+                    plh3.latlng_to_cell(
+                        pl.col(end.lat).cast(pl.Float64),
+                        pl.col(end.lon).cast(pl.Float64),
+                        f.hex_res,
+                    )
+                )
             else:
                 from reduce.maps import boundaries as geo
 
@@ -230,8 +248,9 @@ def scan_keys(recipe: Recipe, lf: pl.LazyFrame,
                 unassigned.append(e)
             named.append((name, e))
     if unassigned:
-        checks.append((Invalid.UNASSIGNED,
-                       pl.all_horizontal([u.is_not_null() for u in unassigned])))
+        checks.append(
+            (Invalid.UNASSIGNED, pl.all_horizontal([u.is_not_null() for u in unassigned]))
+        )
     if named:
         checks.append((Invalid.KEY, pl.all_horizontal([e.is_not_null() for _, e in named])))
     if [code for code, _ in checks] == [Invalid.KEY]:
@@ -259,14 +278,22 @@ def scan_keys(recipe: Recipe, lf: pl.LazyFrame,
 def reason_of_groups(keys: list[str]) -> pl.Expr:
     """The invalid-reason code of groups keyed by plain key columns (see :func:`scan_keys`):
     "key" where any key is null."""
-    return (pl.when(pl.any_horizontal([pl.col(k).is_null() for k in keys]))
-            .then(pl.lit(int(Invalid.KEY), dtype=pl.UInt8))
-            .otherwise(pl.lit(int(VALID), dtype=pl.UInt8))
-            .alias(INVALID))
+    return (
+        pl.when(pl.any_horizontal([pl.col(k).is_null() for k in keys]))
+        .then(pl.lit(int(Invalid.KEY), dtype=pl.UInt8))
+        .otherwise(pl.lit(int(VALID), dtype=pl.UInt8))
+        .alias(INVALID)
+    )
 
 
-def coarsen(recipe: Recipe, *, hex_res: int | None, time_bin: TimeBin | None,
-            from_hex: int | None, from_time: TimeBin | None) -> list[pl.Expr]:
+def coarsen(
+    recipe: Recipe,
+    *,
+    hex_res: int | None,
+    time_bin: TimeBin | None,
+    from_hex: int | None,
+    from_time: TimeBin | None,
+) -> list[pl.Expr]:
     """Expressions mapping key columns at one level to a coarser one (identity otherwise).
 
     A coarser hex level reads the exact cells kept in its hidden column (see

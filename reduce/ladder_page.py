@@ -27,8 +27,9 @@ def _size(n: int | None) -> str:
     return "-" if n is None else f"{format_size(n)} ({n:,} B)"
 
 
-def render_ladder_page(result: FitResult, *,
-                       progress: Callable[[str], None] | None = None) -> bytes:
+def render_ladder_page(
+    result: FitResult, *, progress: Callable[[str], None] | None = None
+) -> bytes:
     """The page as UTF-8 bytes (same result, same bytes)."""
     from reduce.preview import PreviewError, render_png, table_from_bytes
 
@@ -36,24 +37,32 @@ def render_ladder_page(result: FitResult, *,
     axes = list(r.ladder())
     red = result.reducer
     cards = []
-    ordered = sorted(result.candidates,
-                     key=lambda c: [list(r.ladder()[a]).index(c.level[a])
-                                    if c.level[a] in r.ladder()[a] else 0 for a in axes])
+    ordered = sorted(
+        result.candidates,
+        key=lambda c: [
+            list(r.ladder()[a]).index(c.level[a]) if c.level[a] in r.ladder()[a] else 0
+            for a in axes
+        ],
+    )
     for i, c in enumerate(ordered):
         if progress:
             progress(f"ladder page: drawing level {i + 1} of {len(ordered)}")
         picture = "<p class='none'>no picture: judged from its row count, never encoded</p>"
         if c.raw is not None and c.raw > MAX_PICTURE_BYTES:
-            picture = (f"<p class='none'>no picture: {format_size(c.raw)} raw is too large "
-                       "to draw here</p>")
+            picture = (
+                f"<p class='none'>no picture: {format_size(c.raw)} raw is too large "
+                "to draw here</p>"
+            )
         elif c.raw is not None and red is not None:
             data = red.payload(c.level)
             try:
                 t = table_from_bytes(Path(f"{r.name}.json"), data)
                 png = render_png(t, sizes={"raw": c.raw, "gzip": c.gzip, "brotli": c.brotli})
                 src = "data:image/png;base64," + base64.b64encode(png).decode("ascii")
-                picture = (f"<img src='{src}' width='480' height='300' "
-                           f"alt='{html.escape(describe_level(c.level))}'>")
+                picture = (
+                    f"<img src='{src}' width='480' height='300' "
+                    f"alt='{html.escape(describe_level(c.level))}'>"
+                )
             except PreviewError as e:
                 picture = f"<p class='none'>no picture: {html.escape(e.message)}</p>"
         fits = "-" if c.fits is None else ("fits" if c.fits else "over budget")
@@ -67,14 +76,23 @@ def render_ladder_page(result: FitResult, *,
             f"<tr><th>raw</th><td>{_size(c.raw)}</td></tr>"
             f"<tr><th>gzip</th><td>{_size(c.gzip)}</td></tr>"
             f"<tr><th>brotli</th><td>{_size(c.brotli)}</td></tr>"
-            f"<tr><th>budget</th><td>{fits}</td></tr></table></div>")
+            f"<tr><th>budget</th><td>{fits}</td></tr></table></div>"
+        )
     b = result.budget
-    budget = (f"budget {format_size(b.max)} {b.on}; order {', '.join(b.order)} (first gives "
-              "up detail first)" if b else "no budget")
+    budget = (
+        f"budget {format_size(b.max)} {b.on}; order {', '.join(b.order)} (first gives "
+        "up detail first)"
+        if b
+        else "no budget"
+    )
     chosen = describe_level(result.level) if result.level else "nothing fits"
-    return _PAGE.format(title=html.escape(f"{r.name}: the ladder"),
-                        budget=html.escape(budget), chosen=html.escape(chosen),
-                        n=len(ordered), cards="\n".join(cards)).encode("utf-8")
+    return _PAGE.format(
+        title=html.escape(f"{r.name}: the ladder"),
+        budget=html.escape(budget),
+        chosen=html.escape(chosen),
+        n=len(ordered),
+        cards="\n".join(cards),
+    ).encode("utf-8")
 
 
 def check_page_target(page: Path) -> None:

@@ -39,9 +39,14 @@ from reduce.contract import LEVELS_FORMAT
 
 # The ladder axes, in the order levels are shown and keyed.
 AXES: tuple[str, ...] = ("hex", "time", "top", "simplify", "coords", "digits")
-_TYPES: dict[str, tuple[type, ...]] = {"hex": (int,), "time": (str,), "top": (int,),
-                                       "simplify": (int, float), "coords": (int,),
-                                       "digits": (int,)}
+_TYPES: dict[str, tuple[type, ...]] = {
+    "hex": (int,),
+    "time": (str,),
+    "top": (int,),
+    "simplify": (int, float),
+    "coords": (int,),
+    "digits": (int,),
+}
 
 
 @dataclass(frozen=True, slots=True, eq=False)
@@ -65,8 +70,9 @@ class Level(Mapping[str, Any]):
             return m
         unknown = [k for k in m if k not in AXES]
         if unknown:
-            raise ValueError(f"not a ladder axis: {', '.join(map(str, unknown))}; "
-                             f"the axes are {', '.join(AXES)}")
+            raise ValueError(
+                f"not a ladder axis: {', '.join(map(str, unknown))}; the axes are {', '.join(AXES)}"
+            )
         for k, v in m.items():
             if v is not None and (isinstance(v, bool) or not isinstance(v, _TYPES[k])):
                 raise ValueError(f"level axis {k!r}: {v!r} is not a {_TYPES[k][0].__name__}")
@@ -106,6 +112,7 @@ class Level(Mapping[str, Any]):
     def __repr__(self) -> str:
         inner = ", ".join(f"{a}={v!r}" for a, v in self.key)
         return f"Level({inner})"
+
 
 FORMAT = LEVELS_FORMAT
 PAYLOAD_MAX = 16_000_000  # raw bytes of a payload kept with its record
@@ -164,6 +171,7 @@ class Record:
 
     def merge(self, other: Record) -> Record:
         """Both records' knowledge of one level (exact lengths win; the higher floor)."""
+
         def best(a: int | None, b: int | None) -> int | None:
             return b if a is None else a
 
@@ -171,19 +179,24 @@ class Record:
             vals = [v for v in (a, b) if v is not None]
             return max(vals) if vals else None
 
-        return Record(level=self.level, rows=self.rows, elements=self.elements, raw=self.raw,
-                      sha256=self.sha256, gzip=best(self.gzip, other.gzip),
-                      brotli=best(self.brotli, other.brotli),
-                      gzip_floor=high(self.gzip_floor, other.gzip_floor),
-                      brotli_floor=high(self.brotli_floor, other.brotli_floor),
-                      gzip_fast=best(self.gzip_fast, other.gzip_fast),
-                      gzip_mid=best(self.gzip_mid, other.gzip_mid),
-                      brotli_fast=best(self.brotli_fast, other.brotli_fast),
-                      accounting=self.accounting or other.accounting,
-                      suppressed_cells=self.suppressed_cells,
-                      denominators=self.denominators if self.denominators is not None
-                      else other.denominators,
-                      payload=self.payload or other.payload)
+        return Record(
+            level=self.level,
+            rows=self.rows,
+            elements=self.elements,
+            raw=self.raw,
+            sha256=self.sha256,
+            gzip=best(self.gzip, other.gzip),
+            brotli=best(self.brotli, other.brotli),
+            gzip_floor=high(self.gzip_floor, other.gzip_floor),
+            brotli_floor=high(self.brotli_floor, other.brotli_floor),
+            gzip_fast=best(self.gzip_fast, other.gzip_fast),
+            gzip_mid=best(self.gzip_mid, other.gzip_mid),
+            brotli_fast=best(self.brotli_fast, other.brotli_fast),
+            accounting=self.accounting or other.accounting,
+            suppressed_cells=self.suppressed_cells,
+            denominators=self.denominators if self.denominators is not None else other.denominators,
+            payload=self.payload or other.payload,
+        )
 
 
 def store_hash(document: Mapping[str, Any], extra: str = "") -> str:
@@ -213,17 +226,28 @@ class Store:
     default; a cache entry's checksummed files in the pipeline). ``read`` raises ``OSError``
     or any exception listed in ``errors`` for a file that is absent or unusable."""
 
-    def __init__(self, folder: Path | None, name: str, *, read: Read = _read_plain,
-                 write: Write = _write_plain,
-                 errors: tuple[type[BaseException], ...] = ()) -> None:
+    def __init__(
+        self,
+        folder: Path | None,
+        name: str,
+        *,
+        read: Read = _read_plain,
+        write: Write = _write_plain,
+        errors: tuple[type[BaseException], ...] = (),
+    ) -> None:
         self.folder = folder
         self.name = name
         self._read = read
         self._write = write
         self._errors: tuple[type[BaseException], ...] = (OSError, *errors)
         self._bad_store: tuple[type[BaseException], ...] = (
-            orjson.JSONDecodeError, TypeError, KeyError, AttributeError, ValueError,
-            *self._errors)
+            orjson.JSONDecodeError,
+            TypeError,
+            KeyError,
+            AttributeError,
+            ValueError,
+            *self._errors,
+        )
         self._bad_payload: tuple[type[BaseException], ...] = (zlib.error, *self._errors)
         self.records: dict[str, Record] = {}
         self.counts: dict[str, int] = {}  # rows of levels counted, not measured
@@ -286,8 +310,12 @@ class Store:
     def keep_payload(self, level: Mapping[str, Any], data: bytes) -> None:
         """Keep a level's payload bytes beside its record (small payloads only)."""
         rec = self.get(level)
-        if (self.folder is None or rec is None or len(data) > PAYLOAD_MAX
-                or self.payload(level) is not None):
+        if (
+            self.folder is None
+            or rec is None
+            or len(data) > PAYLOAD_MAX
+            or self.payload(level) is not None
+        ):
             return
         name = f"payload-{self.name}-{rec.sha256[:20]}.z"
         try:
@@ -301,9 +329,11 @@ class Store:
         """Write the store if it changed (atomically; failures are ignored: a cache)."""
         if self.folder is None or not self.dirty or not self.folder.is_dir():
             return
-        doc = {"format": FORMAT,
-               "records": [asdict(r) for _, r in sorted(self.records.items())],
-               "counts": dict(sorted(self.counts.items()))}
+        doc = {
+            "format": FORMAT,
+            "records": [asdict(r) for _, r in sorted(self.records.items())],
+            "counts": dict(sorted(self.counts.items())),
+        }
         try:
             self._write(self.folder, self.file_name, orjson.dumps(doc))
         except self._errors:

@@ -38,24 +38,49 @@ def build_manifest(result: FitResult, path: Path) -> dict[str, Any]:
         "elements": result.chosen.elements,
         "recipe": {"name": r.name, "file": r.file.name, "sha256": r.content_hash},
         "level": dict(result.level),
-        "budget": ({"max": result.budget.max, "on": result.budget.on,
-                    "order": list(result.budget.order),
-                    "fits": sizes.on(result.budget.on) <= result.budget.max}
-                   if result.budget else None),
-        **({"notes": [f"brotli not measured: the payload is over {BROTLI_AUTO_MAX:,} raw bytes "
-                      "(brotli at quality 11 is slow); use a brotli budget to measure it"]}
-           if sizes.brotli is None else {}),
+        "budget": (
+            {
+                "max": result.budget.max,
+                "on": result.budget.on,
+                "order": list(result.budget.order),
+                "fits": sizes.on(result.budget.on) <= result.budget.max,
+            }
+            if result.budget
+            else None
+        ),
+        **(
+            {
+                "notes": [
+                    f"brotli not measured: the payload is over {BROTLI_AUTO_MAX:,} raw bytes "
+                    "(brotli at quality 11 is slow); use a brotli budget to measure it"
+                ]
+            }
+            if sizes.brotli is None
+            else {}
+        ),
         "frontier": [
-            {"level": dict(c.level), "rows": c.rows, "raw": c.raw, "gzip": c.gzip,
-             "brotli": c.brotli, "fits": c.fits, "chosen": c.chosen,
-             **({"estimated": True} if c.estimated or c.note == QUICK_NOTE else {})}
-            for c in result.candidates],
-        "accounting": {**result.accounting,
-                       "invalid_by_reason": rec.accounting.get("invalid_by_reason", {}),
-                       "suppressed_cells": rec.suppressed_cells},
-        "source": {"fingerprint": src.fingerprint if src else None,
-                   "files": len(src.files) if src else None,
-                   "format": src.format if src else None},
+            {
+                "level": dict(c.level),
+                "rows": c.rows,
+                "raw": c.raw,
+                "gzip": c.gzip,
+                "brotli": c.brotli,
+                "fits": c.fits,
+                "chosen": c.chosen,
+                **({"estimated": True} if c.estimated or c.note == QUICK_NOTE else {}),
+            }
+            for c in result.candidates
+        ],
+        "accounting": {
+            **result.accounting,
+            "invalid_by_reason": rec.accounting.get("invalid_by_reason", {}),
+            "suppressed_cells": rec.suppressed_cells,
+        },
+        "source": {
+            "fingerprint": src.fingerprint if src else None,
+            "files": len(src.files) if src else None,
+            "format": src.format if src else None,
+        },
         # source files: how many, how many this run scanned, how many partials it reused
         "files": red.files,
     }

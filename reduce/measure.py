@@ -38,8 +38,9 @@ QUICK_NOTE = "judged by a fast compression"
 class Measurer(LevelTables):
     """The levels of one recipe, encoded and measured (see the module docstring)."""
 
-    def __init__(self, recipe: Recipe, *, use_cache: bool = True,
-                 progress: Progress | None = None) -> None:
+    def __init__(
+        self, recipe: Recipe, *, use_cache: bool = True, progress: Progress | None = None
+    ) -> None:
         super().__init__(recipe, use_cache=use_cache, progress=progress)
         self._payloads: dict[tuple[Any, ...], bytes] = {}
         self._hex_geoms: dict[int, dict[str, Any]] = {}
@@ -55,10 +56,13 @@ class Measurer(LevelTables):
         if self._store is None:
             key = self.entry()
             folder = cache.cache_dir() / key if self.use_cache else None
-            self._store = levels.Store(folder if folder is not None and folder.is_dir()
-                                       else None, _store_name(self.recipe),
-                                       read=cache.read_file, write=cache.write_file,
-                                       errors=(cache.DamagedEntry,))
+            self._store = levels.Store(
+                folder if folder is not None and folder.is_dir() else None,
+                _store_name(self.recipe),
+                read=cache.read_file,
+                write=cache.write_file,
+                errors=(cache.DamagedEntry,),
+            )
             if self._store.records:
                 self.partial_from_cache = True
         return self._store
@@ -82,25 +86,43 @@ class Measurer(LevelTables):
         lr = self.rows(level)
         acc = self.finest().accounting
         rec = levels.Record(
-            level=dict(level), rows=lr.frame.height, elements=encode.elements(lr.frame),
-            raw=len(data), sha256=sha256(data),
-            accounting={**self.accounting(level), "invalid_by_reason": acc.invalid_by_reason,
-                        "suppressed_cells": lr.suppressed_cells},
+            level=dict(level),
+            rows=lr.frame.height,
+            elements=encode.elements(lr.frame),
+            raw=len(data),
+            sha256=sha256(data),
+            accounting={
+                **self.accounting(level),
+                "invalid_by_reason": acc.invalid_by_reason,
+                "suppressed_cells": lr.suppressed_cells,
+            },
             suppressed_cells=lr.suppressed_cells,
-            denominators=(lr.report.as_dict() if self.recipe.normalize is not None
-                          and self.recipe.normalize.rate_measures else None))
+            denominators=(
+                lr.report.as_dict()
+                if self.recipe.normalize is not None and self.recipe.normalize.rate_measures
+                else None
+            ),
+        )
         self.store.put(rec)
         return self.store.get(level) or rec
 
-    def remember(self, c: bsearch.Candidate, *, on: Measure | None = None,
-                 limit: int | None = None) -> None:
+    def remember(
+        self, c: bsearch.Candidate, *, on: Measure | None = None, limit: int | None = None
+    ) -> None:
         """Keep what a measured candidate showed (exact lengths; a certain lower bound where
         an exact compression stopped early over ``limit``)."""
         if c.estimated or c.raw is None:
             return
         rec = self.record(c.level)
-        more = levels.Record(level=rec.level, rows=rec.rows, elements=rec.elements,
-                             raw=rec.raw, sha256=rec.sha256, gzip=c.gzip, brotli=c.brotli)
+        more = levels.Record(
+            level=rec.level,
+            rows=rec.rows,
+            elements=rec.elements,
+            raw=rec.raw,
+            sha256=rec.sha256,
+            gzip=c.gzip,
+            brotli=c.brotli,
+        )
         fast_on, fast, mid = self._fast.get(bsearch.level_key(c.level), (None, None, None))
         if fast_on == "gzip":
             more.gzip_fast, more.gzip_mid = fast, mid
@@ -135,10 +157,15 @@ class Measurer(LevelTables):
             if r.normalize and r.normalize.rate_measures:
                 meta["per"] = r.normalize.per
             geometry = self._geometry(level) if r.output.layout == "geojson" else None
-            self._payloads[k] = encode.encode(r, lr.frame, level=level,
-                                              accounting=self.accounting(level),
-                                              digits=int(level["digits"]), meta=meta,
-                                              geometry=geometry)
+            self._payloads[k] = encode.encode(
+                r,
+                lr.frame,
+                level=level,
+                accounting=self.accounting(level),
+                digits=int(level["digits"]),
+                meta=meta,
+                geometry=geometry,
+            )
         return self._payloads[k]
 
     def _geometry(self, level: Mapping[str, Any]) -> Callable[[pl.DataFrame], list[Any]]:
@@ -168,20 +195,27 @@ class Measurer(LevelTables):
             from reduce.maps import topology
 
             assert r.region.id_property is not None
-            b = self._boundaries or geo.load_boundaries(r.region.boundaries,
-                                                        r.region.id_property)
+            b = self._boundaries or geo.load_boundaries(r.region.boundaries, r.region.id_property)
             self._boundaries = b
             shapes = topology.simplify_shared(b, tol) if tol > 0 else b.geoms
             shapes = topology.quantize(shapes, coords)
-            self._region_geoms[key] = {i: geojson.polygon_geometry(g, coords)
-                                       for i, g in zip(b.ids, shapes)}
+            self._region_geoms[key] = {
+                i: geojson.polygon_geometry(g, coords) for i, g in zip(b.ids, shapes)
+            }
         by_id = self._region_geoms[key]
         col = r.region.column
         return lambda plain: [by_id.get(v) for v in plain.get_column(col).to_list()]
 
     # -- candidates -------------------------------------------------------------------------
-    def candidate(self, level: Mapping[str, Any], *, exact: bool, on: Measure | None = None,
-                  limit: int | None = None, brotli: bool | None = None) -> bsearch.Candidate:
+    def candidate(
+        self,
+        level: Mapping[str, Any],
+        *,
+        exact: bool,
+        on: Measure | None = None,
+        limit: int | None = None,
+        brotli: bool | None = None,
+    ) -> bsearch.Candidate:
         """Encode a level and measure it: every measure (``exact``), or only whether it fits
         ``limit`` on ``on`` (compression stops once the output is over the limit). A level
         measured before (the store kept with the cache entry) is not measured again when what
@@ -193,15 +227,29 @@ class Measurer(LevelTables):
         self.remember(c, on=on, limit=limit)
         return c
 
-    def _from_store(self, level: Mapping[str, Any], *, exact: bool, on: Measure | None,
-                    limit: int | None, brotli: bool | None) -> bsearch.Candidate | None:
+    def _from_store(
+        self,
+        level: Mapping[str, Any],
+        *,
+        exact: bool,
+        on: Measure | None,
+        limit: int | None,
+        brotli: bool | None,
+    ) -> bsearch.Candidate | None:
         rec = self.store.get(level)
         if rec is None:
             return None
-        want_brotli = on == "brotli" or (brotli is True) or (
-            brotli is None and rec.raw <= BROTLI_AUTO_MAX)
-        c = bsearch.Candidate(level=Level.of(level), rows=rec.rows, elements=rec.elements,
-                              raw=rec.raw, gzip=rec.gzip, brotli=rec.brotli)
+        want_brotli = (
+            on == "brotli" or (brotli is True) or (brotli is None and rec.raw <= BROTLI_AUTO_MAX)
+        )
+        c = bsearch.Candidate(
+            level=Level.of(level),
+            rows=rec.rows,
+            elements=rec.elements,
+            raw=rec.raw,
+            gzip=rec.gzip,
+            brotli=rec.brotli,
+        )
         if exact or on is None or limit is None:
             if rec.gzip is None or (want_brotli and rec.brotli is None):
                 return None
@@ -226,12 +274,20 @@ class Measurer(LevelTables):
         c.guess = look.mid or look.fast
         return c
 
-    def _measure(self, level: Mapping[str, Any], *, exact: bool, on: Measure | None,
-                 limit: int | None, brotli: bool | None) -> bsearch.Candidate:
+    def _measure(
+        self,
+        level: Mapping[str, Any],
+        *,
+        exact: bool,
+        on: Measure | None,
+        limit: int | None,
+        brotli: bool | None,
+    ) -> bsearch.Candidate:
         data = self.payload(level)
         rec = self.record(level)
-        c = bsearch.Candidate(level=Level.of(level), rows=rec.rows, elements=rec.elements,
-                              raw=len(data))
+        c = bsearch.Candidate(
+            level=Level.of(level), rows=rec.rows, elements=rec.elements, raw=len(data)
+        )
         if exact or on is None or limit is None:
             s = measure_all(data, brotli=True if on == "brotli" else brotli)
             c.gzip, c.brotli = s.gzip, s.brotli
@@ -262,8 +318,15 @@ class Measurer(LevelTables):
         self._payloads.pop(bsearch.level_key(level), None)
         super().forget(level)
 
-    def estimate(self, level: Mapping[str, Any], on: Measure, per_row: float,
-                 limit: int, *, rows: int | None = None) -> bsearch.Candidate:
+    def estimate(
+        self,
+        level: Mapping[str, Any],
+        on: Measure,
+        per_row: float,
+        limit: int,
+        *,
+        rows: int | None = None,
+    ) -> bsearch.Candidate:
         """A candidate judged from its row count alone (see :meth:`row_count`): ``per_row``
         bytes (the least seen on measured levels) times its rows; used only to skip levels
         far over the budget. ``rows``: a lower bound of its rows known without counting (the
@@ -274,8 +337,7 @@ class Measurer(LevelTables):
         c.estimated = True
         c.guess = int(per_row * n)
         at_least = "" if rows is None else "at least "
-        c.note = (f"~{at_least}{int(per_row * n):,} {on} bytes estimated from rows: over "
-                  f"{limit:,}")
+        c.note = f"~{at_least}{int(per_row * n):,} {on} bytes estimated from rows: over {limit:,}"
         return c
 
 

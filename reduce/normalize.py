@@ -43,9 +43,11 @@ class NormalizeReport:
     notes: dict[str, int] = field(default_factory=dict)
 
     def as_dict(self) -> dict[str, object]:
-        return {"rows_without_denominator": self.rows_without_denominator,
-                "data_only_keys": list(self.data_only_keys),
-                "denominator_only_keys": list(self.denominator_only_keys)}
+        return {
+            "rows_without_denominator": self.rows_without_denominator,
+            "data_only_keys": list(self.data_only_keys),
+            "denominator_only_keys": list(self.denominator_only_keys),
+        }
 
 
 def load_denominators(d: Denominators) -> pl.DataFrame:
@@ -53,8 +55,10 @@ def load_denominators(d: Denominators) -> pl.DataFrame:
     shown = shown_path(d.path)
     where = f"{shown} (normalize.denominators)"
     if not Path(d.path).is_file():
-        raise DenominatorError(f"{where}: file not found; check normalize.denominators.path, "
-                               "which is relative to the recipe file")
+        raise DenominatorError(
+            f"{where}: file not found; check normalize.denominators.path, "
+            "which is relative to the recipe file"
+        )
     try:
         if d.path.suffix.lower() in (".parquet", ".pq"):
             df = pl.read_parquet(d.path)
@@ -64,48 +68,62 @@ def load_denominators(d: Denominators) -> pl.DataFrame:
         raise DenominatorError(f"{where}: cannot read ({_first_line(e)})") from None
     for col, key in ((d.key, "key"), (d.value, "value")):
         if col not in df.columns:
-            raise DenominatorError(f"{where}: column {col!r} (normalize.denominators.{key}) is "
-                                   f"missing; columns are: {', '.join(df.columns)}")
+            raise DenominatorError(
+                f"{where}: column {col!r} (normalize.denominators.{key}) is "
+                f"missing; columns are: {', '.join(df.columns)}"
+            )
     if df.height == 0:
         raise DenominatorError(f"{where}: has no rows; add one row per key")
     val = df.get_column(d.value)
     if not val.dtype.is_numeric():
-        raise DenominatorError(f"{where}: column {d.value!r} holds {val.dtype}, not numbers; "
-                               "fix the values")
+        raise DenominatorError(
+            f"{where}: column {d.value!r} holds {val.dtype}, not numbers; fix the values"
+        )
     keys = df.get_column(d.key).cast(pl.String)
     if keys.null_count():
-        raise DenominatorError(f"{where}: column {d.key!r} has an empty key; fill or remove "
-                               "that row")
+        raise DenominatorError(
+            f"{where}: column {d.key!r} has an empty key; fill or remove that row"
+        )
     dup = keys.filter(keys.is_duplicated())
     if dup.len():
-        raise DenominatorError(f"{where}: key {dup[0]!r} appears more than once in column "
-                               f"{d.key!r}; keep one row per key")
+        raise DenominatorError(
+            f"{where}: key {dup[0]!r} appears more than once in column "
+            f"{d.key!r}; keep one row per key"
+        )
     folded = keys.str.strip_chars().str.to_lowercase()
     near = folded.is_duplicated()
     if near.any():
         pair = keys.filter(near).sort().to_list()
-        raise DenominatorError(f"{where}: keys {pair[0]!r} and {pair[1]!r} differ only in case "
-                               "or padding; keep one spelling")
+        raise DenominatorError(
+            f"{where}: keys {pair[0]!r} and {pair[1]!r} differ only in case "
+            "or padding; keep one spelling"
+        )
     vf = val.cast(pl.Float64)
     bad = df.filter(vf.is_nan() | (vf < 0))
     if bad.height:
         k = bad.get_column(d.key).cast(pl.String)[0]
         v = bad.get_column(d.value)[0]
-        raise DenominatorError(f"{where}: key {k!r} has value {v!r} in column {d.value!r}; a "
-                               "denominator must be a non-negative number")
+        raise DenominatorError(
+            f"{where}: key {k!r} has value {v!r} in column {d.value!r}; a "
+            "denominator must be a non-negative number"
+        )
     inf = df.filter(vf.is_infinite())
     if inf.height:
         k = inf.get_column(d.key).cast(pl.String)[0]
         v = inf.get_column(d.value)[0]
-        raise DenominatorError(f"{where}: key {k!r} has value {v!r} in column {d.value!r}; a "
-                               "denominator must be a finite, non-negative number")
+        raise DenominatorError(
+            f"{where}: key {k!r} has value {v!r} in column {d.value!r}; a "
+            "denominator must be a finite, non-negative number"
+        )
     out = pl.DataFrame({"key": keys, DEN: vf})
     if d.on == "hex":
         cells = out.with_columns(plh3.str_to_int("key").alias("__cell"))
         if cells.get_column("__cell").null_count() or not bool(
-                cells.select(plh3.is_valid_cell("__cell").all()).item()):
-            raise DenominatorError(f"{where}: column {d.key!r} must hold H3 cells as "
-                                   "15-character hex strings")
+            cells.select(plh3.is_valid_cell("__cell").all()).item()
+        ):
+            raise DenominatorError(
+                f"{where}: column {d.key!r} must hold H3 cells as 15-character hex strings"
+            )
         out = cells.select(pl.col("__cell").alias("key"), DEN)
     return out
 
@@ -116,16 +134,22 @@ def _den_for_level(den: pl.DataFrame, d: Denominators, hex_res: int | None) -> p
     assert hex_res is not None
     res = den.select(plh3.get_resolution("key").unique()).to_series().to_list()
     if any(r < hex_res for r in res):
-        raise DenominatorError(f"{shown_path(d.path)} (normalize.denominators): cells at "
-                               f"resolution {min(res)} cannot give denominators at the finer "
-                               f"resolution {hex_res}; supply cells at resolution {hex_res} or "
-                               "finer")
-    return (den.with_columns(plh3.cell_to_parent("key", hex_res).alias("key"))
-            .group_by("key").agg(pl.col(DEN).sum()))
+        raise DenominatorError(
+            f"{shown_path(d.path)} (normalize.denominators): cells at "
+            f"resolution {min(res)} cannot give denominators at the finer "
+            f"resolution {hex_res}; supply cells at resolution {hex_res} or "
+            "finer"
+        )
+    return (
+        den.with_columns(plh3.cell_to_parent("key", hex_res).alias("key"))
+        .group_by("key")
+        .agg(pl.col(DEN).sum())
+    )
 
 
-def apply(recipe: Recipe, final: pl.DataFrame, *, den: pl.DataFrame | None,
-          hex_res: int | None) -> tuple[pl.DataFrame, NormalizeReport]:
+def apply(
+    recipe: Recipe, final: pl.DataFrame, *, den: pl.DataFrame | None, hex_res: int | None
+) -> tuple[pl.DataFrame, NormalizeReport]:
     """Add rate, share and location-quotient columns to finalized rows."""
     n = recipe.normalize
     if n is None:
@@ -141,9 +165,14 @@ def apply(recipe: Recipe, final: pl.DataFrame, *, den: pl.DataFrame | None,
             left = left.with_columns(pl.col("__key").cast(pl.String))
         joined = left.join(dl.rename({"key": "__key"}), on="__key", how="left")
         ok = pl.col(DEN).is_not_null() & (pl.col(DEN) > 0)
-        out = joined.with_columns([
-            pl.when(ok).then(pl.col(m).cast(pl.Float64) / pl.col(DEN) * n.per)
-            .alias(f"{m}_per_{n.per}") for m in n.rate_measures]).drop(["__key", DEN])
+        out = joined.with_columns(
+            [
+                pl.when(ok)
+                .then(pl.col(m).cast(pl.Float64) / pl.col(DEN) * n.per)
+                .alias(f"{m}_per_{n.per}")
+                for m in n.rate_measures
+            ]
+        ).drop(["__key", DEN])
         missing = int(joined.select((~ok).sum()).item())
         data_keys = set(left.get_column("__key").unique().to_list())
         den_keys = set(dl.get_column("key").to_list())
@@ -154,14 +183,16 @@ def apply(recipe: Recipe, final: pl.DataFrame, *, den: pl.DataFrame | None,
         report = NormalizeReport(
             rows_without_denominator=missing,
             data_only_keys=tuple(sorted(fmt(k) for k in data_keys - den_keys)),
-            denominator_only_keys=tuple(sorted(fmt(k) for k in den_keys - data_keys)))
+            denominator_only_keys=tuple(sorted(fmt(k) for k in den_keys - data_keys)),
+        )
     if n.share:
         within = _cols(recipe, n.share.within)
         exprs = []
         for m in n.share.measures:
             tot = pl.col(m).sum().over(within) if within else pl.col(m).sum()
-            exprs.append(pl.when(tot > 0).then(pl.col(m).cast(pl.Float64) / tot)
-                         .alias(f"{m}_share"))
+            exprs.append(
+                pl.when(tot > 0).then(pl.col(m).cast(pl.Float64) / tot).alias(f"{m}_share")
+            )
         out = out.with_columns(exprs)
     if n.location_quotient:
         m = n.location_quotient
@@ -177,17 +208,18 @@ def apply(recipe: Recipe, final: pl.DataFrame, *, den: pl.DataFrame | None,
     return out, report
 
 
-def _no_match(d: Denominators, key_col: str, data: list[str],
-              table: list[str]) -> DenominatorError:
+def _no_match(d: Denominators, key_col: str, data: list[str], table: list[str]) -> DenominatorError:
     """A denominators table none of whose keys occurs in the data: every rate would be
     empty, so it is an error (not a warning)."""
+
     def sample(keys: list[str]) -> str:
         return ", ".join(repr(k) for k in keys[:3]) + (" ..." if len(keys) > 3 else "")
 
     return DenominatorError(
         f"{shown_path(d.path)} (normalize.denominators): none of its {len(table):,} keys in "
         f"column {d.key!r} matches the {len(data):,} {key_col} keys in the data (data: "
-        f"{sample(data)}; table: {sample(table)}); make the table's keys match the data's")
+        f"{sample(data)}; table: {sample(table)}); make the table's keys match the data's"
+    )
 
 
 def plh3_str(cell: int) -> str:

@@ -75,8 +75,9 @@ def _as_recipe(recipe: Recipe | str | Path, overrides: Mapping[str, str] | None)
     return load_recipe(recipe, overrides=overrides)
 
 
-def _with_budget(recipe: Recipe, max_: str | int | None, on: str | None,
-                 order: Sequence[str] | None) -> Recipe:
+def _with_budget(
+    recipe: Recipe, max_: str | int | None, on: str | None, order: Sequence[str] | None
+) -> Recipe:
     """Apply budget overrides given as arguments (typed, validated like the file)."""
     if max_ is None and on is None and order is None:
         return recipe
@@ -87,18 +88,28 @@ def _with_budget(recipe: Recipe, max_: str | int | None, on: str | None,
         except ValueError as e:
             raise RecipeError(f"--budget: {e}") from None
     elif recipe.budget is None:
-        raise RecipeError(f"{recipe.file.name}: budget.max: --on and --order need a budget; "
-                          "add --budget or a [budget] table")
+        raise RecipeError(
+            f"{recipe.file.name}: budget.max: --on and --order need a budget; "
+            "add --budget or a [budget] table"
+        )
     if on is not None and on not in MEASURES:
         raise RecipeError(f"--on: {on!r} is not a measure; use raw, gzip or brotli")
     return with_budget(recipe, max=size, on=on, order=order)
 
 
-def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
-        on: str | None = None, order: Sequence[str] | None = None,
-        overrides: Mapping[str, str] | None = None, use_cache: bool = True,
-        exact: bool = False, every_level: bool = False, progress: Progress | None = None,
-        reducer: Reducer | None = None) -> FitResult:
+def fit(
+    recipe: Recipe | str | Path,
+    *,
+    budget: str | int | None = None,
+    on: str | None = None,
+    order: Sequence[str] | None = None,
+    overrides: Mapping[str, str] | None = None,
+    use_cache: bool = True,
+    exact: bool = False,
+    every_level: bool = False,
+    progress: Progress | None = None,
+    reducer: Reducer | None = None,
+) -> FitResult:
     """Choose the finest level that fits the budget; measure every candidate evaluated.
 
     With no budget (none in the recipe, none given), the finest level is chosen. ``exact``
@@ -107,8 +118,11 @@ def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
     ``every_level`` evaluates every combination of levels instead of searching.
     """
     r = _with_budget(_as_recipe(recipe, overrides), budget, on, order)
-    red = reducer if reducer is not None and _same_levels(reducer.recipe, r) else Reducer(
-        r, use_cache=use_cache, progress=progress)
+    red = (
+        reducer
+        if reducer is not None and _same_levels(reducer.recipe, r)
+        else Reducer(r, use_cache=use_cache, progress=progress)
+    )
     ladder_axes = r.ladder()
     axes = list(ladder_axes)
     b = r.budget
@@ -129,22 +143,34 @@ def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
     counted: list[tuple[Level, int]] = []
 
     def rows_at_least(level: Level) -> int:
-        return max((n for lv, n in counted
-                    if all(position[a][lv[a]] >= position[a][level[a]] for a in axes)),
-                   default=0)
+        return max(
+            (
+                n
+                for lv, n in counted
+                if all(position[a][lv[a]] >= position[a][level[a]] for a in axes)
+            ),
+            default=0,
+        )
 
-    def evaluate(level: Mapping[str, Any], *, force_exact: bool = False
-                 ) -> bsearch.Candidate:
+    def evaluate(level: Mapping[str, Any], *, force_exact: bool = False) -> bsearch.Candidate:
         level = Level.of(level)
         k = bsearch.level_key(level)
         c = cands.get(k)
-        if c is not None and not (force_exact and (c.estimated or c.gzip is None
-                                                   or (c.brotli is None and b is not None
-                                                       and b.on == "brotli"))):
+        if c is not None and not (
+            force_exact
+            and (
+                c.estimated
+                or c.gzip is None
+                or (c.brotli is None and b is not None and b.on == "brotli")
+            )
+        ):
             return c
         if use_estimates and not force_exact and b is not None:
-            per_row = [x.floor / x.rows for x in cands.values()
-                       if not x.estimated and x.rows and x.floor is not None]
+            per_row = [
+                x.floor / x.rows
+                for x in cands.values()
+                if not x.estimated and x.rows and x.floor is not None
+            ]
             if per_row:
                 bound = rows_at_least(level)
                 if bound * min(per_row) > margin * b.max:
@@ -160,8 +186,9 @@ def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
                     red.forget(level)
                     return c
         red.progress(f"measuring {bsearch.describe_level(level)}")
-        c = red.candidate(level, exact=exact or force_exact,
-                          on=b.on if b else None, limit=b.max if b else None)
+        c = red.candidate(
+            level, exact=exact or force_exact, on=b.on if b else None, limit=b.max if b else None
+        )
         cands[k] = c
         counted.append((level, c.rows))
         if c.fits is False and not every_level:
@@ -185,11 +212,11 @@ def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
         chosen = evaluate(chosen_level, force_exact=True)
         if b is not None and not chosen.fits:
             # A quick judgement was wrong (never seen in practice): measure everything.
-            return fit(r, exact=True, every_level=every_level, progress=progress,
-                       reducer=red)
+            return fit(r, exact=True, every_level=every_level, progress=progress, reducer=red)
         if b is not None:
-            chosen_level = _confirm_neighbours(ladder_axes, chosen_level, cands, evaluate,
-                                               b.on, b.max)
+            chosen_level = _confirm_neighbours(
+                ladder_axes, chosen_level, cands, evaluate, b.on, b.max
+            )
             chosen = evaluate(chosen_level, force_exact=True)
         chosen.chosen = True
     candidates = list(cands.values())
@@ -198,14 +225,21 @@ def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
         red.store.keep_payload(chosen_level, red.payload(chosen_level))
     red.store.save()
     frontier = bsearch.frontier_frame(candidates, axes)
-    result = FitResult(recipe=r, level=chosen_level, candidates=candidates, frontier=frontier,
-                       chosen=chosen, budget=b,
-                       payload=red.payload(chosen_level) if chosen_level else None,
-                       rows=red.built_rows(chosen_level) if chosen_level else None,
-                       record=red.record(chosen_level) if chosen_level else None,
-                       source=red.source, partial_from_cache=red.partial_from_cache,
-                       accounting=red.accounting(chosen_level) if chosen_level else {},
-                       reducer=red)
+    result = FitResult(
+        recipe=r,
+        level=chosen_level,
+        candidates=candidates,
+        frontier=frontier,
+        chosen=chosen,
+        budget=b,
+        payload=red.payload(chosen_level) if chosen_level else None,
+        rows=red.built_rows(chosen_level) if chosen_level else None,
+        record=red.record(chosen_level) if chosen_level else None,
+        source=red.source,
+        partial_from_cache=red.partial_from_cache,
+        accounting=red.accounting(chosen_level) if chosen_level else {},
+        reducer=red,
+    )
     return result
 
 
@@ -214,10 +248,14 @@ def fit(recipe: Recipe | str | Path, *, budget: str | int | None = None,
 NEIGHBOUR_MARGIN = 0.10
 
 
-def _confirm_neighbours(ladder: Mapping[str, Sequence[Any]], chosen: Level,
-                        cands: Mapping[tuple[Any, ...], bsearch.Candidate],
-                        evaluate: Callable[..., bsearch.Candidate], on: Measure,
-                        limit: int) -> Level:
+def _confirm_neighbours(
+    ladder: Mapping[str, Sequence[Any]],
+    chosen: Level,
+    cands: Mapping[tuple[Any, ...], bsearch.Candidate],
+    evaluate: Callable[..., bsearch.Candidate],
+    on: Measure,
+    limit: int,
+) -> Level:
     """Measure exactly every one-step-finer neighbour of ``chosen`` whose verdict came from a
     fast compression or a row count and whose size could be within 10% of the budget; move
     to one that fits (and check its neighbours in turn)."""
@@ -244,6 +282,7 @@ def _confirm_neighbours(ladder: Mapping[str, Sequence[Any]], chosen: Level,
 
 def _same_levels(a: Recipe, b: Recipe) -> bool:
     """True when two recipes differ at most in their budget (levels can be shared)."""
+
     def strip(r: Recipe) -> Recipe:
         return replace(r, budget=None, content_hash="", overrides=())
 
@@ -261,10 +300,12 @@ def smallest_message(result: FitResult) -> str:
     b = result.budget
     assert b is not None
     coarsest = Level.of({a: lv[-1] for a, lv in result.recipe.ladder().items()})
-    smallest = next(c for c in result.candidates
-                    if bsearch.level_key(c.level) == bsearch.level_key(coarsest))
-    return bsearch.nothing_fits_message(_recipe_label(result.recipe), b.max, b.on, smallest,
-                                       list(result.recipe.ladder()))
+    smallest = next(
+        c for c in result.candidates if bsearch.level_key(c.level) == bsearch.level_key(coarsest)
+    )
+    return bsearch.nothing_fits_message(
+        _recipe_label(result.recipe), b.max, b.on, smallest, list(result.recipe.ladder())
+    )
 
 
 def _recipe_label(recipe: Recipe) -> str:
@@ -295,10 +336,17 @@ def output_path(recipe: Recipe, out_dir: Path | None) -> Path:
     return resolve_output(Path("out"), f"{recipe.name}{ext}")
 
 
-def run(recipe: Recipe | str | Path, *, out_dir: Path | None = None,
-        budget: str | int | None = None, on: str | None = None,
-        overrides: Mapping[str, str] | None = None, write_anyway: bool = False,
-        use_cache: bool = True, progress: Progress | None = None) -> RunResult:
+def run(
+    recipe: Recipe | str | Path,
+    *,
+    out_dir: Path | None = None,
+    budget: str | int | None = None,
+    on: str | None = None,
+    overrides: Mapping[str, str] | None = None,
+    write_anyway: bool = False,
+    use_cache: bool = True,
+    progress: Progress | None = None,
+) -> RunResult:
     """Fit a recipe and publish its payload and manifest (see :func:`fit`).
 
     Raises :class:`~reduce.errors.BudgetError` when nothing fits, after writing the smallest
@@ -318,11 +366,20 @@ def run(recipe: Recipe | str | Path, *, out_dir: Path | None = None,
         coarsest = Level.of({a: lv[-1] for a, lv in result.recipe.ladder().items()})
         red = result.reducer
         assert red is not None
-        forced = next(c for c in result.candidates
-                      if bsearch.level_key(c.level) == bsearch.level_key(coarsest))
+        forced = next(
+            c
+            for c in result.candidates
+            if bsearch.level_key(c.level) == bsearch.level_key(coarsest)
+        )
         forced.chosen = True
-        result = replace(result, level=coarsest, chosen=forced, payload=red.payload(coarsest),
-                         rows=red.rows(coarsest), accounting=red.accounting(coarsest))
+        result = replace(
+            result,
+            level=coarsest,
+            chosen=forced,
+            payload=red.payload(coarsest),
+            rows=red.rows(coarsest),
+            accounting=red.accounting(coarsest),
+        )
         manifest = build_manifest(result, path)
         publish_run(r, path, result.payload or b"", manifest)
         return RunResult(result, path, manifest, over_budget=True)

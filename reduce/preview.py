@@ -110,8 +110,7 @@ def load_table(path: Path) -> Table:
     except FileNotFoundError:
         raise PreviewError(f"{path}: payload file not found; check the path") from None
     except IsADirectoryError:
-        raise PreviewError(f"{path}: is a folder; give payload files (x.json, x.geojson)") \
-            from None
+        raise PreviewError(f"{path}: is a folder; give payload files (x.json, x.geojson)") from None
     except OSError as e:
         raise PreviewError(f"{path}: cannot read ({e.strerror})") from None
     return table_from_bytes(path, data)
@@ -122,8 +121,9 @@ def table_from_bytes(path: Path, data: bytes) -> Table:
     try:
         doc = orjson.loads(data)
     except orjson.JSONDecodeError:
-        raise PreviewError(f"{path}: is not valid JSON; preview draws JSON payloads "
-                           "(columns, rows) and GeoJSON") from None
+        raise PreviewError(
+            f"{path}: is not valid JSON; preview draws JSON payloads (columns, rows) and GeoJSON"
+        ) from None
     if isinstance(doc, dict) and doc.get("type") == "FeatureCollection":
         return _geojson_table(path, doc, data)
     if isinstance(doc, dict) and str(doc.get("format", "")).startswith("reduce.columns/"):
@@ -138,18 +138,20 @@ def table_from_bytes(path: Path, data: bytes) -> Table:
                 v.append(r.get(k))
         keys, measures = _split(cols, ())
         return Table(path, "rows", path.stem, {}, len(doc), cols, keys, measures, data=data)
-    raise PreviewError(f"{path}: is not a payload preview can draw; give a reduce columns "
-                       "payload, a rows payload (a list of objects) or a GeoJSON "
-                       "FeatureCollection")
+    raise PreviewError(
+        f"{path}: is not a payload preview can draw; give a reduce columns "
+        "payload, a rows payload (a list of objects) or a GeoJSON "
+        "FeatureCollection"
+    )
 
 
-def _split(cols: Mapping[str, list[Any]], dict_names: Iterable[str]) -> tuple[list[str],
-                                                                                list[str]]:
+def _split(cols: Mapping[str, list[Any]], dict_names: Iterable[str]) -> tuple[list[str], list[str]]:
     dn = set(dict_names)
     keys, measures = [], []
     for name, values in cols.items():
-        numeric = all(v is None or (isinstance(v, (int, float)) and not isinstance(v, bool))
-                      for v in values)
+        numeric = all(
+            v is None or (isinstance(v, (int, float)) and not isinstance(v, bool)) for v in values
+        )
         if name in _KEY_NAMES or name in dn or not numeric:
             keys.append(name)
         else:
@@ -162,25 +164,39 @@ def _columns_table(path: Path, doc: dict[str, Any], data: bytes) -> Table:
     rows = doc.get("rows")
     dicts = doc.get("dictionaries") or {}
     if not isinstance(columns, dict) or not isinstance(rows, int) or not isinstance(dicts, dict):
-        raise PreviewError(f"{path}: columns payload without columns or rows; write it again "
-                           "with reduce run")
+        raise PreviewError(
+            f"{path}: columns payload without columns or rows; write it again with reduce run"
+        )
     cols: dict[str, list[Any]] = {}
     for name, values in columns.items():
         if not isinstance(values, list) or len(values) != rows:
-            raise PreviewError(f"{path}: column {name!r} does not have {rows} entries; write "
-                               "the payload again with reduce run")
+            raise PreviewError(
+                f"{path}: column {name!r} does not have {rows} entries; write "
+                "the payload again with reduce run"
+            )
         if name in dicts:
             labels = dicts[name]
             try:
                 values = [None if i is None else labels[i] for i in values]
             except (IndexError, TypeError):
-                raise PreviewError(f"{path}: column {name!r} holds an index outside its "
-                                   "dictionary; write the payload again with reduce run") \
-                    from None
+                raise PreviewError(
+                    f"{path}: column {name!r} holds an index outside its "
+                    "dictionary; write the payload again with reduce run"
+                ) from None
         cols[name] = values
     keys, measures = _split(cols, dicts)
-    return Table(path, "columns", str(doc.get("recipe", path.stem)), dict(doc.get("level") or {}),
-                 rows, cols, keys, measures, meta=dict(doc.get("meta") or {}), data=data)
+    return Table(
+        path,
+        "columns",
+        str(doc.get("recipe", path.stem)),
+        dict(doc.get("level") or {}),
+        rows,
+        cols,
+        keys,
+        measures,
+        meta=dict(doc.get("meta") or {}),
+        data=data,
+    )
 
 
 def _geojson_table(path: Path, doc: dict[str, Any], data: bytes) -> Table:
@@ -201,9 +217,19 @@ def _geojson_table(path: Path, doc: dict[str, Any], data: bytes) -> Table:
         geoms.append(_polygons((f or {}).get("geometry")))
     keys, measures = _split(cols, ())
     assert isinstance(ours, dict)
-    return Table(path, "geojson", str(ours.get("recipe", path.stem)),
-                 dict(ours.get("level") or {}), len(feats), cols, keys, measures, geoms,
-                 meta=dict(ours.get("meta") or {}), data=data)
+    return Table(
+        path,
+        "geojson",
+        str(ours.get("recipe", path.stem)),
+        dict(ours.get("level") or {}),
+        len(feats),
+        cols,
+        keys,
+        measures,
+        geoms,
+        meta=dict(ours.get("meta") or {}),
+        data=data,
+    )
 
 
 def _polygons(geom: Any) -> list[list[list[float]]]:
@@ -214,8 +240,9 @@ def _polygons(geom: Any) -> list[list[list[float]]]:
     if t == "Polygon" and isinstance(c, list):
         return [ring for ring in c if isinstance(ring, list)]
     if t == "MultiPolygon" and isinstance(c, list):
-        return [ring for poly in c if isinstance(poly, list) for ring in poly
-                if isinstance(ring, list)]
+        return [
+            ring for poly in c if isinstance(poly, list) for ring in poly if isinstance(ring, list)
+        ]
     return []
 
 
@@ -247,8 +274,11 @@ def choose_view(t: Table) -> View:
 
 
 def _num(v: Any) -> float | None:
-    return float(v) if isinstance(v, (int, float)) and not isinstance(v, bool) \
-        and math.isfinite(v) else None
+    return (
+        float(v)
+        if isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
+        else None
+    )
 
 
 @dataclass
@@ -265,8 +295,13 @@ def map_shapes(t: Table, v: View) -> list[Shape]:
         out = []
         for i, rings in enumerate(t.geometry):
             label = " ".join(str(t.columns[k][i]) for k in t.keys) or f"feature {i}"
-            out.append(Shape([[(float(p[0]), float(p[1])) for p in r] for r in rings],
-                             _num(vals[i]) if vals else None, label))
+            out.append(
+                Shape(
+                    [[(float(p[0]), float(p[1])) for p in r] for r in rings],
+                    _num(vals[i]) if vals else None,
+                    label,
+                )
+            )
         return out
     import h3
 
@@ -351,8 +386,11 @@ def payload_sizes(t: Table) -> dict[str, int | None]:
             return {"raw": b.get("raw"), "gzip": b.get("gzip"), "brotli": b.get("brotli")}
     except (OSError, orjson.JSONDecodeError, AttributeError):
         pass
-    return {"raw": len(t.data), "gzip": len(gzip_bytes(t.data)),
-            "brotli": len(brotli_bytes(t.data)) if len(t.data) <= 4_000_000 else None}
+    return {
+        "raw": len(t.data),
+        "gzip": len(gzip_bytes(t.data)),
+        "brotli": len(brotli_bytes(t.data)) if len(t.data) <= 4_000_000 else None,
+    }
 
 
 def title_lines(t: Table, sizes: Mapping[str, int | None]) -> tuple[str, str]:
@@ -423,15 +461,23 @@ def _draw_map(d: Any, shapes: list[Shape], v: View) -> None:
     if pts:
         proj = projection(pts, _PLOT)
         for s in shapes:
-            colour = NO_DATA if s.value is None or rng is None else scale_colour(
-                1.0 if rng[1] == rng[0] else (s.value - rng[0]) / (rng[1] - rng[0]))
+            colour = (
+                NO_DATA
+                if s.value is None or rng is None
+                else scale_colour(
+                    1.0 if rng[1] == rng[0] else (s.value - rng[0]) / (rng[1] - rng[0])
+                )
+            )
             for i, r in enumerate(s.rings):
                 xy = [proj(lon, lat) for lon, lat in r]
                 if len(xy) >= 3:
                     # Outer ring filled; later rings of a Polygon are holes (RFC 7946 3.1.6),
                     # drawn in the background. A MultiPolygon's rings are all filled here.
-                    d.polygon(xy, fill=colour if i == 0 or len(s.rings) == 1 or
-                              _is_outer(r) else _BG, outline=None)
+                    d.polygon(
+                        xy,
+                        fill=colour if i == 0 or len(s.rings) == 1 or _is_outer(r) else _BG,
+                        outline=None,
+                    )
     _legend(d, rng, v.value or "")
 
 
@@ -467,8 +513,9 @@ def _legend(d: Any, rng: tuple[float, float] | None, name: str) -> None:
         d.line([(x0, y0 + i), (x0 + 18, y0 + i)], fill=scale_colour(1 - i / (bar_h - 1)))
     if rng is not None:
         d.text((x0 + 26, y0 - 6), _fmt(rng[1]), fill=_INK, font=_font(12))
-        d.text((x0 + 26, y0 + bar_h // 2 - 6), _fmt((rng[0] + rng[1]) / 2), fill=_INK,
-               font=_font(12))
+        d.text(
+            (x0 + 26, y0 + bar_h // 2 - 6), _fmt((rng[0] + rng[1]) / 2), fill=_INK, font=_font(12)
+        )
         d.text((x0 + 26, y0 + bar_h - 8), _fmt(rng[0]), fill=_INK, font=_font(12))
     d.text((x0, y0 + bar_h + 10), f"scale: {SCALE_NAME}", fill=_MUTED, font=_font(11))
     d.rectangle([x0, y0 + bar_h + 30, x0 + 18, y0 + bar_h + 42], fill=NO_DATA)
@@ -489,8 +536,12 @@ def _draw_bars(d: Any, bars: list[tuple[str, float]], v: View) -> None:
         w = max(0.0, x) / hi * (right - left)
         d.rectangle([left, y + 2, left + w, y + step - 3], fill=BAR_COLOUR)
         d.text((left + w + 6, y + step / 2 - 7), _fmt(x), fill=_MUTED, font=f)
-    d.text((_PLOT[0], bottom + 8), f"{v.value or 'rows'}, top {len(bars)} by value",
-           fill=_MUTED, font=_font(12))
+    d.text(
+        (_PLOT[0], bottom + 8),
+        f"{v.value or 'rows'}, top {len(bars)} by value",
+        fill=_MUTED,
+        font=_font(12),
+    )
 
 
 def _hex_rgb(h: str) -> tuple[int, int, int]:
@@ -517,8 +568,13 @@ def _draw_lines(d: Any, t: Table, v: View) -> None:
         d.text((x - 30, bottom + 6), _date(s, zone), fill=_MUTED, font=f)
     for j, (cat, ys) in enumerate(series):
         colour = _hex_rgb(CATEGORY_COLOURS[j % len(CATEGORY_COLOURS)])
-        xy = [(round(left + (b - t0) / span * (right - left), 2),
-               round(bottom - y / hi * (bottom - top), 2)) for b, y in zip(bins, ys)]
+        xy = [
+            (
+                round(left + (b - t0) / span * (right - left), 2),
+                round(bottom - y / hi * (bottom - top), 2),
+            )
+            for b, y in zip(bins, ys)
+        ]
         if len(xy) == 1:
             d.ellipse([xy[0][0] - 2, xy[0][1] - 2, xy[0][0] + 2, xy[0][1] + 2], fill=colour)
         else:
@@ -526,8 +582,9 @@ def _draw_lines(d: Any, t: Table, v: View) -> None:
         ly = _PLOT[1] + 20 + j * 20
         d.line([(WIDTH - 150, ly + 7), (WIDTH - 130, ly + 7)], fill=colour, width=3)
         d.text((WIDTH - 124, ly), str(cat)[:18], fill=_INK, font=f)
-    d.text((WIDTH - 150, _PLOT[1]), f"{v.value or 'rows'} by {v.key or 'time'}", fill=_MUTED,
-           font=f)
+    d.text(
+        (WIDTH - 150, _PLOT[1]), f"{v.value or 'rows'} by {v.key or 'time'}", fill=_MUTED, font=f
+    )
 
 
 def _zone(name: Any) -> dt.tzinfo:
@@ -563,15 +620,23 @@ def view_spec(t: Table, v: View) -> dict[str, Any]:
     from reduce.audit import CANVAS_MAX_ELEMENTS, SVG_MAX_ELEMENTS
 
     spec: dict[str, Any] = {
-        "kind": v.kind, "value": v.value, "key": v.key, "labels": list(v.labels),
-        "layout": t.layout, "scale": [scale_colour(i / 32) for i in range(33)],
-        "scale_name": SCALE_NAME, "categories": list(CATEGORY_COLOURS),
-        "top_lines": TOP_LINES, "top_bars": TOP_BARS,
-        "svg_max": SVG_MAX_ELEMENTS, "canvas_max": CANVAS_MAX_ELEMENTS,
+        "kind": v.kind,
+        "value": v.value,
+        "key": v.key,
+        "labels": list(v.labels),
+        "layout": t.layout,
+        "scale": [scale_colour(i / 32) for i in range(33)],
+        "scale_name": SCALE_NAME,
+        "categories": list(CATEGORY_COLOURS),
+        "top_lines": TOP_LINES,
+        "top_bars": TOP_BARS,
+        "svg_max": SVG_MAX_ELEMENTS,
+        "canvas_max": CANVAS_MAX_ELEMENTS,
     }
     if v.kind == "map" and v.key == "hex":
-        spec["cells"] = {s.label: [[round(x, 6), round(y, 6)] for x, y in s.rings[0]]
-                         for s in map_shapes(t, v)}
+        spec["cells"] = {
+            s.label: [[round(x, 6), round(y, 6)] for x, y in s.rings[0]] for s in map_shapes(t, v)
+        }
     return spec
 
 
@@ -585,9 +650,15 @@ def render_html(t: Table, *, sizes: Mapping[str, int | None] | None = None) -> b
     reader = static_text("columns-reader.js")
     page = static_text("preview-page.js")
     text = _PAGE.format(
-        title=html.escape(head), sub=html.escape(sub), payload=_script_json(t.data),
-        spec=_script_json(spec), reader=reader, page=page,
-        svg=f"{view_spec_limits()[0]:,}", canvas=f"{view_spec_limits()[1]:,}")
+        title=html.escape(head),
+        sub=html.escape(sub),
+        payload=_script_json(t.data),
+        spec=_script_json(spec),
+        reader=reader,
+        page=page,
+        svg=f"{view_spec_limits()[0]:,}",
+        canvas=f"{view_spec_limits()[1]:,}",
+    )
     return text.encode("utf-8")
 
 
@@ -658,8 +729,9 @@ def write_previews(payload: Path, *, out_dir: Path | None = None, reader: bool =
     try:
         folder.mkdir(parents=True, exist_ok=True)
     except OSError as e:
-        raise PreviewError(f"{folder}: cannot create the preview folder ({e.strerror}); "
-                           "choose another --out") from None
+        raise PreviewError(
+            f"{folder}: cannot create the preview folder ({e.strerror}); choose another --out"
+        ) from None
     files = {png: render_png(t, sizes=sizes), page: render_html(t, sizes=sizes)}
     if reader:
         files[folder / "columns-reader.js"] = static_text("columns-reader.js").encode("utf-8")
@@ -679,8 +751,10 @@ def write_atomic(path: Path, data: bytes) -> None:
         os.replace(tmp, path)
     except OSError as e:
         tmp.unlink(missing_ok=True)
-        raise PreviewError(f"{path}: cannot write the preview ({e.strerror}); check the "
-                           "folder's permissions and free space") from None
+        raise PreviewError(
+            f"{path}: cannot write the preview ({e.strerror}); check the "
+            "folder's permissions and free space"
+        ) from None
 
 
 def expand_payloads(paths: Sequence[Path]) -> list[Path]:
@@ -692,13 +766,19 @@ def expand_payloads(paths: Sequence[Path]) -> list[Path]:
     out: list[Path] = []
     for p in paths:
         if p.is_dir():
-            found = sorted(q for q in p.iterdir() if q.is_file()
-                           and q.suffix in (".json", ".geojson")
-                           and not q.name.endswith(".manifest.json")
-                           and manifest_path(q).is_file())
+            found = sorted(
+                q
+                for q in p.iterdir()
+                if q.is_file()
+                and q.suffix in (".json", ".geojson")
+                and not q.name.endswith(".manifest.json")
+                and manifest_path(q).is_file()
+            )
             if not found:
-                raise PreviewError(f"{p}: no payloads (*.json, *.geojson with a manifest "
-                                   "beside them) in this folder; name payload files instead")
+                raise PreviewError(
+                    f"{p}: no payloads (*.json, *.geojson with a manifest "
+                    "beside them) in this folder; name payload files instead"
+                )
             out.extend(found)
         elif not p.exists():
             raise PreviewError(f"{p}: payload file not found; check the path")

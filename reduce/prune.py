@@ -43,11 +43,15 @@ def _relabel(recipe: Recipe, p: Partial, fold: pl.DataFrame, on: list[str]) -> P
     assert recipe.top is not None
     rest = recipe.top.rest
     marker = fold.select(on).unique().with_columns(pl.lit(True).alias("__fold"))
-    hit = (p.table.select(on).join(marker, on=on, how="left", nulls_equal=True,
-                                   maintain_order="left").get_column("__fold").fill_null(False))
-    mapped = p.table.with_columns([
-        pl.when(hit).then(pl.lit(rest)).otherwise(pl.col(c)).alias(c)
-        for c in recipe.categories])
+    hit = (
+        p.table.select(on)
+        .join(marker, on=on, how="left", nulls_equal=True, maintain_order="left")
+        .get_column("__fold")
+        .fill_null(False)
+    )
+    mapped = p.table.with_columns(
+        [pl.when(hit).then(pl.lit(rest)).otherwise(pl.col(c)).alias(c) for c in recipe.categories]
+    )
     return relabel(recipe, p, mapped)
 
 
@@ -62,9 +66,11 @@ def check_rest_label(recipe: Recipe, p: Partial | pl.LazyFrame) -> None:
     clash = pl.all_horizontal([pl.col(c) == rest for c in recipe.categories])
     rows = p.lazy() if isinstance(p, pl.LazyFrame) else p.table.lazy()
     if rows.filter(clash).select(pl.len()).collect(engine="streaming").item():
-        raise SourceError(f"{recipe.file.name}: prune.top.rest: the label {rest!r} is also a "
-                          f"value of column {recipe.categories[0]!r} in the data; choose "
-                          "another rest label")
+        raise SourceError(
+            f"{recipe.file.name}: prune.top.rest: the label {rest!r} is also a "
+            f"value of column {recipe.categories[0]!r} in the data; choose "
+            "another rest label"
+        )
 
 
 def rank_rows(recipe: Recipe, p: Partial) -> pl.Series:
@@ -78,22 +84,28 @@ def rank_rows(recipe: Recipe, p: Partial) -> pl.Series:
     cats = list(recipe.categories)
     ranked_keys = [*within, *cats]
     rank_src = p if list(p.keys) == ranked_keys else regroup(recipe, p, [], ranked_keys)
-    scores = finalize(recipe, rank_src, only=[top.by]).select(
-        [*ranked_keys, pl.col(top.by).alias("__by")]).with_row_index("__row")
-    order = scores.sort(["__by", *cats], descending=[True] + [False] * len(cats),
-                        nulls_last=True)
+    scores = (
+        finalize(recipe, rank_src, only=[top.by])
+        .select([*ranked_keys, pl.col(top.by).alias("__by")])
+        .with_row_index("__row")
+    )
+    order = scores.sort(["__by", *cats], descending=[True] + [False] * len(cats), nulls_last=True)
     ranked = order.with_columns(
         (pl.int_range(pl.len()).over(within) if within else pl.int_range(pl.len()))
-        .cast(pl.UInt32).alias("__rank")).drop("__by")
+        .cast(pl.UInt32)
+        .alias("__rank")
+    ).drop("__by")
     if rank_src is p:
         # Scatter the ranks back to the table's row order.
         out = pl.zeros(p.table.height, dtype=pl.UInt32, eager=True).alias("__rank")
         return out.scatter(ranked.get_column("__row"), ranked.get_column("__rank"))
     ranked = ranked.drop("__row")
     # Every row of a (within, category) group shares that category's rank.
-    return (p.table.select(ranked_keys).join(ranked, on=ranked_keys, how="left",
-                                             nulls_equal=True, maintain_order="left")
-            .get_column("__rank"))
+    return (
+        p.table.select(ranked_keys)
+        .join(ranked, on=ranked_keys, how="left", nulls_equal=True, maintain_order="left")
+        .get_column("__rank")
+    )
 
 
 def top_k(recipe: Recipe, p: Partial, k: int, ranks: pl.Series | None = None) -> Partial:
@@ -104,9 +116,9 @@ def top_k(recipe: Recipe, p: Partial, k: int, ranks: pl.Series | None = None) ->
     if not fold.any():
         return p
     rest = recipe.top.rest
-    mapped = p.table.with_columns([
-        pl.when(fold).then(pl.lit(rest)).otherwise(pl.col(c)).alias(c)
-        for c in recipe.categories])
+    mapped = p.table.with_columns(
+        [pl.when(fold).then(pl.lit(rest)).otherwise(pl.col(c)).alias(c) for c in recipe.categories]
+    )
     return relabel(recipe, p, mapped)
 
 

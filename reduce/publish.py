@@ -65,8 +65,9 @@ _MANIFEST_MAX_BYTES = 64 * 1024 * 1024
 _TMP_RE = re.compile(r"\.(?P<final>.+)\.(?P<pid>[0-9]{1,10})\.tmp")
 # Pre-compressed siblings of a payload, written in its commit: x.json.gz, x.json.br.
 SIBLING_SUFFIXES = (".gz", ".br")
-_OUR_ENDINGS = tuple(e + s for e in (".json", ".geojson", ".csv") for s in ("", *SIBLING_SUFFIXES)) \
-    + (_JOURNAL_SUFFIX,)
+_OUR_ENDINGS = tuple(
+    e + s for e in (".json", ".geojson", ".csv") for s in ("", *SIBLING_SUFFIXES)
+) + (_JOURNAL_SUFFIX,)
 
 
 def manifest_path(payload: Path) -> Path:
@@ -84,14 +85,23 @@ def _tmp_name(final: str, pid: int) -> str:
 
 def resolve_output(folder: Path, file_name: str) -> Path:
     """The payload path ``folder/file_name``; refuses names that would leave the folder."""
-    if not file_name or file_name in (".", "..") or "/" in file_name or "\\" in file_name \
-            or "\0" in file_name:
-        raise OutputError(f"{folder}: output file name {file_name!r} must be a plain file "
-                          "name inside the output folder")
+    if (
+        not file_name
+        or file_name in (".", "..")
+        or "/" in file_name
+        or "\\" in file_name
+        or "\0" in file_name
+    ):
+        raise OutputError(
+            f"{folder}: output file name {file_name!r} must be a plain file "
+            "name inside the output folder"
+        )
     target = (folder / file_name).resolve()
     if target.parent != folder.resolve():
-        raise OutputError(f"{folder}: output file {file_name!r} resolves outside the output "
-                          "folder; write inside it")
+        raise OutputError(
+            f"{folder}: output file {file_name!r} resolves outside the output "
+            "folder; write inside it"
+        )
     return folder / file_name
 
 
@@ -129,32 +139,40 @@ def check_target(path: Path, *, create: bool = True) -> None:
         try:
             folder.mkdir(parents=True, exist_ok=True)
         except OSError as e:
-            raise OutputError(f"{folder}: cannot create the output folder ({e.strerror}); "
-                              "choose another --out") from None
+            raise OutputError(
+                f"{folder}: cannot create the output folder ({e.strerror}); choose another --out"
+            ) from None
     else:
         at = folder
         while not at.exists() and at.parent != at:
             at = at.parent
         if not at.is_dir():
             why = "File exists" if at == folder else "Not a directory"
-            raise OutputError(f"{folder}: cannot create the output folder ({why}); choose "
-                              "another --out")
+            raise OutputError(
+                f"{folder}: cannot create the output folder ({why}); choose another --out"
+            )
         if at != folder:
             if not os.access(at, os.W_OK | os.X_OK):
-                raise OutputError(f"{folder}: cannot create the output folder (Permission "
-                                  "denied); choose another --out")
+                raise OutputError(
+                    f"{folder}: cannot create the output folder (Permission "
+                    "denied); choose another --out"
+                )
             return
     if not os.access(folder, os.W_OK | os.X_OK):
-        raise OutputError(f"{folder}: the output folder is not writable; fix its permissions "
-                          "or choose another --out")
+        raise OutputError(
+            f"{folder}: the output folder is not writable; fix its permissions "
+            "or choose another --out"
+        )
     for j in journals(folder):
         _plan(j)  # a journal the commit would refuse fails the run now, not after the scan
     for p in (path, manifest_path(path)):
         if p.is_dir():
             raise OutputError(f"{p}: is a folder; choose another output path")
     if path.exists() and not _is_ours(path):
-        raise OutputError(f"{path}: exists and was not written by reduce; move it away or "
-                          "choose another output path")
+        raise OutputError(
+            f"{path}: exists and was not written by reduce; move it away or "
+            "choose another output path"
+        )
     man = manifest_path(path)
     if man.exists() and not _is_manifest(man):
         raise OutputError(f"{man}: exists and is not a reduce manifest; move it away")
@@ -167,8 +185,9 @@ def _write_tmp(path: Path, data: bytes) -> Path:
         with contextlib.suppress(FileNotFoundError):
             if stat.S_ISREG(os.lstat(tmp).st_mode):
                 tmp.unlink()  # our own leftover (same pid: a pid reused after a crash)
-        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW | os.O_CLOEXEC,
-                     0o644)
+        fd = os.open(
+            tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL | os.O_NOFOLLOW | os.O_CLOEXEC, 0o644
+        )
         with open(fd, "wb") as f:
             f.write(data)
             f.flush()
@@ -177,8 +196,9 @@ def _write_tmp(path: Path, data: bytes) -> Path:
         with contextlib.suppress(OSError):
             if stat.S_ISREG(os.lstat(tmp).st_mode):
                 tmp.unlink()
-        raise OutputError(f"{path.parent}: cannot write ({e.strerror or e}); check free "
-                          "space and permissions") from None
+        raise OutputError(
+            f"{path.parent}: cannot write ({e.strerror or e}); check free space and permissions"
+        ) from None
     except BaseException:
         with contextlib.suppress(OSError):
             tmp.unlink()
@@ -210,8 +230,9 @@ def lock_wait() -> float:
                 return value
         except ValueError:
             pass
-        raise OutputError(f"${LOCK_WAIT_ENV}: {text!r} is not a number of seconds; set it to "
-                          "e.g. 30 or unset it")
+        raise OutputError(
+            f"${LOCK_WAIT_ENV}: {text!r} is not a number of seconds; set it to e.g. 30 or unset it"
+        )
     return LOCK_WAIT_SECONDS
 
 
@@ -235,14 +256,15 @@ def _open_lock(folder: Path, *, write: bool) -> int | None:
         if e.errno == errno.ELOOP:
             raise OutputError(f"{path}: is a link, not reduce's lock file; remove it") from None
         if write:
-            raise OutputError(f"{folder}: cannot create the lock file {LOCK_NAME} "
-                              f"({e.strerror}); fix the folder's permissions") from None
+            raise OutputError(
+                f"{folder}: cannot create the lock file {LOCK_NAME} "
+                f"({e.strerror}); fix the folder's permissions"
+            ) from None
         return None
 
 
 @contextlib.contextmanager
-def folder_lock(folder: Path, *, shared: bool = False,
-                wait: float | None = None) -> Iterator[None]:
+def folder_lock(folder: Path, *, shared: bool = False, wait: float | None = None) -> Iterator[None]:
     """Hold the folder's lock (exclusive to publish or recover, shared to read a payload
     with its manifest), waiting up to ``wait`` seconds (default :func:`lock_wait`)."""
     fd = _open_lock(folder, write=not shared)
@@ -259,13 +281,16 @@ def folder_lock(folder: Path, *, shared: bool = False,
                 break
             except OSError as e:
                 if not isinstance(e, BlockingIOError):  # a file system without locks
-                    raise OutputError(f"{folder}: cannot lock {LOCK_NAME} ({e.strerror}); "
-                                      "publish to a local folder") from None
+                    raise OutputError(
+                        f"{folder}: cannot lock {LOCK_NAME} ({e.strerror}); "
+                        "publish to a local folder"
+                    ) from None
                 if time.monotonic() >= deadline:
                     raise OutputError(
                         f"{folder}: another reduce run ({_holder(fd)}) holds the output "
                         f"folder's lock; waited {wait if wait is not None else lock_wait():g} "
-                        f"s (${LOCK_WAIT_ENV}); try again when it has finished") from None
+                        f"s (${LOCK_WAIT_ENV}); try again when it has finished"
+                    ) from None
                 time.sleep(pause)
                 pause = min(pause * 2, 0.2)
         if not shared:
@@ -292,15 +317,16 @@ def reading(folder: Path, *, wait: float | None = None) -> Iterator[None]:
 def journals(folder: Path) -> list[Path]:
     """The commit journals in ``folder`` (interrupted commits), sorted."""
     with contextlib.suppress(OSError):
-        return sorted(p for p in folder.glob(f".*{_JOURNAL_SUFFIX}")
-                      if p.name != _JOURNAL_SUFFIX)
+        return sorted(p for p in folder.glob(f".*{_JOURNAL_SUFFIX}") if p.name != _JOURNAL_SUFFIX)
     return []
 
 
 def _refuse(journal: Path, entry: object, why: str) -> OutputError:
-    return OutputError(f"{journal}: commit journal entry {entry!r} is not one reduce writes "
-                       f"({why}); nothing was moved: remove the journal if reduce did not "
-                       "write it")
+    return OutputError(
+        f"{journal}: commit journal entry {entry!r} is not one reduce writes "
+        f"({why}); nothing was moved: remove the journal if reduce did not "
+        "write it"
+    )
 
 
 def _regular(path: Path) -> bool | None:
@@ -315,7 +341,7 @@ def _plan(journal: Path) -> list[tuple[Path, Path]]:
     """The renames a journal asks for, after checking it says exactly what :func:`publish`
     writes; raises :class:`OutputError` naming the bad entry otherwise."""
     folder = journal.parent
-    payload_name = journal.name[1:-len(_JOURNAL_SUFFIX)]
+    payload_name = journal.name[1 : -len(_JOURNAL_SUFFIX)]
     if payload_name in ("", ".", "..") or not journal.name.startswith("."):
         raise _refuse(journal, journal.name, "not the journal of a payload name")
     if not _regular(journal):
@@ -327,31 +353,45 @@ def _plan(journal: Path) -> list[tuple[Path, Path]]:
     except (OSError, orjson.JSONDecodeError) as e:
         raise _refuse(journal, journal.name, f"unreadable: {e}") from None
     moves = plan.get("moves") if isinstance(plan, dict) else None
-    if not isinstance(plan, dict) or set(plan) != {"moves"} or not isinstance(moves, list) \
-            or not 2 <= len(moves) <= 2 + len(SIBLING_SUFFIXES):
-        raise _refuse(journal, plan if not isinstance(plan, dict) else plan.get("moves"),
-                      "expected the payload, its pre-compressed siblings and its manifest")
+    if (
+        not isinstance(plan, dict)
+        or set(plan) != {"moves"}
+        or not isinstance(moves, list)
+        or not 2 <= len(moves) <= 2 + len(SIBLING_SUFFIXES)
+    ):
+        raise _refuse(
+            journal,
+            plan if not isinstance(plan, dict) else plan.get("moves"),
+            "expected the payload, its pre-compressed siblings and its manifest",
+        )
     # The payload first, the manifest last, siblings (x.json.gz, x.json.br) between.
     middle = [m[1] if isinstance(m, list) and len(m) == 2 else None for m in moves[1:-1]]
     siblings = [payload_name + s for s in SIBLING_SUFFIXES]
     for dst in middle:
         if dst not in siblings or middle.count(dst) > 1:
-            raise _refuse(journal, dst, "expected a pre-compressed sibling "
-                                        f"({' or '.join(map(repr, siblings))}), once")
+            raise _refuse(
+                journal,
+                dst,
+                f"expected a pre-compressed sibling ({' or '.join(map(repr, siblings))}), once",
+            )
     finals = (payload_name, *middle, payload_name + MANIFEST_SUFFIX)
     pid = None
     out: list[tuple[Path, Path]] = []
     for move, final in zip(moves, finals, strict=True):
-        if not (isinstance(move, list) and len(move) == 2
-                and all(isinstance(x, str) for x in move)):
+        if not (
+            isinstance(move, list) and len(move) == 2 and all(isinstance(x, str) for x in move)
+        ):
             raise _refuse(journal, move, "expected [temporary file, final name]")
         src, dst = move
         m = _TMP_RE.fullmatch(src)
         if dst != final:
             raise _refuse(journal, dst, f"expected {final!r}")
         if m is None or m.group("final") != final or (pid is not None and m["pid"] != pid):
-            raise _refuse(journal, src, f"expected a temporary file {_tmp_name(final, 0)!r} "
-                                        "with one process id for both")
+            raise _refuse(
+                journal,
+                src,
+                f"expected a temporary file {_tmp_name(final, 0)!r} with one process id for both",
+            )
         pid = m["pid"]
         out.append((folder / src, folder / dst))
     (tmp_pay, pay), tmp_man = out[0], out[-1][0]
@@ -370,8 +410,11 @@ def _plan(journal: Path) -> list[tuple[Path, Path]]:
             digest = hashlib.sha256(source.read_bytes()).hexdigest() if kinds[source] else None
         except (OSError, orjson.JSONDecodeError) as e:
             raise _refuse(journal, tmp_man.name, f"unreadable: {e}") from None
-        if not isinstance(doc, dict) or doc.get("format") != MANIFEST_FORMAT \
-                or doc.get("payload") != payload_name:
+        if (
+            not isinstance(doc, dict)
+            or doc.get("format") != MANIFEST_FORMAT
+            or doc.get("payload") != payload_name
+        ):
             raise _refuse(journal, tmp_man.name, f"not the manifest of {payload_name!r}")
         if doc.get("sha256") != digest:
             raise _refuse(journal, tmp_man.name, f"its sha256 is not that of {source.name!r}")
@@ -418,8 +461,13 @@ def recover(folder: Path, *, wait: float | None = None) -> list[Path]:
 # --------------------------------------------------------------------------------------------
 
 
-def publish(path: Path, payload: bytes, manifest: Mapping[str, Any], *,
-            extras: Mapping[str, bytes] | None = None) -> None:
+def publish(
+    path: Path,
+    payload: bytes,
+    manifest: Mapping[str, Any],
+    *,
+    extras: Mapping[str, bytes] | None = None,
+) -> None:
     """Write ``payload`` at ``path`` and its manifest beside it, as one journalled commit.
 
     ``extras`` maps the payload's pre-compressed siblings (``x.json.gz``, ``x.json.br``: the
@@ -432,8 +480,9 @@ def publish(path: Path, payload: bytes, manifest: Mapping[str, Any], *,
     extra_paths: list[tuple[Path, bytes]] = []
     for name, data in (extras or {}).items():
         if name not in {path.name + s for s in SIBLING_SUFFIXES}:
-            raise OutputError(f"{folder}: {name!r} is not a pre-compressed sibling of "
-                              f"{path.name!r}")
+            raise OutputError(
+                f"{folder}: {name!r} is not a pre-compressed sibling of {path.name!r}"
+            )
         p = resolve_output(folder, name)
         if p.is_dir():
             raise OutputError(f"{p}: is a folder; move it away")
@@ -445,8 +494,9 @@ def publish(path: Path, payload: bytes, manifest: Mapping[str, Any], *,
         _commit(path, payload, manifest, extra_paths)
 
 
-def _commit(path: Path, payload: bytes, manifest: Mapping[str, Any],
-            extras: list[tuple[Path, bytes]]) -> None:
+def _commit(
+    path: Path, payload: bytes, manifest: Mapping[str, Any], extras: list[tuple[Path, bytes]]
+) -> None:
     folder = path.parent
     man = manifest_path(path)
     man_bytes = orjson.dumps(dict(manifest), option=orjson.OPT_INDENT_2) + b"\n"
@@ -487,8 +537,9 @@ def _commit(path: Path, payload: bytes, manifest: Mapping[str, Any],
                 with contextlib.suppress(OSError):
                     p.unlink(missing_ok=True)
         if isinstance(e, OSError) and not isinstance(e, OutputError):
-            raise OutputError(f"{folder}: cannot publish ({e.strerror or e}); check free "
-                              "space and permissions") from None
+            raise OutputError(
+                f"{folder}: cannot publish ({e.strerror or e}); check free space and permissions"
+            ) from None
         raise
 
 

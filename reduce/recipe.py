@@ -42,8 +42,11 @@ LAYOUTS: tuple[str, ...] = ("columns", "rows", "csv", "geojson")
 SOURCE_FORMATS = ("parquet", "csv", "ndjson")
 # The file extensions output.path may have for each layout (the first is the default name).
 LAYOUT_EXTENSIONS: dict[str, tuple[str, ...]] = {
-    "columns": (".json",), "rows": (".json",), "csv": (".csv",),
-    "geojson": (".geojson", ".json")}
+    "columns": (".json",),
+    "rows": (".json",),
+    "csv": (".csv",),
+    "geojson": (".geojson", ".json"),
+}
 
 
 @dataclass(frozen=True, slots=True)
@@ -291,8 +294,11 @@ class Recipe:
     @property
     def category_sources(self) -> tuple[str, ...]:
         """Source columns read as categories (not a flow's ends, whose keys are computed)."""
-        return tuple(c for c in self.categories if c not in FLOW_COLUMNS) if self.flow \
+        return (
+            tuple(c for c in self.categories if c not in FLOW_COLUMNS)
+            if self.flow
             else self.categories
+        )
 
     def finest_level(self) -> dict[str, Any]:
         return {axis: levels[0] for axis, levels in self.ladder().items()}
@@ -338,8 +344,15 @@ class _Ctx:
                 )
         return doc
 
-    def string(self, doc: Mapping[str, Any], key: str, name: str, *, required: bool = False,
-               default: str | None = None) -> str | None:
+    def string(
+        self,
+        doc: Mapping[str, Any],
+        key: str,
+        name: str,
+        *,
+        required: bool = False,
+        default: str | None = None,
+    ) -> str | None:
         full = f"{key}.{name}" if key else name
         if name not in doc:
             if required:
@@ -370,8 +383,12 @@ class _Ctx:
 
 def _tname(v: Any) -> str:
     return {
-        bool: "a boolean", int: "an integer", float: "a number", str: "a string",
-        list: "a list", dict: "a table",
+        bool: "a boolean",
+        int: "an integer",
+        float: "a number",
+        str: "a string",
+        list: "a list",
+        dict: "a table",
     }.get(type(v), type(v).__name__)
 
 
@@ -421,8 +438,13 @@ def load_recipe(path: str | Path, *, overrides: Mapping[str, str] | None = None)
     return recipe
 
 
-def with_budget(recipe: Recipe, *, max: int | None = None, on: str | None = None,
-                order: Sequence[str] | None = None) -> Recipe:
+def with_budget(
+    recipe: Recipe,
+    *,
+    max: int | None = None,
+    on: str | None = None,
+    order: Sequence[str] | None = None,
+) -> Recipe:
     """The recipe with budget values replaced, as typed values validated like the file's
     ``[budget]`` table (no TOML text, no second read of the file)."""
     doc = dict(recipe.document)
@@ -436,8 +458,9 @@ def with_budget(recipe: Recipe, *, max: int | None = None, on: str | None = None
     budget = _parse_budget(_Ctx(recipe.file), b, list(recipe.ladder()))
     doc["budget"] = b
     canonical = orjson.dumps(doc, option=orjson.OPT_SORT_KEYS, default=str)
-    return dataclasses.replace(recipe, budget=budget, document=doc,
-                               content_hash=hashlib.sha256(canonical).hexdigest())
+    return dataclasses.replace(
+        recipe, budget=budget, document=doc, content_hash=hashlib.sha256(canonical).hexdigest()
+    )
 
 
 def parse_override(text: str) -> tuple[str, str]:
@@ -477,14 +500,24 @@ def _check_int_range(ctx: _Ctx, v: Any, key: str) -> None:
         for i, x in enumerate(v):
             _check_int_range(ctx, x, f"{key}[{i}]")
     elif isinstance(v, int) and not isinstance(v, bool) and not _INT64[0] <= v <= _INT64[1]:
-        raise ctx.fail(key, f"{_short(v)} is beyond TOML's 64-bit integer range; use a "
-                       "smaller number")
+        raise ctx.fail(
+            key, f"{_short(v)} is beyond TOML's 64-bit integer range; use a smaller number"
+        )
 
 
 # The keys each recipe table allows. Parsing rejects any other key; the JSON Schema
 # (reduce.schema) is generated from these same tuples.
-TOP_KEYS = ("name", "description", "source", "group", "measures", "normalize", "prune",
-            "budget", "output")
+TOP_KEYS = (
+    "name",
+    "description",
+    "source",
+    "group",
+    "measures",
+    "normalize",
+    "prune",
+    "budget",
+    "output",
+)
 SOURCE_KEYS = ("path", "format", "time", "lat", "lon", "time_zone", "filter", "null_values")
 FILTER_KEYS = ("column", "in", "not_in", "min", "max", "null")
 GROUP_KEYS = ("hex", "time", "region", "category", "flow")
@@ -502,8 +535,17 @@ PRUNE_KEYS = ("top", "min_count")
 TOP_K_KEYS = ("k", "by", "within", "rest")
 MIN_COUNT_KEYS = ("min", "by", "fold")
 BUDGET_KEYS = ("max", "on", "order")
-OUTPUT_KEYS = ("path", "layout", "digits", "column_digits", "inline", "simplify",
-               "coordinate_digits", "precompress", "preview")
+OUTPUT_KEYS = (
+    "path",
+    "layout",
+    "digits",
+    "column_digits",
+    "inline",
+    "simplify",
+    "coordinate_digits",
+    "precompress",
+    "preview",
+)
 _TOP_KEYS = TOP_KEYS
 
 
@@ -516,8 +558,9 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
     name = ctx.string(doc, "", "name", required=True)
     assert name is not None
     if not _NAME_RE.match(name):
-        raise ctx.fail("name", f"{name!r} must be letters, digits, '.', '_' or '-' (it names "
-                       "the output file)")
+        raise ctx.fail(
+            "name", f"{name!r} must be letters, digits, '.', '_' or '-' (it names the output file)"
+        )
     description = ctx.string(doc, "", "description", default="") or ""
 
     if "source" not in doc:
@@ -538,77 +581,131 @@ def parse_recipe(doc: dict[str, Any], *, file: Path) -> Recipe:
     if "category" in group_doc:
         c = ctx.table(group_doc["category"], "group.category", CATEGORY_KEYS)
         if ("column" in c) == ("columns" in c):
-            raise ctx.fail("group.category", "give exactly one of column = \"...\" or "
-                           "columns = [...]")
-        categories = (ctx.str_list(c["column"], "group.category.column") if "column" in c
-                      else ctx.str_list(c["columns"], "group.category.columns",
-                                        allow_single=False))
+            raise ctx.fail(
+                "group.category", 'give exactly one of column = "..." or columns = [...]'
+            )
+        categories = (
+            ctx.str_list(c["column"], "group.category.column")
+            if "column" in c
+            else ctx.str_list(c["columns"], "group.category.columns", allow_single=False)
+        )
         if not categories:
             raise ctx.fail("group.category.columns", "is empty; list at least one column")
         taken = ("time", "hex", *(FLOW_COLUMNS if flow else ()))
         for cname in categories:
             if cname in taken or (region and cname == region.column):
-                raise ctx.fail("group.category", f"column {cname!r} has the name of another "
-                               "key; rename the column in the source")
+                raise ctx.fail(
+                    "group.category",
+                    f"column {cname!r} has the name of another "
+                    "key; rename the column in the source",
+                )
     if flow is not None:  # the flow's ends are categories too, ranked and folded together
         categories = (*FLOW_COLUMNS, *categories)
     if region and region.column in ("time", "hex"):
-        raise ctx.fail("group.region", f"the key name {region.column!r} is taken by another "
-                       "key; set group.region.name")
+        raise ctx.fail(
+            "group.region",
+            f"the key name {region.column!r} is taken by another key; set group.region.name",
+        )
     need_geo = hex_key is not None or bool(region and region.boundaries)
     source = _parse_source(ctx, src_doc, base, need_geo, time_key is not None)
 
     # --- measures ----------------------------------------------------------------------------
     measures = _parse_measures(ctx, doc.get("measures"), source.naive_zone)
-    reserved = {"time", "hex", *(k for k in ([region.column] if region else [])), *categories,
-                *([region.label_column] if region and region.label_column else [])}
+    reserved = {
+        "time",
+        "hex",
+        *(k for k in ([region.column] if region else [])),
+        *categories,
+        *([region.label_column] if region and region.label_column else []),
+    }
     for m in measures:
         if m.name in reserved:
-            raise ctx.fail(f"measures.{m.name}", "has the same name as a key column; rename "
-                           "the measure")
+            raise ctx.fail(
+                f"measures.{m.name}", "has the same name as a key column; rename the measure"
+            )
     names = {m.name for m in measures}
 
-    axis_names = [a for a, present in (("time", time_key), ("hex", hex_key),
-                                       ("region", region)) if present]
+    axis_names = [
+        a for a, present in (("time", time_key), ("hex", hex_key), ("region", region)) if present
+    ]
 
-    normalize = (_parse_normalize(ctx, doc["normalize"], base, measures, region, hex_key,
-                                  categories, axis_names)
-                 if "normalize" in doc else None)
-    top, min_count = (_parse_prune(ctx, doc["prune"], measures, categories, axis_names)
-                      if "prune" in doc else (None, None))
+    normalize = (
+        _parse_normalize(
+            ctx, doc["normalize"], base, measures, region, hex_key, categories, axis_names
+        )
+        if "normalize" in doc
+        else None
+    )
+    top, min_count = (
+        _parse_prune(ctx, doc["prune"], measures, categories, axis_names)
+        if "prune" in doc
+        else (None, None)
+    )
     output = _parse_output(ctx, doc.get("output", {}), base)
     derived = _derived_names(measures, normalize)
     for m in measures:
         if m.name in derived:
-            raise ctx.fail(f"measures.{m.name}", "has the same name as a column that normalize "
-                           "derives; rename the measure")
+            raise ctx.fail(
+                f"measures.{m.name}",
+                "has the same name as a column that normalize derives; rename the measure",
+            )
     for col, _ in output.column_digits:
         if col not in names and col not in derived:
-            raise ctx.fail(f"output.column_digits.{col}",
-                           f"names no measure or derived column"
-                           f"{did_you_mean(col, [*names, *derived])}")
+            raise ctx.fail(
+                f"output.column_digits.{col}",
+                f"names no measure or derived column{did_you_mean(col, [*names, *derived])}",
+            )
 
     geo = output.layout == "geojson"
     if geo and not (hex_key or (region and region.boundaries)):
-        raise ctx.fail("output.layout", "geojson needs a geometry: group by hex or by a region "
-                       "from boundaries")
-    ladder_axes = [a for a, present in (
-        ("hex", hex_key), ("time", time_key), ("top", top),
-        ("simplify", geo and region is not None and region.boundaries is not None
-         and not hex_key),
-        ("coords", geo), ("digits", True)) if present]
-    budget = (_parse_budget(ctx, doc["budget"], ladder_axes) if "budget" in doc else None)
+        raise ctx.fail(
+            "output.layout", "geojson needs a geometry: group by hex or by a region from boundaries"
+        )
+    ladder_axes = [
+        a
+        for a, present in (
+            ("hex", hex_key),
+            ("time", time_key),
+            ("top", top),
+            (
+                "simplify",
+                geo and region is not None and region.boundaries is not None and not hex_key,
+            ),
+            ("coords", geo),
+            ("digits", True),
+        )
+        if present
+    ]
+    budget = _parse_budget(ctx, doc["budget"], ladder_axes) if "budget" in doc else None
 
     canonical = orjson.dumps(doc, option=orjson.OPT_SORT_KEYS, default=str)
-    scan_doc = {"source": doc.get("source"), "group": doc.get("group"),
-                "measures": doc.get("measures"), "base": str(base)}
-    scan_hash = hashlib.sha256(orjson.dumps(scan_doc, option=orjson.OPT_SORT_KEYS,
-                                            default=str)).hexdigest()
+    scan_doc = {
+        "source": doc.get("source"),
+        "group": doc.get("group"),
+        "measures": doc.get("measures"),
+        "base": str(base),
+    }
+    scan_hash = hashlib.sha256(
+        orjson.dumps(scan_doc, option=orjson.OPT_SORT_KEYS, default=str)
+    ).hexdigest()
     return Recipe(
-        name=name, file=file, content_hash=hashlib.sha256(canonical).hexdigest(),
-        scan_hash=scan_hash, description=description, source=source, hex=hex_key,
-        time=time_key, region=region, categories=categories, flow=flow, measures=measures,
-        normalize=normalize, top=top, min_count=min_count, budget=budget, output=output,
+        name=name,
+        file=file,
+        content_hash=hashlib.sha256(canonical).hexdigest(),
+        scan_hash=scan_hash,
+        description=description,
+        source=source,
+        hex=hex_key,
+        time=time_key,
+        region=region,
+        categories=categories,
+        flow=flow,
+        measures=measures,
+        normalize=normalize,
+        top=top,
+        min_count=min_count,
+        budget=budget,
+        output=output,
         document=doc,
     )
 
@@ -633,8 +730,11 @@ def _rel(base: Path, p: str) -> Path:
 def _parse_region(ctx: _Ctx, doc: Any, base: Path) -> RegionKey:
     r = ctx.table(doc, "group.region", REGION_KEYS)
     if ("column" in r) == ("boundaries" in r):
-        raise ctx.fail("group.region", "give exactly one of column = \"...\" (a source column) "
-                       "or boundaries = \"file.geojson\" with id = \"property\"")
+        raise ctx.fail(
+            "group.region",
+            'give exactly one of column = "..." (a source column) '
+            'or boundaries = "file.geojson" with id = "property"',
+        )
     if "column" in r:
         for k in ("id", "outside", "label"):
             if k in r:
@@ -649,8 +749,14 @@ def _parse_region(ctx: _Ctx, doc: Any, base: Path) -> RegionKey:
     outside = ctx.string(r, "group.region", "outside")
     label = ctx.string(r, "group.region", "label")
     assert path is not None and idp is not None and name is not None
-    return RegionKey(column=name, boundaries=_rel(base, path), boundaries_display=path,
-                     id_property=idp, outside=outside, label_property=label)
+    return RegionKey(
+        column=name,
+        boundaries=_rel(base, path),
+        boundaries_display=path,
+        id_property=idp,
+        outside=outside,
+        label_property=label,
+    )
 
 
 def _flow_end(ctx: _Ctx, v: Any, key: str) -> FlowEnd:
@@ -666,26 +772,32 @@ def _parse_flow(ctx: _Ctx, doc: Any, base: Path) -> FlowKey:
     d = ctx.table(doc, "group.flow", FLOW_KEYS)
     for k in ("origin", "destination"):
         if k not in d:
-            raise ctx.fail(f"group.flow.{k}", "is required: a column name, or "
-                           "{ lat = \"...\", lon = \"...\" }")
+            raise ctx.fail(
+                f"group.flow.{k}", 'is required: a column name, or { lat = "...", lon = "..." }'
+            )
     o = _flow_end(ctx, d["origin"], "group.flow.origin")
     t = _flow_end(ctx, d["destination"], "group.flow.destination")
     if (o.column is None) != (t.column is None):
-        raise ctx.fail("group.flow", "origin and destination must both be columns or both be "
-                       "coordinates")
+        raise ctx.fail(
+            "group.flow", "origin and destination must both be columns or both be coordinates"
+        )
     if o.column is not None:
         for k in ("hex", "boundaries", "id"):
             if k in d:
                 raise ctx.fail(f"group.flow.{k}", "applies to coordinate ends only")
         return FlowKey(o, t)
     if ("hex" in d) == ("boundaries" in d):
-        raise ctx.fail("group.flow", "coordinate ends need exactly one of hex = <resolution> "
-                       "or boundaries = \"file.geojson\" with id = \"property\"")
+        raise ctx.fail(
+            "group.flow",
+            "coordinate ends need exactly one of hex = <resolution> "
+            'or boundaries = "file.geojson" with id = "property"',
+        )
     if "hex" in d:
         v = d["hex"]
         if isinstance(v, bool) or not isinstance(v, int) or not 0 <= v <= 15:
-            raise ctx.fail("group.flow.hex", f"{_short(v)} is not an H3 resolution; use an "
-                           "integer 0..15")
+            raise ctx.fail(
+                "group.flow.hex", f"{_short(v)} is not an H3 resolution; use an integer 0..15"
+            )
         return FlowKey(o, t, hex_res=v)
     path = ctx.string(d, "group.flow", "boundaries", required=True)
     idp = ctx.string(d, "group.flow", "id", required=True)
@@ -704,8 +816,11 @@ def _parse_hex(ctx: _Ctx, doc: Any) -> HexKey:
         out.append(v)
     for a, b in zip(out, out[1:]):
         if b >= a:
-            raise ctx.fail("group.hex.levels", f"must go from finest to coarsest (strictly "
-                           f"decreasing resolutions), but {a} is followed by {b}")
+            raise ctx.fail(
+                "group.hex.levels",
+                f"must go from finest to coarsest (strictly "
+                f"decreasing resolutions), but {a} is followed by {b}",
+            )
     return HexKey(tuple(out))
 
 
@@ -721,14 +836,21 @@ def _parse_time(ctx: _Ctx, doc: Any) -> TimeKey:
             raise ctx.fail(key, str(e)) from None
     for a, b in zip(bins, bins[1:]):
         finer_first = (a.minutes or 10**9) < (b.minutes or 10**9) or (
-            a.minutes is None and b.minutes is None and (a.n * (12 if a.unit == "y" else 1))
-            < (b.n * (12 if b.unit == "y" else 1)))
+            a.minutes is None
+            and b.minutes is None
+            and (a.n * (12 if a.unit == "y" else 1)) < (b.n * (12 if b.unit == "y" else 1))
+        )
         if not finer_first:
-            raise ctx.fail("group.time.levels", f"must go from finest to coarsest, but "
-                           f"{a.text} is followed by {b.text}")
+            raise ctx.fail(
+                "group.time.levels",
+                f"must go from finest to coarsest, but {a.text} is followed by {b.text}",
+            )
         if not b.nests(a):
-            raise ctx.fail("group.time.levels", f"{b.text} bins are not made of whole "
-                           f"{a.text} bins, so they cannot be rolled up exactly; drop one")
+            raise ctx.fail(
+                "group.time.levels",
+                f"{b.text} bins are not made of whole "
+                f"{a.text} bins, so they cannot be rolled up exactly; drop one",
+            )
     zone = ctx.string(d, "group.time", "zone", default="UTC")
     assert zone is not None
     _check_zone(ctx, "group.time.zone", zone)
@@ -739,21 +861,34 @@ def _check_zone(ctx: _Ctx, key: str, zone: str) -> None:
     try:
         zoneinfo.ZoneInfo(zone)
     except (zoneinfo.ZoneInfoNotFoundError, ValueError, OSError):  # a folder name is an OSError
-        raise ctx.fail(key, f"unknown time zone {zone!r}{zone_hint(zone)}; use an IANA name "
-                       "such as UTC or Europe/Paris") from None
+        raise ctx.fail(
+            key,
+            f"unknown time zone {zone!r}{zone_hint(zone)}; use an IANA name "
+            "such as UTC or Europe/Paris",
+        ) from None
 
 
 _OFFSET_RE = re.compile(r"^(?:UTC|GMT|Z)?\s*([+-])(\d{1,2})(?::?(\d\d))?$", re.IGNORECASE)
 _HINT_YEAR = 2025  # the year whose offsets define "the same clock" (fixed: same hint always)
-_CONTINENTS = ("Africa/", "America/", "Antarctica/", "Asia/", "Atlantic/", "Australia/",
-               "Europe/", "Indian/", "Pacific/")
+_CONTINENTS = (
+    "Africa/",
+    "America/",
+    "Antarctica/",
+    "Asia/",
+    "Atlantic/",
+    "Australia/",
+    "Europe/",
+    "Indian/",
+    "Pacific/",
+)
 
 
 def _clocks() -> dict[str, tuple[tuple[int, ...], frozenset[str]]]:
     """Every zone's UTC offset (seconds) at noon UTC of each day of ``_HINT_YEAR`` (its
     offset and DST rule, as far as one year shows them) and the abbreviations it uses."""
-    days = [dt.datetime(_HINT_YEAR, 1, 1, 12, tzinfo=dt.timezone.utc) + dt.timedelta(days=i)
-            for i in range(365)]
+    days = [
+        dt.datetime(_HINT_YEAR, 1, 1, 12, tzinfo=dt.UTC) + dt.timedelta(days=i) for i in range(365)
+    ]
     out = {}
     for name in sorted(zoneinfo.available_timezones()):
         try:
@@ -761,8 +896,10 @@ def _clocks() -> dict[str, tuple[tuple[int, ...], frozenset[str]]]:
         except (zoneinfo.ZoneInfoNotFoundError, ValueError, OSError):
             continue
         local = [d.astimezone(z) for d in days]
-        offsets = tuple(int(t.utcoffset().total_seconds())  # type: ignore[union-attr]
-                        for t in local)
+        offsets = tuple(
+            int(t.utcoffset().total_seconds())  # type: ignore[union-attr]
+            for t in local
+        )
         out[name] = (offsets, frozenset(t.tzname() or "" for t in local))
     return out
 
@@ -785,15 +922,26 @@ def _tz_table(name: str) -> str:
 def _pick(names: Sequence[str]) -> str:
     """One name for a clock: a main zone of the database (zone1970.tab) before the others,
     then the one most other names link to (tzdata.zi), then by name."""
-    main = {ln.split("\t")[2] for ln in _tz_table("zone1970.tab").splitlines()
-            if ln and not ln.startswith("#") and ln.count("\t") >= 2}
+    main = {
+        ln.split("\t")[2]
+        for ln in _tz_table("zone1970.tab").splitlines()
+        if ln and not ln.startswith("#") and ln.count("\t") >= 2
+    }
     links: dict[str, int] = {}
     for ln in _tz_table("tzdata.zi").splitlines():
         if ln.startswith("L "):
             target = ln.split()[1]
             links[target] = links.get(target, 0) + 1
-    return min(names, key=lambda n: (n not in main, not n.startswith(_CONTINENTS),
-                                     n.count("/"), -links.get(n, 0), n))
+    return min(
+        names,
+        key=lambda n: (
+            n not in main,
+            not n.startswith(_CONTINENTS),
+            n.count("/"),
+            -links.get(n, 0),
+            n,
+        ),
+    )
 
 
 def zone_hint(zone: str) -> str:
@@ -816,49 +964,61 @@ def zone_hint(zone: str) -> str:
         if zone.upper() in abbrs:
             groups.setdefault(offs, []).append(n)
     if groups:
-        picks = sorted((_pick(g) for g in groups.values()), key=lambda n: min(
-            clocks[n][0]))[:3]
+        picks = sorted((_pick(g) for g in groups.values()), key=lambda n: min(clocks[n][0]))[:3]
         return " (did you mean " + " or ".join(repr(p) for p in picks) + "?)"
     if "/" in zone:
         return did_you_mean(zone, clocks)
     return ""
 
 
-def _parse_source(ctx: _Ctx, d: dict[str, Any], base: Path, need_geo: bool,
-                  need_time: bool) -> Source:
+def _parse_source(
+    ctx: _Ctx, d: dict[str, Any], base: Path, need_geo: bool, need_time: bool
+) -> Source:
     display = ctx.string(d, "source", "path", required=True)
     assert display is not None
     fmt = ctx.string(d, "source", "format")
     if fmt is not None and fmt not in SOURCE_FORMATS:
-        raise ctx.fail("source.format", f"{fmt!r} is not a source format"
-                       f"{did_you_mean(fmt, SOURCE_FORMATS)}; use one of "
-                       f"{', '.join(SOURCE_FORMATS)}")
+        raise ctx.fail(
+            "source.format",
+            f"{fmt!r} is not a source format"
+            f"{did_you_mean(fmt, SOURCE_FORMATS)}; use one of "
+            f"{', '.join(SOURCE_FORMATS)}",
+        )
     time = ctx.string(d, "source", "time")
     lat = ctx.string(d, "source", "lat")
     lon = ctx.string(d, "source", "lon")
     if need_time and time is None:
-        raise ctx.fail("source.time", "is required when grouping by time; name the timestamp "
-                       "column")
+        raise ctx.fail(
+            "source.time", "is required when grouping by time; name the timestamp column"
+        )
     if need_geo and (lat is None or lon is None):
         missing = "source.lat" if lat is None else "source.lon"
-        raise ctx.fail(missing, "is required when grouping by hex cell; name the coordinate "
-                       "column")
+        raise ctx.fail(missing, "is required when grouping by hex cell; name the coordinate column")
     zone = ctx.string(d, "source", "time_zone", default="UTC")
     assert zone is not None
     _check_zone(ctx, "source.time_zone", zone)
     filters = _parse_filters(ctx, d.get("filter", []), zone)
     nv = d.get("null_values", [])
     if not isinstance(nv, list) or not all(isinstance(x, str) for x in nv):
-        raise ctx.fail("source.null_values", f"must be a list of strings such as [\"NA\", "
-                       f"\"-\"], got {_short(nv)}")
+        raise ctx.fail(
+            "source.null_values", f'must be a list of strings such as ["NA", "-"], got {_short(nv)}'
+        )
     null_values = tuple(dict.fromkeys(nv))
     path = display if Path(display).is_absolute() else str(base / display)
-    return Source(path=path, display=display, format=fmt, time=time, lat=lat, lon=lon,
-                  naive_zone=zone, filters=filters, null_values=null_values)
+    return Source(
+        path=path,
+        display=display,
+        format=fmt,
+        time=time,
+        lat=lat,
+        lon=lon,
+        naive_zone=zone,
+        filters=filters,
+        null_values=null_values,
+    )
 
 
-def filter_instant(v: dt.datetime | dt.date, zone: str, *,
-                   end_of_day: bool = False) -> dt.datetime:
+def filter_instant(v: dt.datetime | dt.date, zone: str, *, end_of_day: bool = False) -> dt.datetime:
     """A time filter literal as a naive UTC datetime: an offset date-time is that instant; a
     local date-time is read on the clock of ``zone`` (source.time_zone; an ambiguous wall
     time is the earlier instant, a skipped one is read with the offset before the change);
@@ -868,20 +1028,22 @@ def filter_instant(v: dt.datetime | dt.date, zone: str, *,
         v = dt.datetime(day.year, day.month, day.day)
     if v.tzinfo is None:
         v = v.replace(tzinfo=zoneinfo.ZoneInfo(zone))
-    return v.astimezone(dt.timezone.utc).replace(tzinfo=None)
+    return v.astimezone(dt.UTC).replace(tzinfo=None)
 
 
 _FILTER_KEYS = FILTER_KEYS
 _SCALARS = (str, int, float, bool, dt.datetime, dt.date)
 
 
-def _parse_filters(ctx: _Ctx, doc: Any, zone: str,
-                   where: str = "source.filter") -> tuple[Filter, ...]:
+def _parse_filters(
+    ctx: _Ctx, doc: Any, zone: str, where: str = "source.filter"
+) -> tuple[Filter, ...]:
     if isinstance(doc, dict):
         doc = [doc]
     if not isinstance(doc, list):
-        raise ctx.fail(where, "must be a list of tables such as "
-                       "[{ column = \"kind\", in = [\"hail\"] }]")
+        raise ctx.fail(
+            where, 'must be a list of tables such as [{ column = "kind", in = ["hail"] }]'
+        )
     out: list[Filter] = []
     for i, f in enumerate(doc):
         key = f"{where}[{i}]"
@@ -893,38 +1055,48 @@ def _parse_filters(ctx: _Ctx, doc: Any, zone: str,
             raise ctx.fail(key, "has no condition; add one of in, not_in, min, max, null")
         if "in" in f or "not_in" in f:
             if len(ops) != 1:
-                raise ctx.fail(key, "combines in/not_in with another condition; write them "
-                               "as separate filters")
+                raise ctx.fail(
+                    key, "combines in/not_in with another condition; write them as separate filters"
+                )
             op = "in" if "in" in f else "not_in"
             vals = f[op]
             if not isinstance(vals, list) or not vals:
                 raise ctx.fail(f"{key}.{op}", "must be a non-empty list of values")
             kinds = {type(v) for v in vals}
-            if not all(isinstance(v, _SCALARS) for v in vals) or len(
-                    {k for k in kinds if k not in (int, float)} | ({int} if kinds & {int, float}
-                                                                     else set())) > 1:
-                raise ctx.fail(f"{key}.{op}", "must list values of one type (strings, numbers "
-                               "or times)")
+            if (
+                not all(isinstance(v, _SCALARS) for v in vals)
+                or len(
+                    {k for k in kinds if k not in (int, float)}
+                    | ({int} if kinds & {int, float} else set())
+                )
+                > 1
+            ):
+                raise ctx.fail(
+                    f"{key}.{op}", "must list values of one type (strings, numbers or times)"
+                )
             out.append(Filter(col, op, tuple(vals), key=key))  # type: ignore[arg-type]
         elif "null" in f:
             if len(ops) != 1:
-                raise ctx.fail(key, "combines null with another condition; write them as "
-                               "separate filters")
+                raise ctx.fail(
+                    key, "combines null with another condition; write them as separate filters"
+                )
             if not isinstance(f["null"], bool):
                 raise ctx.fail(f"{key}.null", "must be true (keep nulls) or false (drop nulls)")
             out.append(Filter(col, "null" if f["null"] else "not_null", key=key))
         else:
             lo, hi = f.get("min"), f.get("max")
             for k, v in (("min", lo), ("max", hi)):
-                if v is not None and (isinstance(v, bool) or not isinstance(
-                        v, (int, float, dt.datetime, dt.date))):
-                    raise ctx.fail(f"{key}.{k}", f"must be a number or a TOML date-time, got "
-                                   f"{_tname(v)} {_short(v)}")
+                if v is not None and (
+                    isinstance(v, bool) or not isinstance(v, (int, float, dt.datetime, dt.date))
+                ):
+                    raise ctx.fail(
+                        f"{key}.{k}",
+                        f"must be a number or a TOML date-time, got {_tname(v)} {_short(v)}",
+                    )
             if lo is not None and hi is not None:
                 try:
                     if isinstance(lo, dt.date) and isinstance(hi, dt.date):  # as instants
-                        bad = filter_instant(lo, zone) >= filter_instant(hi, zone,
-                                                                         end_of_day=True)
+                        bad = filter_instant(lo, zone) >= filter_instant(hi, zone, end_of_day=True)
                     else:
                         bad = lo > hi
                 except TypeError:
@@ -945,19 +1117,23 @@ def _parse_measures(ctx: _Ctx, doc: Any, zone: str = "UTC") -> tuple[MeasureSpec
     if not isinstance(doc, dict):
         raise ctx.fail("measures", f"must be a table, got {_tname(doc)}")
     if not doc:
-        raise ctx.fail("measures", "is empty; declare at least one, e.g. events = \"count\"")
+        raise ctx.fail("measures", 'is empty; declare at least one, e.g. events = "count"')
     out = []
     for name, spec in doc.items():
         key = f"measures.{name}"
         if not _IDENT_RE.match(name) or name.startswith("__"):
-            raise ctx.fail(key, "a measure name must be letters, digits and '_' and start with "
-                           "a letter")
+            raise ctx.fail(
+                key, "a measure name must be letters, digits and '_' and start with a letter"
+            )
         if spec == "count":
             out.append(MeasureSpec(name, "count", None))
             continue
         if isinstance(spec, str):
-            raise ctx.fail(key, f"{spec!r} is not a measure{did_you_mean(spec, _MEASURE_KINDS)};"
-                           " use \"count\" or a table such as { sum = \"column\" }")
+            raise ctx.fail(
+                key,
+                f"{spec!r} is not a measure{did_you_mean(spec, _MEASURE_KINDS)};"
+                ' use "count" or a table such as { sum = "column" }',
+            )
         where: tuple[Filter, ...] = ()
         if isinstance(spec, dict) and "where" in spec:
             spec = dict(spec)
@@ -970,19 +1146,26 @@ def _parse_measures(ctx: _Ctx, doc: Any, zone: str = "UTC") -> tuple[MeasureSpec
                     raise ctx.fail(key, "a count with where takes no other key")
                 continue
         if not isinstance(spec, dict) or len(spec) != 1:
-            raise ctx.fail(key, "must be \"count\" or a table with one key, e.g. "
-                           "{ sum = \"column\" } (plus where = [...])")
+            raise ctx.fail(
+                key,
+                'must be "count" or a table with one key, e.g. '
+                '{ sum = "column" } (plus where = [...])',
+            )
         ((kind, col),) = spec.items()
         if kind == "count" and col is True and not where:
             out.append(MeasureSpec(name, "count", None))
             continue
         if where and kind == "distinct":
-            raise ctx.fail(f"{key}.where", "applies to count, sum, mean, min and max "
-                           "measures, not distinct")
+            raise ctx.fail(
+                f"{key}.where", "applies to count, sum, mean, min and max measures, not distinct"
+            )
         if kind not in _MEASURE_KINDS or kind == "count":
-            raise ctx.fail(f"{key}.{kind}", f"unknown measure kind"
-                           f"{did_you_mean(kind, _MEASURE_KINDS)}; use one of sum, min, max, "
-                           "mean, distinct (or \"count\")")
+            raise ctx.fail(
+                f"{key}.{kind}",
+                f"unknown measure kind"
+                f"{did_you_mean(kind, _MEASURE_KINDS)}; use one of sum, min, max, "
+                'mean, distinct (or "count")',
+            )
         if not isinstance(col, str) or not col:
             raise ctx.fail(f"{key}.{kind}", "must name a column")
         out.append(MeasureSpec(name, kind, col, where))
@@ -1000,20 +1183,30 @@ def _derived_names(measures: Sequence[MeasureSpec], n: Normalize | None) -> list
     return names
 
 
-def _parse_normalize(ctx: _Ctx, doc: Any, base: Path, measures: Sequence[MeasureSpec],
-                     region: RegionKey | None, hex_key: HexKey | None,
-                     categories: Sequence[str], axis_names: Sequence[str]) -> Normalize:
+def _parse_normalize(
+    ctx: _Ctx,
+    doc: Any,
+    base: Path,
+    measures: Sequence[MeasureSpec],
+    region: RegionKey | None,
+    hex_key: HexKey | None,
+    categories: Sequence[str],
+    axis_names: Sequence[str],
+) -> Normalize:
     d = ctx.table(doc, "normalize", NORMALIZE_KEYS)
     names = [m.name for m in measures]
     additive = {m.name for m in measures if m.kind in ("count", "sum")}
 
     def measure_ref(v: Any, key: str) -> str:
         if not isinstance(v, str) or v not in names:
-            raise ctx.fail(key, f"{_short(v)} is not a declared measure"
-                           f"{did_you_mean(str(v), names)}")
+            raise ctx.fail(
+                key, f"{_short(v)} is not a declared measure{did_you_mean(str(v), names)}"
+            )
         if v not in additive:
-            raise ctx.fail(key, f"measure {v!r} is not a count or a sum; only additive "
-                           "measures can be normalised")
+            raise ctx.fail(
+                key,
+                f"measure {v!r} is not a count or a sum; only additive measures can be normalised",
+            )
         return v
 
     dens = None
@@ -1022,39 +1215,51 @@ def _parse_normalize(ctx: _Ctx, doc: Any, base: Path, measures: Sequence[Measure
         p = ctx.string(dd, "normalize.denominators", "path", required=True)
         k = ctx.string(dd, "normalize.denominators", "key", required=True)
         v = ctx.string(dd, "normalize.denominators", "value", required=True)
-        on = ctx.string(dd, "normalize.denominators", "on",
-                        default="region" if region else "hex")
+        on = ctx.string(dd, "normalize.denominators", "on", default="region" if region else "hex")
         assert p and k and v and on
         if on not in ("region", "hex"):
             raise ctx.fail("normalize.denominators.on", f"{on!r} must be region or hex")
         if on == "region" and region is None or on == "hex" and hex_key is None:
-            raise ctx.fail("normalize.denominators.on", f"joins on {on}, but the recipe does "
-                           f"not group by {on}; add group.{on} or change on")
+            raise ctx.fail(
+                "normalize.denominators.on",
+                f"joins on {on}, but the recipe does "
+                f"not group by {on}; add group.{on} or change on",
+            )
         dpath = Path(p) if Path(p).is_absolute() else base / p
         dens = Denominators(dpath, p, k, v, on)  # type: ignore[arg-type]
     rate_measures: tuple[str, ...] = ()
     if "measures" in d:
-        rate_measures = tuple(measure_ref(v, f"normalize.measures[{i}]")
-                              for i, v in enumerate(ctx.str_list(d["measures"],
-                                                                 "normalize.measures")))
+        rate_measures = tuple(
+            measure_ref(v, f"normalize.measures[{i}]")
+            for i, v in enumerate(ctx.str_list(d["measures"], "normalize.measures"))
+        )
         if dens is None:
-            raise ctx.fail("normalize.measures", "rates need denominators; add "
-                           "normalize.denominators = { path = ..., key = ..., value = ... }")
+            raise ctx.fail(
+                "normalize.measures",
+                "rates need denominators; add "
+                "normalize.denominators = { path = ..., key = ..., value = ... }",
+            )
     per = ctx.integer(d.get("per", 100000), "normalize.per", lo=1)
     if "per" in d and not rate_measures:
-        raise ctx.fail("normalize.per", "is set but normalize.measures lists no measure to "
-                       "divide; add measures = [\"...\"]")
+        raise ctx.fail(
+            "normalize.per",
+            'is set but normalize.measures lists no measure to divide; add measures = ["..."]',
+        )
     share = None
     if "share" in d:
         sd = ctx.table(d["share"], "normalize.share", SHARE_KEYS)
         if "measures" not in sd:
             raise ctx.fail("normalize.share.measures", "is required")
-        sm = tuple(measure_ref(v, f"normalize.share.measures[{i}]")
-                   for i, v in enumerate(ctx.str_list(sd["measures"], "normalize.share.measures")))
-        default_within = tuple(axis_names) if categories else tuple(
-            a for a in axis_names if a == "time")
-        within = _within(ctx, sd.get("within", list(default_within)), "normalize.share.within",
-                         axis_names)
+        sm = tuple(
+            measure_ref(v, f"normalize.share.measures[{i}]")
+            for i, v in enumerate(ctx.str_list(sd["measures"], "normalize.share.measures"))
+        )
+        default_within = (
+            tuple(axis_names) if categories else tuple(a for a in axis_names if a == "time")
+        )
+        within = _within(
+            ctx, sd.get("within", list(default_within)), "normalize.share.within", axis_names
+        )
         share = Share(sm, within)
     lq = None
     if "location_quotient" in d:
@@ -1063,14 +1268,21 @@ def _parse_normalize(ctx: _Ctx, doc: Any, base: Path, measures: Sequence[Measure
             raise ctx.fail("normalize.location_quotient.measure", "is required")
         lq = measure_ref(ld["measure"], "normalize.location_quotient.measure")
         if not categories or not (region or hex_key):
-            raise ctx.fail("normalize.location_quotient", "needs a category and a region or "
-                           "hex key to compare; add group.category and group.region")
+            raise ctx.fail(
+                "normalize.location_quotient",
+                "needs a category and a region or "
+                "hex key to compare; add group.category and group.region",
+            )
     if dens is not None and not rate_measures:
-        raise ctx.fail("normalize.denominators", "is given but no measure uses it; add "
-                       "normalize.measures = [\"...\"]")
+        raise ctx.fail(
+            "normalize.denominators",
+            'is given but no measure uses it; add normalize.measures = ["..."]',
+        )
     if not (rate_measures or share or lq):
-        raise ctx.fail("normalize", "declares nothing to compute; add measures (rates), share "
-                       "or location_quotient")
+        raise ctx.fail(
+            "normalize",
+            "declares nothing to compute; add measures (rates), share or location_quotient",
+        )
     return Normalize(dens, per, rate_measures, share, lq)
 
 
@@ -1078,15 +1290,22 @@ def _within(ctx: _Ctx, v: Any, key: str, axis_names: Sequence[str]) -> tuple[str
     items = ctx.str_list(v, key) if v != [] else ()
     for x in items:
         if x not in axis_names:
-            raise ctx.fail(key, f"{x!r} is not a grouping axis of this recipe"
-                           f"{did_you_mean(x, axis_names)}; use some of "
-                           f"{', '.join(axis_names) or '(none)'}")
+            raise ctx.fail(
+                key,
+                f"{x!r} is not a grouping axis of this recipe"
+                f"{did_you_mean(x, axis_names)}; use some of "
+                f"{', '.join(axis_names) or '(none)'}",
+            )
     return items
 
 
-def _parse_prune(ctx: _Ctx, doc: Any, measures: Sequence[MeasureSpec],
-                 categories: Sequence[str], axis_names: Sequence[str],
-                 ) -> tuple[TopK | None, MinCount | None]:
+def _parse_prune(
+    ctx: _Ctx,
+    doc: Any,
+    measures: Sequence[MeasureSpec],
+    categories: Sequence[str],
+    axis_names: Sequence[str],
+) -> tuple[TopK | None, MinCount | None]:
     d = ctx.table(doc, "prune", PRUNE_KEYS)
     names = [m.name for m in measures]
     top = None
@@ -1102,13 +1321,17 @@ def _parse_prune(ctx: _Ctx, doc: Any, measures: Sequence[MeasureSpec],
         ks = tuple(ctx.integer(v, "prune.top.k", lo=1) for v in ks_raw)
         for a, b in zip(ks, ks[1:]):
             if b >= a:
-                raise ctx.fail("prune.top.k", f"must go from most detail to least (strictly "
-                               f"decreasing), but {a} is followed by {b}")
+                raise ctx.fail(
+                    "prune.top.k",
+                    f"must go from most detail to least (strictly "
+                    f"decreasing), but {a} is followed by {b}",
+                )
         by = ctx.string(t, "prune.top", "by", default=names[0])
         assert by is not None
         if by not in names:
-            raise ctx.fail("prune.top.by", f"{by!r} is not a declared measure"
-                           f"{did_you_mean(by, names)}")
+            raise ctx.fail(
+                "prune.top.by", f"{by!r} is not a declared measure{did_you_mean(by, names)}"
+            )
         within = _within(ctx, t.get("within", list(axis_names)), "prune.top.within", axis_names)
         rest = ctx.string(t, "prune.top", "rest", default="other")
         assert rest is not None
@@ -1124,18 +1347,25 @@ def _parse_prune(ctx: _Ctx, doc: Any, measures: Sequence[MeasureSpec],
             by_m = ctx.string(md, "prune.min_count", "by")
             if by_m is not None:
                 if by_m not in names:
-                    raise ctx.fail("prune.min_count.by", f"{by_m!r} is not a declared measure"
-                                   f"{did_you_mean(by_m, names)}")
+                    raise ctx.fail(
+                        "prune.min_count.by",
+                        f"{by_m!r} is not a declared measure{did_you_mean(by_m, names)}",
+                    )
                 kind = next(m.kind for m in measures if m.name == by_m)
                 if kind not in ("count", "distinct"):
-                    raise ctx.fail("prune.min_count.by", f"measure {by_m!r} is a {kind}; use "
-                                   "a count or a distinct measure (e.g. distinct observers)")
+                    raise ctx.fail(
+                        "prune.min_count.by",
+                        f"measure {by_m!r} is a {kind}; use "
+                        "a count or a distinct measure (e.g. distinct observers)",
+                    )
             fold = md.get("fold", False)
             if not isinstance(fold, bool):
                 raise ctx.fail("prune.min_count.fold", "must be true or false")
             if fold and top is None:
-                raise ctx.fail("prune.min_count.fold", "folds into the remainder row of "
-                               "prune.top; add prune.top or set fold = false")
+                raise ctx.fail(
+                    "prune.min_count.fold",
+                    "folds into the remainder row of prune.top; add prune.top or set fold = false",
+                )
             mc = MinCount(thr, by_m, fold)
         else:
             mc = MinCount(ctx.integer(v, "prune.min_count", lo=1), None, False)
@@ -1145,7 +1375,7 @@ def _parse_prune(ctx: _Ctx, doc: Any, measures: Sequence[MeasureSpec],
 def _parse_budget(ctx: _Ctx, doc: Any, axes: Sequence[str]) -> Budget:
     d = ctx.table(doc, "budget", BUDGET_KEYS)
     if "max" not in d:
-        raise ctx.fail("budget.max", "is required; e.g. max = \"300KB\"")
+        raise ctx.fail("budget.max", 'is required; e.g. max = "300KB"')
     try:
         mx = parse_size(d["max"])
     except ValueError as e:
@@ -1153,15 +1383,19 @@ def _parse_budget(ctx: _Ctx, doc: Any, axes: Sequence[str]) -> Budget:
     on = ctx.string(d, "budget", "on", default="gzip")
     assert on is not None
     if on not in MEASURES:
-        raise ctx.fail("budget.on", f"{on!r} is not a measure{did_you_mean(on, MEASURES)}; "
-                       "use raw, gzip or brotli")
-    default_order = [a for a in ("simplify", "coords", "top", "time", "hex", "digits")
-                     if a in axes]
+        raise ctx.fail(
+            "budget.on",
+            f"{on!r} is not a measure{did_you_mean(on, MEASURES)}; use raw, gzip or brotli",
+        )
+    default_order = [a for a in ("simplify", "coords", "top", "time", "hex", "digits") if a in axes]
     order = ctx.str_list(d.get("order", default_order), "budget.order")
     for a in order:
         if a not in axes:
-            raise ctx.fail("budget.order", f"{a!r} is not a ladder axis of this recipe"
-                           f"{did_you_mean(a, axes)}; use some of {', '.join(axes)}")
+            raise ctx.fail(
+                "budget.order",
+                f"{a!r} is not a ladder axis of this recipe"
+                f"{did_you_mean(a, axes)}; use some of {', '.join(axes)}",
+            )
     # Axes left out of the order give up detail last, in the default sequence.
     order = tuple(order) + tuple(a for a in default_order if a not in order)
     return Budget(mx, on, order)
@@ -1172,28 +1406,33 @@ def _parse_output(ctx: _Ctx, doc: Any, base: Path) -> Output:
     p = ctx.string(d, "output", "path")
     path = None if p is None else (Path(p) if Path(p).is_absolute() else base / p)
     if path is not None and path.suffix == "":
-        raise ctx.fail("output.path", f"{p!r} has no file extension; name the payload file, "
-                       "e.g. out/name.json")
+        raise ctx.fail(
+            "output.path", f"{p!r} has no file extension; name the payload file, e.g. out/name.json"
+        )
     layout = ctx.string(d, "output", "layout", default="columns")
     assert layout is not None
     if layout not in LAYOUTS:
-        raise ctx.fail("output.layout", f"{layout!r} is not a layout"
-                       f"{did_you_mean(layout, LAYOUTS)}; use one of {', '.join(LAYOUTS)}")
+        raise ctx.fail(
+            "output.layout",
+            f"{layout!r} is not a layout"
+            f"{did_you_mean(layout, LAYOUTS)}; use one of {', '.join(LAYOUTS)}",
+        )
     digits_raw = d.get("digits", 4)
     dl = digits_raw if isinstance(digits_raw, list) else [digits_raw]
     if not dl:
-        raise ctx.fail("output.digits", "is empty; give a number of decimals or a list, most "
-                       "first")
+        raise ctx.fail("output.digits", "is empty; give a number of decimals or a list, most first")
     digits = tuple(ctx.integer(v, "output.digits", lo=0, hi=15) for v in dl)
     for a, b in zip(digits, digits[1:]):
         if b >= a:
-            raise ctx.fail("output.digits", f"must go from most decimals to fewest, but {a} "
-                           f"is followed by {b}")
+            raise ctx.fail(
+                "output.digits", f"must go from most decimals to fewest, but {a} is followed by {b}"
+            )
     cd = d.get("column_digits", {})
     if not isinstance(cd, dict):
         raise ctx.fail("output.column_digits", "must be a table of column = decimals")
-    column_digits = tuple(sorted((k, ctx.integer(v, f"output.column_digits.{k}", lo=0, hi=15))
-                                 for k, v in cd.items()))
+    column_digits = tuple(
+        sorted((k, ctx.integer(v, f"output.column_digits.{k}", lo=0, hi=15)) for k, v in cd.items())
+    )
     inline = d.get("inline", False)
     if not isinstance(inline, bool):
         raise ctx.fail("output.inline", "must be true or false")
@@ -1201,38 +1440,51 @@ def _parse_output(ctx: _Ctx, doc: Any, base: Path) -> Output:
         raise ctx.fail("output.inline", "applies to JSON layouts only")
     if path is not None and path.suffix.lower() not in LAYOUT_EXTENSIONS[layout]:
         want = LAYOUT_EXTENSIONS[layout]
-        raise ctx.fail("output.path", f"{p!r} ends in {path.suffix}, but output.layout "
-                       f"{layout!r} writes {' or '.join(want)} files; name the file "
-                       f"{path.stem}{want[0]} or change output.layout")
+        raise ctx.fail(
+            "output.path",
+            f"{p!r} ends in {path.suffix}, but output.layout "
+            f"{layout!r} writes {' or '.join(want)} files; name the file "
+            f"{path.stem}{want[0]} or change output.layout",
+        )
     flags = {}
     for k in ("precompress", "preview"):
         flags[k] = d.get(k, False)
         if not isinstance(flags[k], bool):
             raise ctx.fail(f"output.{k}", "must be true or false")
     if flags["preview"] and layout == "csv":
-        raise ctx.fail("output.preview", "draws JSON layouts (columns, rows, geojson) only; "
-                       "set preview = false or change output.layout")
+        raise ctx.fail(
+            "output.preview",
+            "draws JSON layouts (columns, rows, geojson) only; "
+            "set preview = false or change output.layout",
+        )
     simplify: tuple[float, ...] = (0.0,)
     coords: tuple[int, ...] = (6,)
     if "simplify" in d or "coordinate_digits" in d:
         if layout != "geojson":
             k = "simplify" if "simplify" in d else "coordinate_digits"
-            raise ctx.fail(f"output.{k}", "applies to layout = \"geojson\" only")
+            raise ctx.fail(f"output.{k}", 'applies to layout = "geojson" only')
     if "simplify" in d:
         raw = d["simplify"] if isinstance(d["simplify"], list) else [d["simplify"]]
         if not raw:
-            raise ctx.fail("output.simplify", "is empty; give a tolerance in degrees or a list, "
-                           "finest (smallest) first")
+            raise ctx.fail(
+                "output.simplify",
+                "is empty; give a tolerance in degrees or a list, finest (smallest) first",
+            )
         vals: list[float] = []
         for v in raw:
             if isinstance(v, bool) or not isinstance(v, (int, float)) or not 0 <= v <= 1:
-                raise ctx.fail("output.simplify", f"{_short(v)} is not a tolerance; use degrees "
-                               "between 0 and 1, e.g. 0.001")
+                raise ctx.fail(
+                    "output.simplify",
+                    f"{_short(v)} is not a tolerance; use degrees between 0 and 1, e.g. 0.001",
+                )
             vals.append(float(v))
         for finer, coarser in zip(vals, vals[1:]):
             if coarser <= finer:
-                raise ctx.fail("output.simplify", f"must go from finest to coarsest (increasing "
-                               f"tolerance), but {finer} is followed by {coarser}")
+                raise ctx.fail(
+                    "output.simplify",
+                    f"must go from finest to coarsest (increasing "
+                    f"tolerance), but {finer} is followed by {coarser}",
+                )
         simplify = tuple(vals)
     if "coordinate_digits" in d:
         raw = d["coordinate_digits"]
@@ -1242,7 +1494,18 @@ def _parse_output(ctx: _Ctx, doc: Any, base: Path) -> Output:
         coords = tuple(ctx.integer(v, "output.coordinate_digits", lo=0, hi=9) for v in raw)
         for a, b in zip(coords, coords[1:]):
             if b >= a:
-                raise ctx.fail("output.coordinate_digits", f"must go from most decimals to "
-                               f"fewest, but {a} is followed by {b}")
-    return Output(path, layout, digits, column_digits, inline,  # type: ignore[arg-type]
-                  simplify, coords, precompress=flags["precompress"], preview=flags["preview"])
+                raise ctx.fail(
+                    "output.coordinate_digits",
+                    f"must go from most decimals to fewest, but {a} is followed by {b}",
+                )
+    return Output(
+        path,
+        layout,  # type: ignore[arg-type]
+        digits,
+        column_digits,
+        inline,
+        simplify,
+        coords,
+        precompress=flags["precompress"],
+        preview=flags["preview"],
+    )

@@ -24,14 +24,19 @@ def run_line(res: RunResult) -> str:
     f = res.fit
     c = f.chosen
     assert c is not None and f.level is not None
-    parts = [f"{f.recipe.name}: {c.rows:,} rows", describe_level(f.level),
-             f"raw {format_size(c.raw or 0)}", f"gzip {format_size(c.gzip or 0)}",
-             f"brotli {format_size(c.brotli)}" if c.brotli is not None
-             else "brotli not measured"]
+    parts = [
+        f"{f.recipe.name}: {c.rows:,} rows",
+        describe_level(f.level),
+        f"raw {format_size(c.raw or 0)}",
+        f"gzip {format_size(c.gzip or 0)}",
+        f"brotli {format_size(c.brotli)}" if c.brotli is not None else "brotli not measured",
+    ]
     if f.budget:
         b = f.budget
-        parts.append(f"budget {format_size(b.max)} {b.on}"
-                     + (" (over: written anyway)" if res.over_budget else ""))
+        parts.append(
+            f"budget {format_size(b.max)} {b.on}"
+            + (" (over: written anyway)" if res.over_budget else "")
+        )
     acc = f.accounting
     if acc.get("invalid_rows"):
         parts.append(f"{acc['invalid_rows']:,} invalid rows")
@@ -56,14 +61,20 @@ def run_warnings(res: RunResult) -> list[str]:
     if rep and f.recipe.normalize and f.recipe.normalize.rate_measures:
         name = f.recipe.name
         if rep["rows_without_denominator"]:
-            out.append(f"warning: {name}: {rep['rows_without_denominator']:,} rows have no "
-                       "usable denominator (rate left empty)")
+            out.append(
+                f"warning: {name}: {rep['rows_without_denominator']:,} rows have no "
+                "usable denominator (rate left empty)"
+            )
         if rep["data_only_keys"]:
-            out.append(f"warning: {name}: keys in the data but not in the denominators: "
-                       f"{_few(rep['data_only_keys'])}")
+            out.append(
+                f"warning: {name}: keys in the data but not in the denominators: "
+                f"{_few(rep['data_only_keys'])}"
+            )
         if rep["denominator_only_keys"]:
-            out.append(f"warning: {name}: keys in the denominators but not in the data: "
-                       f"{_few(rep['denominator_only_keys'])}")
+            out.append(
+                f"warning: {name}: keys in the denominators but not in the data: "
+                f"{_few(rep['denominator_only_keys'])}"
+            )
     return out
 
 
@@ -76,16 +87,26 @@ def run_json(res: RunResult) -> dict[str, Any]:
     f = res.fit
     c = f.chosen
     assert c is not None
-    return {"recipe": f.recipe.name, "path": str(res.path),
-            "level": dict(f.level) if f.level is not None else None, "rows": c.rows,
-            "elements": c.elements, "bytes": {"raw": c.raw, "gzip": c.gzip,
-                                              "brotli": c.brotli},
-            "over_budget": res.over_budget, "accounting": f.accounting,
-            "files": f.reducer.files if f.reducer is not None else None,
-            **({"denominators": f.record.denominators}
-               if f.record is not None and f.record.denominators is not None
-               and f.recipe.normalize and f.recipe.normalize.rate_measures else {}),
-            "manifest": res.manifest}
+    return {
+        "recipe": f.recipe.name,
+        "path": str(res.path),
+        "level": dict(f.level) if f.level is not None else None,
+        "rows": c.rows,
+        "elements": c.elements,
+        "bytes": {"raw": c.raw, "gzip": c.gzip, "brotli": c.brotli},
+        "over_budget": res.over_budget,
+        "accounting": f.accounting,
+        "files": f.reducer.files if f.reducer is not None else None,
+        **(
+            {"denominators": f.record.denominators}
+            if f.record is not None
+            and f.record.denominators is not None
+            and f.recipe.normalize
+            and f.recipe.normalize.rate_measures
+            else {}
+        ),
+        "manifest": res.manifest,
+    }
 
 
 def ladder_table(result: FitResult) -> str:
@@ -94,24 +115,36 @@ def ladder_table(result: FitResult) -> str:
     head = ["", *axes, "rows", "elements", "raw", "gzip", "brotli", "fits"]
     rows: list[list[str]] = []
     cands: list[Candidate] = sorted(
-        result.candidates,
-        key=lambda c: [_rank(result, a, c.level[a]) for a in axes])
+        result.candidates, key=lambda c: [_rank(result, a, c.level[a]) for a in axes]
+    )
     for c in cands:
-        rows.append(["*" if c.chosen else "", *[str(c.level[a]) for a in axes], _num(c.rows),
-                     _num(c.elements), _num(c.raw), _num(c.gzip), _num(c.brotli),
-                     "-" if c.fits is None else ("yes" if c.fits else "no")])
+        rows.append(
+            [
+                "*" if c.chosen else "",
+                *[str(c.level[a]) for a in axes],
+                _num(c.rows),
+                _num(c.elements),
+                _num(c.raw),
+                _num(c.gzip),
+                _num(c.brotli),
+                "-" if c.fits is None else ("yes" if c.fits else "no"),
+            ]
+        )
     widths = [max(len(r[i]) for r in [head, *rows]) for i in range(len(head))]
     right = set(range(len(axes) + 1, len(head)))
 
     def fmt(r: list[str]) -> str:
-        return "  ".join(v.rjust(w) if i in right else v.ljust(w)
-                         for i, (v, w) in enumerate(zip(r, widths))).rstrip()
+        return "  ".join(
+            v.rjust(w) if i in right else v.ljust(w) for i, (v, w) in enumerate(zip(r, widths))
+        ).rstrip()
 
     lines = [fmt(head), fmt(["-" * w for w in widths]), *map(fmt, rows)]
     b = result.budget
     if b:
-        lines.append(f"budget: {format_size(b.max)} ({b.max:,} bytes) {b.on}; order: "
-                     f"{', '.join(b.order)} (first gives up detail first)")
+        lines.append(
+            f"budget: {format_size(b.max)} ({b.max:,} bytes) {b.on}; order: "
+            f"{', '.join(b.order)} (first gives up detail first)"
+        )
     if result.chosen:
         lines.append(f"chosen: {describe_level(result.chosen.level)}")
     return "\n".join(lines)
@@ -125,36 +158,65 @@ def _rank(result: FitResult, axis: str, value: Any) -> int:
 def ladder_json(result: FitResult) -> bytes:
     doc = {
         "recipe": result.recipe.name,
-        "budget": ({"max": result.budget.max, "on": result.budget.on,
-                    "order": list(result.budget.order)} if result.budget else None),
+        "budget": (
+            {"max": result.budget.max, "on": result.budget.on, "order": list(result.budget.order)}
+            if result.budget
+            else None
+        ),
         "chosen": dict(result.level) if result.level is not None else None,
-        "candidates": [{"level": dict(c.level), "rows": c.rows, "elements": c.elements,
-                        "raw": c.raw, "gzip": c.gzip, "brotli": c.brotli, "fits": c.fits,
-                        "chosen": c.chosen} for c in result.candidates],
+        "candidates": [
+            {
+                "level": dict(c.level),
+                "rows": c.rows,
+                "elements": c.elements,
+                "raw": c.raw,
+                "gzip": c.gzip,
+                "brotli": c.brotli,
+                "fits": c.fits,
+                "chosen": c.chosen,
+            }
+            for c in result.candidates
+        ],
         "partial_from_cache": result.partial_from_cache,
     }
     return orjson.dumps(doc, option=orjson.OPT_INDENT_2)
 
 
 def check_line(recipe_file: Path, name: str, files: int, columns: Sequence[str]) -> str:
-    return (f"{recipe_file}: ok ({name}: {files} source file{'s' if files != 1 else ''}, "
-            f"columns {', '.join(columns)})")
+    return (
+        f"{recipe_file}: ok ({name}: {files} source file{'s' if files != 1 else ''}, "
+        f"columns {', '.join(columns)})"
+    )
 
 
 def preview_line(p: Any) -> str:
     """One line per previewed payload (a :class:`reduce.preview.Preview`)."""
-    line = (f"{shown(p.payload)}: {p.kind}, {p.rows:,} rows -> {shown(p.png)}, "
-            f"{shown(p.html)}")
+    line = f"{shown(p.payload)}: {p.kind}, {p.rows:,} rows -> {shown(p.png)}, {shown(p.html)}"
     m = p.timings
     if m:
-        line += (f"; {m['surface']}, parse {m['parse_ms']:.1f} ms, draw {m['draw_ms']:.1f} ms "
-                 f"(median of {m['loads']} loads in headless Chromium)")
+        line += (
+            f"; {m['surface']}, parse {m['parse_ms']:.1f} ms, draw {m['draw_ms']:.1f} ms "
+            f"(median of {m['loads']} loads in headless Chromium)"
+        )
     return line
 
 
 def preview_json(previews: Sequence[Any]) -> bytes:
-    return orjson.dumps([{"payload": str(p.payload), "png": str(p.png), "html": str(p.html),
-                          "kind": p.kind, "rows": p.rows,
-                          **({"measured": {k: v for k, v in p.timings.items() if k != "page"}}
-                             if p.timings else {})}
-                         for p in previews], option=orjson.OPT_INDENT_2)
+    return orjson.dumps(
+        [
+            {
+                "payload": str(p.payload),
+                "png": str(p.png),
+                "html": str(p.html),
+                "kind": p.kind,
+                "rows": p.rows,
+                **(
+                    {"measured": {k: v for k, v in p.timings.items() if k != "page"}}
+                    if p.timings
+                    else {}
+                ),
+            }
+            for p in previews
+        ],
+        option=orjson.OPT_INDENT_2,
+    )

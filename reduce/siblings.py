@@ -23,8 +23,10 @@ SUFFIXES = (".gz", ".br")
 
 def sibling_paths(payload: Path) -> dict[str, Path]:
     """``{"gzip": x.json.gz, "brotli": x.json.br}`` for payload ``x.json``."""
-    return {"gzip": payload.with_name(payload.name + ".gz"),
-            "brotli": payload.with_name(payload.name + ".br")}
+    return {
+        "gzip": payload.with_name(payload.name + ".gz"),
+        "brotli": payload.with_name(payload.name + ".br"),
+    }
 
 
 def precompressed(payload: Path, data: bytes) -> dict[str, bytes]:

@@ -45,9 +45,7 @@ def parse_size(value: object) -> int:
         m = _SIZE_RE.match(value)
         unit = m.group(2).upper() if m else None
         if not m or unit not in _UNITS:
-            raise ValueError(
-                f"{value!r} is not a size; use e.g. 300KB, 1.5MB, 200KiB or 250000"
-            )
+            raise ValueError(f"{value!r} is not a size; use e.g. 300KB, 1.5MB, 200KiB or 250000")
         n = round(float(m.group(1)) * _UNITS[unit])
     else:
         raise ValueError(f"{value!r} is not a size; use e.g. 300KB, 1.5MB, 200KiB or 250000")

@@ -27,8 +27,13 @@ from reduce.keys import parse_coordinate_text, parse_time_text
 from reduce.recipe import Filter, Recipe
 from reduce.recipe import filter_instant as _instant
 
-_EXT = {".parquet": "parquet", ".pq": "parquet", ".csv": "csv", ".ndjson": "ndjson",
-        ".jsonl": "ndjson"}
+_EXT = {
+    ".parquet": "parquet",
+    ".pq": "parquet",
+    ".csv": "csv",
+    ".ndjson": "ndjson",
+    ".jsonl": "ndjson",
+}
 
 
 @dataclass(frozen=True, slots=True)
@@ -58,9 +63,11 @@ class OpenSource:
         opened: a result scanned from it may mix two versions, so it must not be used."""
         changed = self.changed_files()
         if changed:
-            raise SourceError(f"{shown_path(changed[0])}: changed while it was being read "
-                              "(size, modification time or content); nothing was published "
-                              "or cached: run again once the file is complete")
+            raise SourceError(
+                f"{shown_path(changed[0])}: changed while it was being read "
+                "(size, modification time or content); nothing was published "
+                "or cached: run again once the file is complete"
+            )
 
     def read_error(self, e: pl.exceptions.PolarsError) -> SourceError | None:
         """For a scan polars could not complete: the bad NDJSON line if there is one, else
@@ -72,21 +79,32 @@ class OpenSource:
         try:
             self.frame.select(pl.all().null_count()).collect(engine="streaming")
         except pl.exceptions.PolarsError as read:
-            return SourceError(f"{_files_label(self.files)}: cannot read as {self.format} "
-                               f"({_first_line(read)}); check that the files are complete "
-                               "and of that format")
+            return SourceError(
+                f"{_files_label(self.files)}: cannot read as {self.format} "
+                f"({_first_line(read)}); check that the files are complete "
+                "and of that format"
+            )
         return None
 
     def line_error(self) -> SourceError | None:
         """For an NDJSON source that polars cannot read: the first bad line, named."""
-        return ndjson_line_error(self.files, self.schema, self.columns) \
-            if self.format == "ndjson" else None
+        return (
+            ndjson_line_error(self.files, self.schema, self.columns)
+            if self.format == "ndjson"
+            else None
+        )
 
     def rows_frame(self, offset: int, length: int) -> pl.LazyFrame:
         """Like ``frame``, over input rows ``offset`` to ``offset + length`` only (counted
         before filters, so consecutive ranges split the input without overlap)."""
-        lf = _scan(self.files, self.format, list(self.columns), null_values=self.null_values,
-                   text_columns=self.text_columns, hive=self.hive).slice(offset, length)
+        lf = _scan(
+            self.files,
+            self.format,
+            list(self.columns),
+            null_values=self.null_values,
+            text_columns=self.text_columns,
+            hive=self.hive,
+        ).slice(offset, length)
         if self.casts:
             lf = lf.with_columns(self.casts)
         for e in self.filters:
@@ -96,11 +114,16 @@ class OpenSource:
     def count_rows(self) -> int:
         """Rows before filters (parquet: read from file metadata, no data scan)."""
         try:
-            return int(_scan(self.files, self.format, None, null_values=self.null_values)
-                       .select(pl.len()).collect().item())
+            return int(
+                _scan(self.files, self.format, None, null_values=self.null_values)
+                .select(pl.len())
+                .collect()
+                .item()
+            )
         except pl.exceptions.PolarsError as e:
-            raise SourceError(f"{_files_label(self.files)}: cannot read ({_first_line(e)})") \
-                from None
+            raise SourceError(
+                f"{_files_label(self.files)}: cannot read ({_first_line(e)})"
+            ) from None
 
 
 def _first_line(e: BaseException) -> str:
@@ -120,8 +143,10 @@ def resolve_files(pattern: str, display: str, fmt: str | None) -> tuple[list[Pat
     try:
         return _resolve_files(pattern, where, fmt)
     except OSError as e:  # a name too long for the file system, a loop of links ...
-        raise SourceError(f"{where}: cannot read the path ({e.strerror}); check the path, "
-                          "which is relative to the recipe file") from None
+        raise SourceError(
+            f"{where}: cannot read the path ({e.strerror}); check the path, "
+            "which is relative to the recipe file"
+        ) from None
 
 
 def _resolve_files(pattern: str, where: str, fmt: str | None) -> tuple[list[Path], str]:
@@ -129,24 +154,33 @@ def _resolve_files(pattern: str, where: str, fmt: str | None) -> tuple[list[Path
     if any(ch in pattern for ch in "*?["):
         files = sorted(Path(f) for f in _glob.glob(pattern, recursive=True) if Path(f).is_file())
         if not files:
-            raise SourceError(f"{where}: the pattern matches no file; check the path and the "
-                              "pattern")
+            raise SourceError(
+                f"{where}: the pattern matches no file; check the path and the pattern"
+            )
     elif p.is_dir():
-        files = sorted(f for f in p.rglob("*") if f.is_file() and f.suffix.lower() in _EXT
-                       and not any(part.startswith((".", "_")) for part in
-                                   f.relative_to(p).parts))
+        files = sorted(
+            f
+            for f in p.rglob("*")
+            if f.is_file()
+            and f.suffix.lower() in _EXT
+            and not any(part.startswith((".", "_")) for part in f.relative_to(p).parts)
+        )
         if not files:
             raise SourceError(f"{where}: the folder holds no .parquet, .csv or .ndjson file")
     elif p.is_file():
         files = [p]
     else:
-        raise SourceError(f"{where}: no such file or folder ({shown_path(p)}); check the path, "
-                          "which is relative to the recipe file")
+        raise SourceError(
+            f"{where}: no such file or folder ({shown_path(p)}); check the path, "
+            "which is relative to the recipe file"
+        )
     formats = {_EXT.get(f.suffix.lower()) for f in files}
     if fmt is None:
         if None in formats or len(formats) != 1:
-            raise SourceError(f"{where}: cannot tell the file format from the file names; set "
-                              "source.format to parquet, csv or ndjson")
+            raise SourceError(
+                f"{where}: cannot tell the file format from the file names; set "
+                "source.format to parquet, csv or ndjson"
+            )
         fmt = formats.pop()
         assert fmt is not None
     return files, fmt
@@ -165,9 +199,15 @@ def _hive(files: list[Path] | tuple[Path, ...]) -> bool:
     return len(files) > 1 and any("=" in part for f in files for part in f.parent.parts[-3:])
 
 
-def _scan(files: list[Path] | tuple[Path, ...], fmt: str, columns: list[str] | None, *,
-          null_values: tuple[str, ...] = (), text_columns: tuple[str, ...] = (),
-          hive: bool | None = None) -> pl.LazyFrame:
+def _scan(
+    files: list[Path] | tuple[Path, ...],
+    fmt: str,
+    columns: list[str] | None,
+    *,
+    null_values: tuple[str, ...] = (),
+    text_columns: tuple[str, ...] = (),
+    hive: bool | None = None,
+) -> pl.LazyFrame:
     """The files as a lazy frame. Text equal to one of the markers (see :func:`_markers`) is
     null: CSV fields, quoted or not, and NDJSON strings (JSON has its own null too).
     CSV ``text_columns`` are read as text (converted afterwards, see :func:`_text_casts`)."""
@@ -177,16 +217,25 @@ def _scan(files: list[Path] | tuple[Path, ...], fmt: str, columns: list[str] | N
         lf = pl.scan_parquet(srcs, hive_partitioning=_hive(files) if hive is None else hive)
     elif fmt == "csv":
         # Invalid UTF-8 in text becomes U+FFFD (the documented policy), never a crash.
-        lf = pl.scan_csv(srcs, try_parse_dates=True, infer_schema_length=10000,
-                         encoding="utf8-lossy", null_values=markers,
-                         schema_overrides={c: pl.String for c in text_columns} or None)
+        lf = pl.scan_csv(
+            srcs,
+            try_parse_dates=True,
+            infer_schema_length=10000,
+            encoding="utf8-lossy",
+            null_values=markers,
+            schema_overrides={c: pl.String for c in text_columns} or None,
+        )
     else:
         lf = pl.scan_ndjson(srcs, infer_schema_length=10000)
-        text = [c for c, d in lf.collect_schema().items()
-                if d == pl.String and (columns is None or c in columns)]
+        text = [
+            c
+            for c, d in lf.collect_schema().items()
+            if d == pl.String and (columns is None or c in columns)
+        ]
         if text:
-            lf = lf.with_columns(pl.when(~pl.col(c).is_in(markers)).then(pl.col(c)).alias(c)
-                                 for c in text)
+            lf = lf.with_columns(
+                pl.when(~pl.col(c).is_in(markers)).then(pl.col(c)).alias(c) for c in text
+            )
     return lf if columns is None else lf.select(columns)
 
 
@@ -195,9 +244,14 @@ def _markers(null_values: tuple[str, ...]) -> list[str]:
     return list(dict.fromkeys(("", *null_values)))
 
 
-def _text_casts(recipe: Recipe, fmt: str, schema: pl.Schema, label: str,
-                files: list[Path], null_values: tuple[str, ...]
-                ) -> tuple[tuple[str, ...], tuple[pl.Expr, ...], pl.Schema]:
+def _text_casts(
+    recipe: Recipe,
+    fmt: str,
+    schema: pl.Schema,
+    label: str,
+    files: list[Path],
+    null_values: tuple[str, ...],
+) -> tuple[tuple[str, ...], tuple[pl.Expr, ...], pl.Schema]:
     """CSV coordinates and times read as text and converted here, so that a value that
     cannot be read (``n/a`` in a latitude, ``unknown`` in a time) makes its row invalid (by
     reason, like an out-of-range value) instead of failing the scan or turning the whole
@@ -209,18 +263,28 @@ def _text_casts(recipe: Recipe, fmt: str, schema: pl.Schema, label: str,
     if recipe.needs_coordinates and src.lat and src.lon:
         coords += [src.lat, src.lon]
     if recipe.flow:
-        coords += [c for end in (recipe.flow.origin, recipe.flow.destination)
-                   for c in (end.lat, end.lon) if c]
-    coords = [c for c in dict.fromkeys(coords) if c in schema
-              and (schema[c] == pl.String or schema[c].is_numeric())]
+        coords += [
+            c
+            for end in (recipe.flow.origin, recipe.flow.destination)
+            for c in (end.lat, end.lon)
+            if c
+        ]
+    coords = [
+        c
+        for c in dict.fromkeys(coords)
+        if c in schema and (schema[c] == pl.String or schema[c].is_numeric())
+    ]
     casts = [parse_coordinate_text(c).alias(c) for c in coords]
     fixed: dict[str, Any] = dict(schema.items())
     for c in coords:
         fixed[c] = pl.Float64
     text = list(coords)
     t = src.time if recipe.time else None
-    if t and t in schema and (schema[t] == pl.String or isinstance(schema[t],
-                                                                   (pl.Datetime, pl.Date))):
+    if (
+        t
+        and t in schema
+        and (schema[t] == pl.String or isinstance(schema[t], (pl.Datetime, pl.Date)))
+    ):
         raw = _scan(files, fmt, [t], null_values=null_values, text_columns=(t,))
         e, dtype = parse_time_text(raw, t, label)
         casts.append(e.alias(t))
@@ -229,8 +293,9 @@ def _text_casts(recipe: Recipe, fmt: str, schema: pl.Schema, label: str,
     return tuple(text), tuple(casts), pl.Schema(fixed)
 
 
-def _schema(files: list[Path], fmt: str, display: str,
-            null_values: tuple[str, ...] = ()) -> pl.Schema:
+def _schema(
+    files: list[Path], fmt: str, display: str, null_values: tuple[str, ...] = ()
+) -> pl.Schema:
     """The common schema; every parquet file must agree (checked from metadata)."""
     try:
         if fmt == "parquet":
@@ -244,7 +309,8 @@ def _schema(files: list[Path], fmt: str, display: str,
                         f"{shown_path(f)}: its schema differs from {shown_path(files[0])} at column "
                         f"{col!r} ({first.get(col, 'missing')} vs {other.get(col, 'missing')}); "
                         f"make every file of "
-                        f"source.path {display!r} share one schema")
+                        f"source.path {display!r} share one schema"
+                    )
             return pl.Schema(_scan(files, fmt, None).collect_schema())
         return pl.Schema(_scan(files, fmt, None, null_values=null_values).collect_schema())
     except SourceError:
@@ -258,8 +324,10 @@ def _schema(files: list[Path], fmt: str, display: str,
                 except Exception:
                     bad = f
                     break
-        raise SourceError(f"{shown_path(bad)}: cannot read as {fmt} ({_first_line(e)}); check that "
-                          "the file is complete and of that format") from None
+        raise SourceError(
+            f"{shown_path(bad)}: cannot read as {fmt} ({_first_line(e)}); check that "
+            "the file is complete and of that format"
+        ) from None
 
 
 def _is_numeric(dtype: pl.DataType) -> bool:
@@ -271,8 +339,12 @@ def _is_time(dtype: pl.DataType) -> bool:
 
 
 def _is_key(dtype: pl.DataType) -> bool:
-    return dtype == pl.String or isinstance(dtype, (pl.Categorical, pl.Enum)) or \
-        dtype.is_integer() or dtype == pl.Boolean
+    return (
+        dtype == pl.String
+        or isinstance(dtype, (pl.Categorical, pl.Enum))
+        or dtype.is_integer()
+        or dtype == pl.Boolean
+    )
 
 
 def needed_columns(recipe: Recipe) -> list[str]:
@@ -283,11 +355,17 @@ def needed_columns(recipe: Recipe) -> list[str]:
     if recipe.flow:
         for end in (recipe.flow.origin, recipe.flow.destination):
             flow_cols += [end.column, end.lat, end.lon]
-    for c in (src.time if recipe.time else None, src.lat if geo else None,
-              src.lon if geo else None,
-              recipe.region.source if recipe.region else None, *recipe.category_sources,
-              *flow_cols, *(m.column for m in recipe.measures), *(f.column for f in src.filters),
-              *(f.column for m in recipe.measures for f in m.where)):
+    for c in (
+        src.time if recipe.time else None,
+        src.lat if geo else None,
+        src.lon if geo else None,
+        recipe.region.source if recipe.region else None,
+        *recipe.category_sources,
+        *flow_cols,
+        *(m.column for m in recipe.measures),
+        *(f.column for f in src.filters),
+        *(f.column for m in recipe.measures for f in m.where),
+    ):
         if c is not None and c not in cols:
             cols.append(c)
     return cols
@@ -316,15 +394,19 @@ def check_schema(recipe: Recipe, schema: pl.Schema, label: str) -> None:
 
     def need(col: str, key: str) -> pl.DataType:
         if col not in schema:
-            raise SourceError(f"{label}: column {col!r} (from {recipe.file.name}: {key}) is not "
-                              f"in the source{did_you_mean(col, names)}; columns are: "
-                              f"{', '.join(names[:12])}{' ...' if len(names) > 12 else ''}")
+            raise SourceError(
+                f"{label}: column {col!r} (from {recipe.file.name}: {key}) is not "
+                f"in the source{did_you_mean(col, names)}; columns are: "
+                f"{', '.join(names[:12])}{' ...' if len(names) > 12 else ''}"
+            )
         return schema[col]
 
     def wrong(col: str, key: str, dtype: pl.DataType, want: str) -> SourceError:
-        return SourceError(f"{label}: column {col!r} (from {recipe.file.name}: {key}) is "
-                           f"{dtype}, but {key} needs {want}; convert the column or pick "
-                           "another")
+        return SourceError(
+            f"{label}: column {col!r} (from {recipe.file.name}: {key}) is "
+            f"{dtype}, but {key} needs {want}; convert the column or pick "
+            "another"
+        )
 
     if recipe.time and src.time:
         d = need(src.time, "source.time")
@@ -334,15 +416,13 @@ def check_schema(recipe: Recipe, schema: pl.Schema, label: str) -> None:
     if recipe.needs_coordinates:
         coords += [(src.lat, "source.lat"), (src.lon, "source.lon")]
     if recipe.flow:
-        for end, name in ((recipe.flow.origin, "origin"), (recipe.flow.destination,
-                                                          "destination")):
+        for end, name in ((recipe.flow.origin, "origin"), (recipe.flow.destination, "destination")):
             if end.column is not None:
                 d = need(end.column, f"group.flow.{name}")
                 if not _is_key(d):
                     raise wrong(end.column, f"group.flow.{name}", d, "text or integers")
             else:
-                coords += [(end.lat, f"group.flow.{name}.lat"),
-                           (end.lon, f"group.flow.{name}.lon")]
+                coords += [(end.lat, f"group.flow.{name}.lat"), (end.lon, f"group.flow.{name}.lon")]
     for col, key in coords:
         assert col is not None
         d = need(col, key)
@@ -370,12 +450,15 @@ def check_schema(recipe: Recipe, schema: pl.Schema, label: str) -> None:
         _try_filter(f, _filter_expr(f, d, src.naive_zone, label), schema, label)
 
 
-def where_mask(recipe: Recipe, where: tuple[Filter, ...], schema: pl.Schema,
-               label: str) -> pl.Expr:
+def where_mask(recipe: Recipe, where: tuple[Filter, ...], schema: pl.Schema, label: str) -> pl.Expr:
     """A measure's ``where``: true on rows every filter keeps (a null compares false, as in
     source.filter)."""
-    return pl.all_horizontal([_filter_expr(f, schema[f.column], recipe.source.naive_zone,
-                                           label).fill_null(False) for f in where])
+    return pl.all_horizontal(
+        [
+            _filter_expr(f, schema[f.column], recipe.source.naive_zone, label).fill_null(False)
+            for f in where
+        ]
+    )
 
 
 def _utc_instants(col: pl.Expr, dtype: pl.DataType, zone: str) -> pl.Expr:
@@ -404,16 +487,20 @@ def _filter_expr(f: Filter, dtype: pl.DataType, zone: str, label: str) -> pl.Exp
 
     def check(v: Any, key: str) -> Any:
         ok = (
-            (isinstance(v, str) and (dtype == pl.String or isinstance(dtype, (pl.Categorical,
-                                                                               pl.Enum))))
+            (
+                isinstance(v, str)
+                and (dtype == pl.String or isinstance(dtype, (pl.Categorical, pl.Enum)))
+            )
             or (isinstance(v, bool) and dtype == pl.Boolean)
             or (isinstance(v, (int, float)) and not isinstance(v, bool) and dtype.is_numeric())
             or (isinstance(v, (dt.datetime, dt.date)) and is_time_col)
         )
         if not ok:
             shown = v.isoformat() if isinstance(v, (dt.datetime, dt.date)) else repr(v)
-            raise SourceError(f"{label}: {key}: value {shown} cannot be compared with column "
-                              f"{f.column!r} of type {dtype}; use a value of the column's type")
+            raise SourceError(
+                f"{label}: {key}: value {shown} cannot be compared with column "
+                f"{f.column!r} of type {dtype}; use a value of the column's type"
+            )
         return v
 
     if f.op in ("in", "not_in"):
@@ -459,9 +546,11 @@ def _try_filter(f: Filter, expr: pl.Expr, schema: pl.Schema, label: str) -> None
     try:
         pl.DataFrame(schema=schema).lazy().filter(expr).collect()
     except pl.exceptions.PolarsError as e:
-        raise SourceError(f"{label}: {f.key}: cannot compare column {f.column!r} "
-                          f"({schema[f.column]}) with the filter's values ({_first_line(e)}); "
-                          "use a value of the column's type") from None
+        raise SourceError(
+            f"{label}: {f.key}: cannot compare column {f.column!r} "
+            f"({schema[f.column]}) with the filter's values ({_first_line(e)}); "
+            "use a value of the column's type"
+        ) from None
 
 
 def open_source(recipe: Recipe) -> OpenSource:
@@ -470,8 +559,10 @@ def open_source(recipe: Recipe) -> OpenSource:
     files, fmt = resolve_files(src.path, src.display, src.format)
     label = _files_label(files)
     if src.null_values and fmt == "parquet":
-        raise SourceError(f"{label}: source.null_values applies to CSV and NDJSON text; "
-                          "parquet stores missing values as nulls, so remove the key")
+        raise SourceError(
+            f"{label}: source.null_values applies to CSV and NDJSON text; "
+            "parquet stores missing values as nulls, so remove the key"
+        )
     schema = _schema(files, fmt, src.display, src.null_values)
     text, casts, schema = _text_casts(recipe, fmt, schema, label, files, src.null_values)
     if fmt == "csv":
@@ -482,15 +573,26 @@ def open_source(recipe: Recipe) -> OpenSource:
     if casts:
         lf = lf.with_columns(casts)
     # in/not_in and ranges keep rows where the test is true; nulls in the column fail it.
-    filters = tuple(_filter_expr(f, schema[f.column], src.naive_zone, label).fill_null(False)
-                    for f in src.filters)
+    filters = tuple(
+        _filter_expr(f, schema[f.column], src.naive_zone, label).fill_null(False)
+        for f in src.filters
+    )
     for e in filters:
         lf = lf.filter(e)
     states = tuple(file_state(f) for f in files)  # before the fingerprint: see changed_files
-    return OpenSource(files=tuple(files), format=fmt, schema=schema,
-                      fingerprint=fingerprint(files), frame=lf, columns=tuple(cols),
-                      filters=filters, null_values=src.null_values, text_columns=text,
-                      casts=casts, states=states)
+    return OpenSource(
+        files=tuple(files),
+        format=fmt,
+        schema=schema,
+        fingerprint=fingerprint(files),
+        frame=lf,
+        columns=tuple(cols),
+        filters=filters,
+        null_values=src.null_values,
+        text_columns=text,
+        casts=casts,
+        states=states,
+    )
 
 
 def file_source(src: OpenSource, state: FileState) -> OpenSource:
@@ -498,44 +600,74 @@ def file_source(src: OpenSource, state: FileState) -> OpenSource:
     types, conversions, filters and hive columns), for a partial of that file alone."""
     f = state.path
     hive = _hive(src.files)
-    lf = _scan([f], src.format, list(src.columns), null_values=src.null_values,
-               text_columns=src.text_columns, hive=hive)
+    lf = _scan(
+        [f],
+        src.format,
+        list(src.columns),
+        null_values=src.null_values,
+        text_columns=src.text_columns,
+        hive=hive,
+    )
     if src.casts:
         lf = lf.with_columns(src.casts)
     want = src.frame.collect_schema()
     if lf.collect_schema() != want:  # a text file's types inferred from its own lines
-        lf = lf.cast(dict(want.items()), strict=False)  # type: ignore[arg-type]
+        lf = lf.cast(dict(want.items()), strict=False)
     for e in src.filters:
         lf = lf.filter(e)
-    return OpenSource(files=(f,), format=src.format, schema=src.schema,
-                      fingerprint=fingerprint([f]), frame=lf, columns=src.columns,
-                      filters=src.filters, null_values=src.null_values,
-                      text_columns=src.text_columns, casts=src.casts, states=(state,),
-                      hive=hive)
+    return OpenSource(
+        files=(f,),
+        format=src.format,
+        schema=src.schema,
+        fingerprint=fingerprint([f]),
+        frame=lf,
+        columns=src.columns,
+        filters=src.filters,
+        null_values=src.null_values,
+        text_columns=src.text_columns,
+        casts=src.casts,
+        states=(state,),
+        hive=hive,
+    )
 
 
-def _check_csv_numbers(recipe: Recipe, schema: pl.Schema, files: list[Path],
-                       null_values: tuple[str, ...]) -> None:
+def _check_csv_numbers(
+    recipe: Recipe, schema: pl.Schema, files: list[Path], null_values: tuple[str, ...]
+) -> None:
     """A CSV measure column read as text because some value in it is not a number: name the
     file, the first such value and its line (the column cannot be read at all)."""
     for m in recipe.measures:
-        if m.kind not in ("sum", "min", "max", "mean") or m.column is None \
-                or schema.get(m.column) != pl.String:
+        if (
+            m.kind not in ("sum", "min", "max", "mean")
+            or m.column is None
+            or schema.get(m.column) != pl.String
+        ):
             continue
         c = pl.col(m.column)
         for f in files:
-            hit = (pl.scan_csv(str(f), infer_schema=False, encoding="utf8-lossy",
-                               null_values=_markers(null_values))
-                   .select(c).with_row_index("__line", offset=2)
-                   .filter(c.is_not_null() & c.str.strip_chars().cast(pl.Float64, strict=False)
-                           .is_null()).head(1).collect())
+            hit = (
+                pl.scan_csv(
+                    str(f),
+                    infer_schema=False,
+                    encoding="utf8-lossy",
+                    null_values=_markers(null_values),
+                )
+                .select(c)
+                .with_row_index("__line", offset=2)
+                .filter(
+                    c.is_not_null() & c.str.strip_chars().cast(pl.Float64, strict=False).is_null()
+                )
+                .head(1)
+                .collect()
+            )
             if hit.height:
                 line, value = hit.row(0)
                 raise SourceError(
                     f"{shown_path(f)}: column {m.column!r} (from {recipe.file.name}: "
                     f"measures.{m.name}) holds {value!r} at line {line:,}, which cannot be read "
                     "as a number; fix that value, list it in source.null_values, or convert "
-                    "the column")
+                    "the column"
+                )
 
 
 def locate_value(src: OpenSource, column: str, value: str) -> tuple[Path, int] | None:
@@ -546,10 +678,20 @@ def locate_value(src: OpenSource, column: str, value: str) -> tuple[Path, int] |
         return None
     for f in src.files:
         try:
-            hit = (pl.scan_csv(str(f), infer_schema=False, encoding="utf8-lossy",
-                               null_values=_markers(src.null_values))
-                   .select(pl.col(column)).with_row_index("__line", offset=2)
-                   .filter(pl.col(column) == value).select("__line").head(1).collect())
+            hit = (
+                pl.scan_csv(
+                    str(f),
+                    infer_schema=False,
+                    encoding="utf8-lossy",
+                    null_values=_markers(src.null_values),
+                )
+                .select(pl.col(column))
+                .with_row_index("__line", offset=2)
+                .filter(pl.col(column) == value)
+                .select("__line")
+                .head(1)
+                .collect()
+            )
         except pl.exceptions.PolarsError:
             continue
         if hit.height:
@@ -611,8 +753,9 @@ def _fits(value: Any, dtype: pl.DataType) -> bool:
     return True
 
 
-def ndjson_line_error(files: tuple[Path, ...], schema: pl.Schema,
-                      columns: tuple[str, ...]) -> SourceError | None:
+def ndjson_line_error(
+    files: tuple[Path, ...], schema: pl.Schema, columns: tuple[str, ...]
+) -> SourceError | None:
     """The first line of ``files`` that is not a JSON object, or whose value for one of
     ``columns`` does not fit the inferred type, as one error naming file and line number;
     None if every line reads (the problem is elsewhere). Read on the error path only."""
@@ -632,14 +775,24 @@ def ndjson_line_error(files: tuple[Path, ...], schema: pl.Schema,
                         if not isinstance(doc, dict):
                             why = f"a JSON {type(doc).__name__}, not an object"
                         else:
-                            bad = next((c for c in columns if c in schema
-                                        and not _fits(doc.get(c), schema[c])), None)
+                            bad = next(
+                                (
+                                    c
+                                    for c in columns
+                                    if c in schema and not _fits(doc.get(c), schema[c])
+                                ),
+                                None,
+                            )
                             if bad is None:
                                 continue
-                            why = (f"key {bad!r} holds {str(doc.get(bad))[:40]!r}, which "
-                                   f"cannot be read as {schema[bad]} like the lines before it")
-                    return SourceError(f"{shown_path(f)}: line {n}: {why}; fix or remove "
-                                       "that line (NDJSON holds one JSON object per line)")
+                            why = (
+                                f"key {bad!r} holds {str(doc.get(bad))[:40]!r}, which "
+                                f"cannot be read as {schema[bad]} like the lines before it"
+                            )
+                    return SourceError(
+                        f"{shown_path(f)}: line {n}: {why}; fix or remove "
+                        "that line (NDJSON holds one JSON object per line)"
+                    )
         except OSError as e:
             return SourceError(f"{shown_path(f)}: cannot read ({e.strerror})")
     return None

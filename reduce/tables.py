@@ -55,8 +55,9 @@ class LevelTables:
     """The finest partial of one recipe and the levels computed from it (see the module
     docstring)."""
 
-    def __init__(self, recipe: Recipe, *, use_cache: bool = True,
-                 progress: Progress | None = None) -> None:
+    def __init__(
+        self, recipe: Recipe, *, use_cache: bool = True, progress: Progress | None = None
+    ) -> None:
         self.recipe = recipe
         self.use_cache = use_cache
         self.progress = progress or (lambda _msg: None)
@@ -108,21 +109,23 @@ class LevelTables:
             self._finest = p
         if self._finest is None:
             key = self.entry()
-            p = cache.load(key) if self.use_cache else None
-            if p is not None:
+            loaded = cache.load(key) if self.use_cache else None
+            if loaded is not None:
+                p = loaded
                 self.partial_from_cache = True
                 self.progress("using the cached finest partial")
             else:
+
                 def spill() -> Path:  # made only if the source has to spill
-                    d = (cache.spill_dir(key) if self.use_cache else None) \
-                        or cache.temp_spill_dir()
+                    d = (cache.spill_dir(key) if self.use_cache else None) or cache.temp_spill_dir()
                     weakref.finalize(self, shutil.rmtree, d, True)
                     return d
 
                 assert self.source is not None
                 try:
-                    p = aggregate.scan_partial(self.recipe, self.source,
-                                               progress=self.progress, spill_dir=spill)
+                    p = aggregate.scan_partial(
+                        self.recipe, self.source, progress=self.progress, spill_dir=spill
+                    )
                 except pl.exceptions.PolarsError as e:  # e.g. a malformed NDJSON line
                     raise (self.source.read_error(e) or e) from None
                 self.source.check_unchanged()  # replaced mid-scan: neither used nor cached
@@ -145,8 +148,7 @@ class LevelTables:
             self.progress("checking the source")
             self.source = open_source(self.recipe)
             schema = str(self.source.frame.collect_schema())
-            self._file_keys = [cache.file_key(self.recipe, s, schema)
-                               for s in self.source.states]
+            self._file_keys = [cache.file_key(self.recipe, s, schema) for s in self.source.states]
             self._key = cache.files_key(self.recipe, self._file_keys)
         return self._key
 
@@ -187,15 +189,17 @@ class LevelTables:
         address = cluster.current()
         if todo and address is not None:
             self.progress(f"scanning {len(todo):,} of {n:,} files on the cluster {address}")
-            scanned = cluster.scan_files(address, self.recipe,
-                                         [src.states[i] for i in todo],
-                                         progress=self.progress)
+            scanned = cluster.scan_files(
+                address, self.recipe, [src.states[i] for i in todo], progress=self.progress
+            )
             for i, p in zip(todo, scanned):
                 got[i] = self._keep_file(i, p, tag)
         else:
             for k, i in enumerate(todo, start=1):
-                self.progress(f"scanning file {k:,} of {len(todo):,} ({n - len(todo):,} of "
-                              f"{n:,} reused): {src.files[i].name}")
+                self.progress(
+                    f"scanning file {k:,} of {len(todo):,} ({n - len(todo):,} of "
+                    f"{n:,} reused): {src.files[i].name}"
+                )
                 spilled = any(isinstance(p, Spilled) for p in got.values())
                 got[i] = self._scan_file(i, tag, always_spill=spilled)
         if any(isinstance(p, Spilled) for p in got.values()):
@@ -272,9 +276,15 @@ class LevelTables:
             # file by file instead of merging into one partial the size of the source.
             probe = min(aggregate.probe_rows(), max(1, fsrc.count_rows() // 2))
         try:
-            p = aggregate.scan_partial(self.recipe, fsrc, spill_dir=spill, whole=False,
-                                       always_spill=always_spill,
-                                       parts=FILE_PARTS if n > 1 else None, probe=probe)
+            p = aggregate.scan_partial(
+                self.recipe,
+                fsrc,
+                spill_dir=spill,
+                whole=False,
+                always_spill=always_spill,
+                parts=FILE_PARTS if n > 1 else None,
+                probe=probe,
+            )
         except pl.exceptions.PolarsError as e:  # e.g. a malformed NDJSON line
             raise (fsrc.read_error(e) or e) from None
         fsrc.check_unchanged()
@@ -284,9 +294,11 @@ class LevelTables:
         """The finest partial in memory (merged from its files when it was spilled)."""
         if self._partial is None:
             f = self.finest()
-            self._partial = (f if isinstance(f, Partial) else
-                             aggregate.rollup_spilled(self.recipe, f, hex_res=None,
-                                                      time_bin=None))
+            self._partial = (
+                f
+                if isinstance(f, Partial)
+                else aggregate.rollup_spilled(self.recipe, f, hex_res=None, time_bin=None)
+            )
         return self._partial
 
     # -- levels -----------------------------------------------------------------------------
@@ -306,8 +318,11 @@ class LevelTables:
         if isinstance(finest, Partial):
             self._rollups.setdefault((finest.hex_res, _text(finest.time_bin)), finest)
         tb = parse_time_bin(time_text) if time_text else None
-        sources = [(p.table.height, i, p) for i, ((h, t), p) in enumerate(self._rollups.items())
-                   if _finer_or_equal(h, t, hex_res, tb)]
+        sources = [
+            (p.table.height, i, p)
+            for i, ((h, t), p) in enumerate(self._rollups.items())
+            if _finer_or_equal(h, t, hex_res, tb)
+        ]
         if not sources:
             assert isinstance(finest, Spilled)
             out = aggregate.rollup_spilled(self.recipe, finest, hex_res=hex_res, time_bin=tb)
@@ -380,8 +395,7 @@ class LevelTables:
             return int(((n.clip(upper_bound=top) + (n > top).cast(pl.Int64)) * groups).sum())
         return self.rows(level).frame.height
 
-    def _category_histogram(self, h: int | None, t: str | None,
-                            outer: list[str]) -> pl.DataFrame:
+    def _category_histogram(self, h: int | None, t: str | None, outer: list[str]) -> pl.DataFrame:
         """How many groups of the outer (non-category) keys hold ``n`` categories, for each
         ``n``, at (hex, time): enough to count the rows of every top-k. Taken from the roll-up
         at hand, or, straight from spilled rows, part by part from their distinct keys (one
@@ -399,27 +413,49 @@ class LevelTables:
             if any(is_hidden(c) for c in table.columns):
                 # Rows differing only in hidden cells are one payload row.
                 lf = lf.select(visible_keys).unique()
-            per = (lf.group_by(outer).agg(pl.len().alias("n")) if outer
-                   else lf.select(pl.len().alias("n")))
-            return (per.group_by("n").agg(pl.len().cast(pl.Int64).alias("groups"))
-                    .collect(engine="streaming").with_columns(pl.col("n").cast(pl.Int64)))
+            per = (
+                lf.group_by(outer).agg(pl.len().alias("n"))
+                if outer
+                else lf.select(pl.len().alias("n"))
+            )
+            return (
+                per.group_by("n")
+                .agg(pl.len().cast(pl.Int64).alias("groups"))
+                .collect(engine="streaming")
+                .with_columns(pl.col("n").cast(pl.Int64))
+            )
 
         if isinstance(finest, Partial) or key in self._rollups or self._finer_at_hand(h, t):
             out = hist(self._rollup(h, t).table)
         else:
             tb = parse_time_bin(t) if t else None
-            at_hand = [(sum(p.height for p in ks), kh, kt) for (kh, kt), ks
-                       in self._keysets.items() if _finer_or_equal(kh, kt, h, tb)]
+            at_hand = [
+                (sum(p.height for p in ks), kh, kt)
+                for (kh, kt), ks in self._keysets.items()
+                if _finer_or_equal(kh, kt, h, tb)
+            ]
             if at_hand:  # coarsen the distinct keys of a finer level counted before
                 _, kh, kt = min(at_hand, key=lambda x: x[0])
-                mapping = coarsen(self.recipe, hex_res=h, time_bin=tb, from_hex=kh,
-                                  from_time=parse_time_bin(kt) if kt else None)
+                mapping = coarsen(
+                    self.recipe,
+                    hex_res=h,
+                    time_bin=tb,
+                    from_hex=kh,
+                    from_time=parse_time_bin(kt) if kt else None,
+                )
                 group = [*finest.keys, *hidden_below(self.recipe, h)]
-                tables: Any = (ks.lazy().with_columns(mapping).select(group).unique()
-                               .collect(engine="streaming") for ks in self._keysets[(kh, kt)])
+                tables: Any = (
+                    ks.lazy()
+                    .with_columns(mapping)
+                    .select(group)
+                    .unique()
+                    .collect(engine="streaming")
+                    for ks in self._keysets[(kh, kt)]
+                )
             else:
-                tables = aggregate.rollup_spilled_parts(self.recipe, finest, hex_res=h,
-                                                        time_bin=tb, keys_only=True)
+                tables = aggregate.rollup_spilled_parts(
+                    self.recipe, finest, hex_res=h, time_bin=tb, keys_only=True
+                )
             # The parts split rows by their exact cell at the coarsest hex level; a cell of a
             # finer level that straddles a coarsest cell's edge has rows in two parts. Those
             # cells' keys are gathered from every part and counted once.
@@ -449,8 +485,7 @@ class LevelTables:
             if outer:
                 out = both.group_by("n").agg(pl.col("groups").sum())
             else:  # the categories of all parts make up one group
-                out = pl.DataFrame({"n": [int((both["n"] * both["groups"]).sum())],
-                                    "groups": [1]})
+                out = pl.DataFrame({"n": [int((both["n"] * both["groups"]).sum())], "groups": [1]})
         self._histograms[key] = out
         return out
 
@@ -463,13 +498,15 @@ class LevelTables:
         acc = self.finest().accounting
         lr = self.rows(level)
         r = self.recipe
-        uses_boundaries = bool((r.region and r.region.boundaries)
-                               or (r.flow and r.flow.boundaries))
+        uses_boundaries = bool((r.region and r.region.boundaries) or (r.flow and r.flow.boundaries))
         return encode.accounting_block(
-            input_rows=acc.input_rows, filtered_rows=acc.filtered_rows,
-            invalid_rows=acc.invalid_rows, suppressed_rows=lr.suppressed_rows,
+            input_rows=acc.input_rows,
+            filtered_rows=acc.filtered_rows,
+            invalid_rows=acc.invalid_rows,
+            suppressed_rows=lr.suppressed_rows,
             represented_rows=encode.represented(lr.frame),
-            unassigned_rows=acc.unassigned_rows if uses_boundaries else None)
+            unassigned_rows=acc.unassigned_rows if uses_boundaries else None,
+        )
 
     def forget(self, level: Mapping[str, Any]) -> None:
         """Drop a level's rows (a level over the budget is not needed again)."""
@@ -486,8 +523,7 @@ def _text(b: TimeBin | None) -> str | None:
     return b.text if b else None
 
 
-def _finer_or_equal(h: int | None, t: str | None, hex_res: int | None,
-                    tb: TimeBin | None) -> bool:
+def _finer_or_equal(h: int | None, t: str | None, hex_res: int | None, tb: TimeBin | None) -> bool:
     """Whether a partial at (h, t) can be rolled up to (hex_res, tb)."""
     if h is not None and hex_res is not None and h < hex_res:
         return False

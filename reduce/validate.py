@@ -49,8 +49,13 @@ class CheckReport:
         return [r.recipe for r in self.results if r.recipe is not None]
 
 
-def check(recipes: Sequence[str | Path], *, overrides: Mapping[str, str] | None = None,
-          outputs: bool = False, out_dir: Path | None = None) -> CheckReport:
+def check(
+    recipes: Sequence[str | Path],
+    *,
+    overrides: Mapping[str, str] | None = None,
+    outputs: bool = False,
+    out_dir: Path | None = None,
+) -> CheckReport:
     """Check every recipe and its source and denominators (and, with ``outputs``, that its
     payload can be written and that no two recipes write the same file); never scans."""
     from reduce.normalize import load_denominators
@@ -77,8 +82,7 @@ def check(recipes: Sequence[str | Path], *, overrides: Mapping[str, str] | None 
 
                 target = output_path(rec, out_dir)
                 check_target(target, create=False)
-            results.append(Checked(file, rec, len(src.files), tuple(needed_columns(rec)),
-                                   target))
+            results.append(Checked(file, rec, len(src.files), tuple(needed_columns(rec)), target))
         except ReduceError as e:
             results.append(Checked(file, rec, error=e))
     if outputs:
@@ -94,9 +98,14 @@ def _same_outputs(results: list[Checked]) -> list[Checked]:
         if r.output is not None and r.error is None:
             key = r.output.resolve()
             if key in seen:
-                r = Checked(r.file, r.recipe, error=OutputError(
-                    f"{shown_path(r.file)}: output.path: writes {shown_path(r.output)}, like "
-                    f"{shown_path(seen[key])}; give each recipe its own output file"))
+                r = Checked(
+                    r.file,
+                    r.recipe,
+                    error=OutputError(
+                        f"{shown_path(r.file)}: output.path: writes {shown_path(r.output)}, like "
+                        f"{shown_path(seen[key])}; give each recipe its own output file"
+                    ),
+                )
             else:
                 seen[key] = r.file
         out.append(r)

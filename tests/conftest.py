@@ -39,8 +39,9 @@ from reduce.source import open_source
 
 
 @pytest.fixture(autouse=True)
-def _isolated_cache(monkeypatch: pytest.MonkeyPatch,
-                    tmp_path_factory: pytest.TempPathFactory) -> None:
+def _isolated_cache(
+    monkeypatch: pytest.MonkeyPatch, tmp_path_factory: pytest.TempPathFactory
+) -> None:
     """Every test gets a cache folder of its own (outside its tmp_path, so listings of
     tmp_path do not see it); a test that needs the folder reads ``$REDUCE_CACHE_DIR``."""
     monkeypatch.setenv("REDUCE_CACHE_DIR", str(tmp_path_factory.mktemp("reduce-cache")))
@@ -86,8 +87,7 @@ def _toml_value(v: Any) -> str:
     if isinstance(v, (list, tuple)):
         return "[" + ", ".join(_toml_value(x) for x in v) + "]"
     if isinstance(v, Mapping):
-        return "{ " + ", ".join(f"{_toml_key(k)} = {_toml_value(x)}" for k, x in v.items()) \
-            + " }"
+        return "{ " + ", ".join(f"{_toml_key(k)} = {_toml_value(x)}" for k, x in v.items()) + " }"
     raise TypeError(f"TOML test helper: cannot write {type(v).__name__}")
 
 
@@ -97,8 +97,9 @@ def _toml_key(k: str) -> str:
 
 def to_toml(doc: Mapping[str, Any]) -> str:
     """TOML text for ``doc``: scalars first, then one ``[section]`` per top-level table."""
-    lines = [f"{_toml_key(k)} = {_toml_value(v)}" for k, v in doc.items()
-             if not isinstance(v, Mapping)]
+    lines = [
+        f"{_toml_key(k)} = {_toml_value(v)}" for k, v in doc.items() if not isinstance(v, Mapping)
+    ]
     for k, v in doc.items():
         if isinstance(v, Mapping):
             lines.append(f"\n[{_toml_key(k)}]")
@@ -118,16 +119,22 @@ def write_events(path: Path, events: pl.DataFrame | Mapping[str, Sequence[Any]])
     return path
 
 
-def write_case(folder: Path, events: pl.DataFrame | Mapping[str, Sequence[Any]] | None, *,
-               group: Mapping[str, Any], measures: Mapping[str, Any] | None = None,
-               source: Mapping[str, Any] | None = None,
-               normalize: Mapping[str, Any] | None = None,
-               prune: Mapping[str, Any] | None = None,
-               budget: Mapping[str, Any] | None = None,
-               output: Mapping[str, Any] | None = None,
-               denominators: pl.DataFrame | Mapping[str, Sequence[Any]] | None = None,
-               name: str = "case", recipe_file: str = "recipe.toml",
-               events_file: str = "events.parquet") -> Path:
+def write_case(
+    folder: Path,
+    events: pl.DataFrame | Mapping[str, Sequence[Any]] | None,
+    *,
+    group: Mapping[str, Any],
+    measures: Mapping[str, Any] | None = None,
+    source: Mapping[str, Any] | None = None,
+    normalize: Mapping[str, Any] | None = None,
+    prune: Mapping[str, Any] | None = None,
+    budget: Mapping[str, Any] | None = None,
+    output: Mapping[str, Any] | None = None,
+    denominators: pl.DataFrame | Mapping[str, Sequence[Any]] | None = None,
+    name: str = "case",
+    recipe_file: str = "recipe.toml",
+    events_file: str = "events.parquet",
+) -> Path:
     """Write ``events`` (parquet), optional ``denominators`` (``pop.csv``) and a recipe.
 
     ``source`` entries are added to ``path = events_file``; ``output`` defaults to
@@ -138,11 +145,17 @@ def write_case(folder: Path, events: pl.DataFrame | Mapping[str, Sequence[Any]] 
     if events is not None:
         write_events(folder / events_file, events)
     if denominators is not None:
-        den = (denominators if isinstance(denominators, pl.DataFrame)
-               else pl.DataFrame(dict(denominators)))
+        den = (
+            denominators
+            if isinstance(denominators, pl.DataFrame)
+            else pl.DataFrame(dict(denominators))
+        )
         den.write_csv(folder / "pop.csv")
-    doc: dict[str, Any] = {"name": name, "source": {"path": events_file, **(source or {})},
-                           "group": dict(group)}
+    doc: dict[str, Any] = {
+        "name": name,
+        "source": {"path": events_file, **(source or {})},
+        "group": dict(group),
+    }
     if measures is not None:
         doc["measures"] = dict(measures)
     if normalize is not None:
@@ -213,11 +226,19 @@ def fit_payload(recipe: Path | str, **kw: Any) -> dict[str, Any]:
 T0 = dt.datetime(2024, 1, 1, tzinfo=dt.UTC)
 
 
-def random_events(rng: np.random.Generator, n: int, *, start: dt.datetime = T0,
-                  span_days: float = 30.0, regions: Sequence[str] = ("r1", "r2", "r3"),
-                  kinds: Sequence[str] = ("a", "b", "c", "d", "e"),
-                  lat: tuple[float, float] = (10.0, 10.6), lon: tuple[float, float] = (20.0, 20.6),
-                  null_fraction: float = 0.0, who: int = 40) -> pl.DataFrame:
+def random_events(
+    rng: np.random.Generator,
+    n: int,
+    *,
+    start: dt.datetime = T0,
+    span_days: float = 30.0,
+    regions: Sequence[str] = ("r1", "r2", "r3"),
+    kinds: Sequence[str] = ("a", "b", "c", "d", "e"),
+    lat: tuple[float, float] = (10.0, 10.6),
+    lon: tuple[float, float] = (20.0, 20.6),
+    null_fraction: float = 0.0,
+    who: int = 40,
+) -> pl.DataFrame:
     """A seeded event table: time (UTC), lat, lon, region, kind, x (float), y (int), who.
 
     ``null_fraction`` of the measure values (x, y, who) are null.
@@ -228,16 +249,20 @@ def random_events(rng: np.random.Generator, n: int, *, start: dt.datetime = T0,
     y = rng.integers(-20, 100, n)
     w = rng.integers(0, who, n)
     nulls = rng.random((3, n)) < null_fraction
-    return pl.DataFrame({
-        "t": pl.Series(times, dtype=pl.Datetime("us", "UTC")),
-        "lat": rng.uniform(*lat, n),
-        "lon": rng.uniform(*lon, n),
-        "region": rng.choice(list(regions), n),
-        "kind": rng.choice(list(kinds), n),
-        "x": pl.Series([None if m else float(v) for v, m in zip(x, nulls[0])], dtype=pl.Float64),
-        "y": pl.Series([None if m else int(v) for v, m in zip(y, nulls[1])], dtype=pl.Int64),
-        "who": pl.Series([None if m else int(v) for v, m in zip(w, nulls[2])], dtype=pl.Int64),
-    })
+    return pl.DataFrame(
+        {
+            "t": pl.Series(times, dtype=pl.Datetime("us", "UTC")),
+            "lat": rng.uniform(*lat, n),
+            "lon": rng.uniform(*lon, n),
+            "region": rng.choice(list(regions), n),
+            "kind": rng.choice(list(kinds), n),
+            "x": pl.Series(
+                [None if m else float(v) for v, m in zip(x, nulls[0])], dtype=pl.Float64
+            ),
+            "y": pl.Series([None if m else int(v) for v, m in zip(y, nulls[1])], dtype=pl.Int64),
+            "who": pl.Series([None if m else int(v) for v, m in zip(w, nulls[2])], dtype=pl.Int64),
+        }
+    )
 
 
 # --------------------------------------------------------------------------------------------
@@ -266,7 +291,11 @@ def demo_payloads(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Path]:
         recipe.write_text(text.replace("../out/", "out/"), encoding="utf-8")
         out[f.stem] = reduce.run(recipe, use_cache=False).path  # type: ignore[assignment]
         if f.stem == "sightings-hex":
-            res = reduce.run(recipe, out_dir=root / "out-all", use_cache=False,
-                             overrides={"prune.min_count.min": "1"})
+            res = reduce.run(
+                recipe,
+                out_dir=root / "out-all",
+                use_cache=False,
+                overrides={"prune.min_count.min": "1"},
+            )
             out["sightings-hex-all"] = res.path  # type: ignore[assignment]
     return out

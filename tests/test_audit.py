@@ -120,8 +120,9 @@ def test_brotli_deferred_above_threshold_unless_asked(
     f = audit_one(path)
     assert f.brotli is None and f.sizes is None
     assert "brotli not measured (file over 10 B; use --brotli)" in f.notes
-    assert ("manifest x.json.manifest.json: bytes.brotli not verified (brotli not measured)"
-            in f.notes)
+    assert (
+        "manifest x.json.manifest.json: bytes.brotli not verified (brotli not measured)" in f.notes
+    )
     assert "not measured (use --brotli)" in render_table(audit_paths([path]))
     expected = len(brotli.compress(data, quality=11))  # the brotli module, RFC 7932
     assert audit_one(path, brotli=True).brotli == expected
@@ -194,7 +195,9 @@ def test_nan_written_by_hand(tmp_path: Path) -> None:
         (b"[1, 2,]", "trailing comma is not allowed at line 1 column 6 (byte 5)"),
     ],
 )
-def test_invalid_json_is_a_problem_naming_line_and_column(tmp_path: Path, text: bytes, message: str) -> None:
+def test_invalid_json_is_a_problem_naming_line_and_column(
+    tmp_path: Path, text: bytes, message: str
+) -> None:
     f = audit_one(write_bytes(tmp_path / "any.json", text))
     assert f.problems == (f"not valid JSON (RFC 8259): {message}",)
 
@@ -627,12 +630,14 @@ max = "1KB"
     assert report.total.over
     assert [p for p, _ in report.findings] == [str(big), "total"]
     # The command line wins over the file, for every file and for the total alike.
-    both = audit_paths([tmp_path / "data", other], budgets_file=budgets, budget=50,
-                       total="1MB")
-    assert {(f.budget.limit, f.budget.on, f.budget.source) for f in both.files
-            if f.budget} == {(50, "gzip", "--budget")}
+    both = audit_paths([tmp_path / "data", other], budgets_file=budgets, budget=50, total="1MB")
+    assert {(f.budget.limit, f.budget.on, f.budget.source) for f in both.files if f.budget} == {
+        (50, "gzip", "--budget")
+    }
     assert both.total is not None and (both.total.limit, both.total.source) == (
-        1_000_000, "--total")
+        1_000_000,
+        "--total",
+    )
 
 
 def test_glob_is_also_matched_against_the_given_path(tmp_path: Path) -> None:
@@ -690,7 +695,9 @@ def test_budget_globs_match_paths_as_documented(glob: str, path: str, matches: b
         ("[[file]\n", None),
     ],
 )
-def test_a_malformed_budgets_file_is_one_error_naming_the_key(tmp_path: Path, text: str, message: str | None) -> None:
+def test_a_malformed_budgets_file_is_one_error_naming_the_key(
+    tmp_path: Path, text: str, message: str | None
+) -> None:
     path = _budgets(tmp_path, text)
     with pytest.raises(AuditError) as info:
         load_budgets(path)
@@ -811,8 +818,11 @@ def test_report_json_stable_and_complete(tmp_path: Path) -> None:
         "commits",
     ]
     assert doc["format"] == "reduce.audit/1" and doc["ok"] is False
-    assert doc["assumptions"]["transfer"] == {"name": "slow link", "bits_per_second": 1_000_000,
-                                              "on": "gzip"}
+    assert doc["assumptions"]["transfer"] == {
+        "name": "slow link",
+        "bits_per_second": 1_000_000,
+        "on": "gzip",
+    }
     first = doc["files"][0]
     assert list(first) == [
         "path",

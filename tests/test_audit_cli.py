@@ -311,13 +311,16 @@ def test_quiet_clean_prints_nothing(tmp_path: Path) -> None:
 
 def test_budgets_glob_matching_no_file_is_exit_2(tmp_path: Path) -> None:
     small, big, budgets = _site(tmp_path)
-    budgets.write_text('[[file]]\nglob = "data/*.json"\nmax = "1MB"\n\n'
-                       '[[file]]\nglob = "public/*.json"\nmax = "1KB"\n')
+    budgets.write_text(
+        '[[file]]\nglob = "data/*.json"\nmax = "1MB"\n\n'
+        '[[file]]\nglob = "public/*.json"\nmax = "1KB"\n'
+    )
     result = run(small, big, "--budgets", budgets)
     assert result.exit_code == 2
     assert stderr_lines(result) == [
         f"error: {budgets} [[file]] #2 glob 'public/*.json' matches none of the 2 audited "
-        "files; fix the glob (relative to the budgets file's folder) or remove the rule"]
+        "files; fix the glob (relative to the budgets file's folder) or remove the rule"
+    ]
 
 
 def test_bytes_per_field_are_shown_on_the_budget_measure(tmp_path: Path) -> None:

@@ -23,7 +23,8 @@ from reduce.audit.cli import audit
 
 REPO = Path(__file__).resolve().parents[1]
 _spec = importlib.util.spec_from_file_location(
-    "audit_builders", Path(__file__).parent / "fixtures_audit" / "builders.py")
+    "audit_builders", Path(__file__).parent / "fixtures_audit" / "builders.py"
+)
 assert _spec is not None and _spec.loader is not None
 builders = importlib.util.module_from_spec(_spec)
 _spec.loader.exec_module(builders)
@@ -33,8 +34,13 @@ def run_cli(*args: str) -> subprocess.CompletedProcess[str]:
     """The audit in a child process, so that a hang fails the test instead of blocking it."""
     env = dict(os.environ, PYTHONPATH=str(REPO))
     env.pop("CI", None)
-    return subprocess.run([sys.executable, "-m", "reduce", "audit", *args], env=env,
-                          capture_output=True, text=True, timeout=120)
+    return subprocess.run(
+        [sys.executable, "-m", "reduce", "audit", *args],
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
 
 
 def test_fifo_in_a_folder_is_refused_without_blocking(tmp_path: Path) -> None:
@@ -44,7 +50,8 @@ def test_fifo_in_a_folder_is_refused_without_blocking(tmp_path: Path) -> None:
     assert done.returncode == 2
     assert done.stderr.splitlines() == [
         f"error: {tmp_path / 'data' / 'b.json'}: not a regular file (a FIFO); the audit "
-        "reads only regular files and links to them"]
+        "reads only regular files and links to them"
+    ]
 
 
 def test_link_to_an_endless_device_is_refused(tmp_path: Path) -> None:
@@ -53,12 +60,12 @@ def test_link_to_an_endless_device_is_refused(tmp_path: Path) -> None:
     assert done.returncode == 2
     assert done.stderr.splitlines() == [
         f"error: {tmp_path / 'zero.json'}: not a regular file (a character device); the audit "
-        "reads only regular files and links to them"]
+        "reads only regular files and links to them"
+    ]
 
 
 @pytest.mark.parametrize("fmt", [[], ["--json"], ["--markdown"]])
-def test_link_to_a_file_outside_the_folder_shows_no_content(tmp_path: Path,
-                                                            fmt: list[str]) -> None:
+def test_link_to_a_file_outside_the_folder_shows_no_content(tmp_path: Path, fmt: list[str]) -> None:
     outside = tmp_path / "system"
     outside.mkdir()
     (outside / "accounts").write_text("SECRETUSER:x:0:0:SECRETHOME\nother:x:1:1:/x\n")
@@ -79,8 +86,7 @@ def test_link_to_a_regular_file_in_the_folder_is_audited(tmp_path: Path) -> None
     assert report.files[0].kind == "columns" and report.files[0].rows == 3
 
 
-def test_file_over_the_size_cap_is_refused(tmp_path: Path,
-                                           monkeypatch: pytest.MonkeyPatch) -> None:
+def test_file_over_the_size_cap_is_refused(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     path = builders.write_payload(tmp_path / "x.json")
     monkeypatch.setattr(audit_files, "READ_MAX_BYTES", 100)
     size = path.stat().st_size
@@ -88,7 +94,8 @@ def test_file_over_the_size_cap_is_refused(tmp_path: Path,
     assert res.exit_code == 2
     assert res.stderr.splitlines() == [
         f"error: {path}: {size:,} bytes, over the audit's limit of 100 bytes per file; is it "
-        "a payload?"]
+        "a payload?"
+    ]
 
 
 def test_manifest_that_is_a_link_is_reported_not_read(tmp_path: Path) -> None:
@@ -98,5 +105,7 @@ def test_manifest_that_is_a_link_is_reported_not_read(tmp_path: Path) -> None:
     (outside / "m.json").write_text('{"format": "SECRET"}')
     (tmp_path / "x.json.manifest.json").symlink_to(outside / "m.json")
     f = audit_mod.audit_paths([path]).files[0]
-    assert f.problems == ("manifest x.json.manifest.json: is a link, not a regular file; "
-                          "reduce writes manifests as regular files",)
+    assert f.problems == (
+        "manifest x.json.manifest.json: is a link, not a regular file; "
+        "reduce writes manifests as regular files",
+    )

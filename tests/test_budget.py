@@ -21,11 +21,20 @@ from tests._builders import HEX_RECIPE, project
 # --- sizes ------------------------------------------------------------------------------------
 
 
-@pytest.mark.parametrize(("text", "expected"), [
-    # IEC 80000-13: decimal prefixes are powers of 1000, binary prefixes powers of 1024.
-    ("300KB", 300_000), ("1.5MB", 1_500_000), ("200KiB", 204_800), ("1MiB", 1_048_576),
-    ("2GB", 2_000_000_000), ("250000", 250_000), (4096, 4096), ("10 kb", 10_000),
-])
+@pytest.mark.parametrize(
+    ("text", "expected"),
+    [
+        # IEC 80000-13: decimal prefixes are powers of 1000, binary prefixes powers of 1024.
+        ("300KB", 300_000),
+        ("1.5MB", 1_500_000),
+        ("200KiB", 204_800),
+        ("1MiB", 1_048_576),
+        ("2GB", 2_000_000_000),
+        ("250000", 250_000),
+        (4096, 4096),
+        ("10 kb", 10_000),
+    ],
+)
 def test_sizes_parse_decimal_and_binary_units(text: object, expected: int) -> None:
     assert parse_size(text) == expected
 
@@ -56,7 +65,8 @@ def test_sizes_equal_python_gzip_and_brotli_module(data: bytes) -> None:
 # --- the search on synthetic monotone size functions -------------------------------------------
 
 ladders = st.lists(st.integers(1, 4), min_size=1, max_size=4).map(
-    lambda ns: {f"a{i}": tuple(range(n)) for i, n in enumerate(ns)})
+    lambda ns: {f"a{i}": tuple(range(n)) for i, n in enumerate(ns)}
+)
 
 
 @given(ladders, st.data())
@@ -92,8 +102,9 @@ def test_search_finds_the_lexicographically_finest_fitting_level(ladder, data) -
     # It never evaluates a level twice and evaluates far fewer than all of them when large.
     keys = [tuple(sorted(c.items())) for c in calls]
     assert len(keys) == len(set(keys))
-    assert len(calls) <= 1 + sum(max(1, (len(v) - 1).bit_length()) for v in ladder.values()) \
-        + len(ladder)  # the final local check
+    assert len(calls) <= 1 + sum(max(1, (len(v) - 1).bit_length()) for v in ladder.values()) + len(
+        ladder
+    )  # the final local check
 
 
 # --- the search on real payloads ----------------------------------------------------------------
@@ -107,9 +118,12 @@ def hex_reducer(tmp_path_factory: pytest.TempPathFactory) -> Reducer:
 
 
 @given(budget=st.integers(2_000, 60_000), on=st.sampled_from(["raw", "gzip", "brotli"]))
-@settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
-def test_chosen_level_fits_and_the_next_finer_does_not(hex_reducer: Reducer, budget: int,
-                                                       on: str) -> None:
+@settings(
+    max_examples=12, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+def test_chosen_level_fits_and_the_next_finer_does_not(
+    hex_reducer: Reducer, budget: int, on: str
+) -> None:
     res = reduce.fit(hex_reducer.recipe, budget=budget, on=on, reducer=hex_reducer)
     ladder = res.recipe.ladder()
     if res.level is None:
@@ -127,8 +141,9 @@ def test_chosen_level_fits_and_the_next_finer_does_not(hex_reducer: Reducer, bud
         assert size_on(hex_reducer.payload(finer), on) > budget, (axis, finer)  # type: ignore[arg-type]
 
 
-def test_payload_level_and_manifest_record_the_choice(tmp_path: Path,
-                                                      monkeypatch: pytest.MonkeyPatch) -> None:
+def test_payload_level_and_manifest_record_the_choice(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     monkeypatch.chdir(tmp_path)
     recipe = project(tmp_path)
     out = reduce.run(recipe, budget="15KB", use_cache=False)
@@ -136,21 +151,27 @@ def test_payload_level_and_manifest_record_the_choice(tmp_path: Path,
     manifest = out.manifest
     assert manifest is not None
     assert payload["level"] == manifest["level"] == out.fit.level
-    assert manifest["budget"] == {"max": 15000, "on": "gzip",
-                                  "order": ["top", "time", "hex", "digits"], "fits": True}
+    assert manifest["budget"] == {
+        "max": 15000,
+        "on": "gzip",
+        "order": ["top", "time", "hex", "digits"],
+        "fits": True,
+    }
     assert manifest["bytes"]["gzip"] <= 15000
     data = out.path.read_bytes()  # type: ignore[union-attr]
     # References: Python's gzip module (RFC 1952) and the brotli module (RFC 7932).
-    assert manifest["bytes"] == {"raw": len(data),
-                                 "gzip": len(gzip.compress(data, compresslevel=9, mtime=0)),
-                                 "brotli": len(brotli.compress(data, quality=11))}
+    assert manifest["bytes"] == {
+        "raw": len(data),
+        "gzip": len(gzip.compress(data, compresslevel=9, mtime=0)),
+        "brotli": len(brotli.compress(data, quality=11)),
+    }
     assert len(manifest["frontier"]) == len(out.fit.candidates)
     assert sum(c["chosen"] for c in manifest["frontier"]) == 1
 
 
-def test_refit_with_another_budget_reuses_the_cached_partial(tmp_path: Path,
-                                                            monkeypatch: pytest.MonkeyPatch
-                                                            ) -> None:
+def test_refit_with_another_budget_reuses_the_cached_partial(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     recipe = project(tmp_path)
     first = reduce.ladder(recipe, budget="30KB")
     again = reduce.ladder(recipe, budget="10KB", on="brotli")
@@ -169,8 +190,19 @@ def test_frontier_is_a_polars_frame_with_one_row_per_candidate(tmp_path: Path) -
     recipe = project(tmp_path)
     res = reduce.fit(recipe, budget="12KB", use_cache=False)
     f = res.frontier
-    assert f.columns == ["hex", "time", "top", "digits", "rows", "elements", "raw", "gzip",
-                         "brotli", "fits", "chosen"]
+    assert f.columns == [
+        "hex",
+        "time",
+        "top",
+        "digits",
+        "rows",
+        "elements",
+        "raw",
+        "gzip",
+        "brotli",
+        "fits",
+        "chosen",
+    ]
     assert f.height == len(res.candidates)
     assert f.get_column("chosen").sum() == 1
 
@@ -178,12 +210,14 @@ def test_frontier_is_a_polars_frame_with_one_row_per_candidate(tmp_path: Path) -
 # --- judging levels before measuring them exactly ------------------------------------------------
 
 
-
-@pytest.mark.parametrize("prune_table", [
-    'top = { k = [4, 2, 1], by = "reports" }',  # ranked within every other key: counted
-    'top = { k = [4, 2, 1], by = "reports", within = ["hex"] }',  # narrower: built in full
-    'top = { k = [4, 2, 1], by = "reports" }\nmin_count = 3',  # suppression: built in full
-])
+@pytest.mark.parametrize(
+    "prune_table",
+    [
+        'top = { k = [4, 2, 1], by = "reports" }',  # ranked within every other key: counted
+        'top = { k = [4, 2, 1], by = "reports", within = ["hex"] }',  # narrower: built in full
+        'top = { k = [4, 2, 1], by = "reports" }\nmin_count = 3',  # suppression: built in full
+    ],
+)
 def test_row_count_equals_the_rows_of_every_level(tmp_path: Path, prune_table: str) -> None:
     text = HEX_RECIPE.replace('top = { k = [4, 2, 1], by = "reports" }', prune_table)
     recipe = reduce.load_recipe(project(tmp_path, text))
@@ -194,9 +228,12 @@ def test_row_count_equals_the_rows_of_every_level(tmp_path: Path, prune_table: s
 
 
 @given(data=st.data())
-@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
-def test_quick_look_bounds_the_exact_size_and_never_contradicts_it(hex_reducer: Reducer,
-                                                                   data: st.DataObject) -> None:
+@settings(
+    max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+def test_quick_look_bounds_the_exact_size_and_never_contradicts_it(
+    hex_reducer: Reducer, data: st.DataObject
+) -> None:
     level = data.draw(st.sampled_from(all_levels(hex_reducer.recipe.ladder())))
     on = data.draw(st.sampled_from(["raw", "gzip", "brotli"]))
     payload = hex_reducer.payload(level)

@@ -37,11 +37,18 @@ def _case(tmp: Path, *, spill: bool) -> Path:
     measures: dict[str, object] = {"n": "count", "sx": {"sum": "x"}}
     if not spill:
         measures["who"] = {"distinct": "kind"}  # a distinct measure: pairs and values files
-    return write_case(tmp, random_events(rng, 5000, span_days=20),
-                      source={"time": "t", "lat": "lat", "lon": "lon"},
-                      group={"hex": {"levels": [10, 8, 6]}, "time": {"levels": ["1h", "1d"]},
-                             "category": {"column": "kind"}},
-                      measures=measures, prune={"top": {"k": [4, 2], "by": "n"}})
+    return write_case(
+        tmp,
+        random_events(rng, 5000, span_days=20),
+        source={"time": "t", "lat": "lat", "lon": "lon"},
+        group={
+            "hex": {"levels": [10, 8, 6]},
+            "time": {"levels": ["1h", "1d"]},
+            "category": {"column": "kind"},
+        },
+        measures=measures,
+        prune={"top": {"k": [4, 2], "by": "n"}},
+    )
 
 
 @pytest.fixture
@@ -92,16 +99,20 @@ def _drop_level_store(entry: Path) -> None:
             f.unlink()
 
 
-def _damaged_run_matches_fresh(tmp_path: Path, root: Path, recipe: Path, name: str,
-                               damage: str) -> None:
+def _damaged_run_matches_fresh(
+    tmp_path: Path, root: Path, recipe: Path, name: str, damage: str
+) -> None:
     fresh = _reference(recipe, tmp_path / "fresh")
     first = reduce.run(recipe, out_dir=tmp_path / "a")
     assert first.path is not None and first.path.read_bytes() == fresh
     del first
     gc.collect()  # the first run no longer reads the entry
     entry = _entry(root)
-    target = next(p for p in sorted(entry.rglob("*")) if p.is_file()
-                  and p.relative_to(entry).as_posix().startswith(name))
+    target = next(
+        p
+        for p in sorted(entry.rglob("*"))
+        if p.is_file() and p.relative_to(entry).as_posix().startswith(name)
+    )
     DAMAGE[damage](target)
     _drop_level_store(entry)
     with pytest.warns(cache.CacheWarning, match=rf"cache entry {entry} is damaged \("):
@@ -121,10 +132,12 @@ def _damaged_run_matches_fresh(tmp_path: Path, root: Path, recipe: Path, name: s
 
 
 @pytest.mark.parametrize("damage", ["flip", "truncate", "fifo"])
-@pytest.mark.parametrize("name", ["table.parquet", "pairs-0.parquet", "values-0.parquet",
-                                  "meta.json", "sums.json"])
+@pytest.mark.parametrize(
+    "name", ["table.parquet", "pairs-0.parquet", "values-0.parquet", "meta.json", "sums.json"]
+)
 def test_damaged_in_memory_entry_is_rescanned_and_payload_equals_a_fresh_run(
-        tmp_path: Path, isolated: Path, name: str, damage: str) -> None:
+    tmp_path: Path, isolated: Path, name: str, damage: str
+) -> None:
     recipe = _case(tmp_path / "case", spill=False)
     _damaged_run_matches_fresh(tmp_path, isolated, recipe, name, damage)
 
@@ -132,7 +145,8 @@ def test_damaged_in_memory_entry_is_rescanned_and_payload_equals_a_fresh_run(
 @pytest.mark.parametrize("damage", ["flip", "truncate", "fifo"])
 @pytest.mark.parametrize("name", ["rows/", "meta.json", "sums.json"])
 def test_damaged_spilled_entry_is_rescanned_and_payload_equals_a_fresh_run(
-        tmp_path: Path, isolated: Path, name: str, damage: str) -> None:
+    tmp_path: Path, isolated: Path, name: str, damage: str
+) -> None:
     recipe = _case(tmp_path / "case", spill=True)
     first = Reducer(reduce.load_recipe(recipe))
     assert isinstance(first.finest(), Spilled)  # the case does spill
@@ -143,13 +157,16 @@ def test_damaged_spilled_entry_is_rescanned_and_payload_equals_a_fresh_run(
     _damaged_run_matches_fresh(tmp_path, isolated, recipe, name, damage)
 
 
-def test_damaged_entry_is_one_warning_line_from_the_command_line(tmp_path: Path,
-                                                                 isolated: Path) -> None:
+def test_damaged_entry_is_one_warning_line_from_the_command_line(
+    tmp_path: Path, isolated: Path
+) -> None:
     recipe = _case(tmp_path / "case", spill=True)
     fresh = _reference(recipe, tmp_path / "fresh")
     runner = CliRunner()
-    assert runner.invoke(main, ["run", str(recipe), "--out", str(tmp_path / "a"),
-                                "--quiet"]).exit_code == 0
+    assert (
+        runner.invoke(main, ["run", str(recipe), "--out", str(tmp_path / "a"), "--quiet"]).exit_code
+        == 0
+    )
     entry = _entry(isolated)
     part = next(p for p in sorted((entry / "rows").rglob("*.parquet")))
     _truncate(part)
@@ -159,7 +176,8 @@ def test_damaged_entry_is_one_warning_line_from_the_command_line(tmp_path: Path,
     rel = part.relative_to(entry).as_posix()
     assert res.stderr.splitlines() == [
         f"warning: cache entry {entry} is damaged ({rel}: checksum mismatch); removed, "
-        "scanning the source again"]
+        "scanning the source again"
+    ]
     assert (tmp_path / "b" / "case.json").read_bytes() == fresh
 
 
@@ -176,9 +194,20 @@ def test_entry_is_not_removed_under_its_reader(tmp_path: Path, isolated: Path) -
     pl.read_parquet(events).head(4500).write_parquet(events)
     env = dict(os.environ, PYTHONPATH=str(REPO))
     env.pop("CI", None)
-    other = subprocess.run([sys.executable, "-m", "reduce", "run", str(tmp_path / "case" /
-                            "recipe.toml"), "--out", str(tmp_path / "other"), "--quiet"],
-                           env=env, capture_output=True)
+    other = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "reduce",
+            "run",
+            str(tmp_path / "case" / "recipe.toml"),
+            "--out",
+            str(tmp_path / "other"),
+            "--quiet",
+        ],
+        env=env,
+        capture_output=True,
+    )
     assert other.returncode == 0, other.stderr.decode()
     assert entry.is_dir()
     # The reader still reads every level from its entry's files.

@@ -17,8 +17,6 @@ def _isolated(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.chdir(tmp_path)
 
 
-
-
 def one_error_line(stderr: str) -> str:
     lines = stderr.strip().splitlines()
     assert len(lines) == 1, stderr
@@ -48,7 +46,8 @@ def test_unknown_recipe_key_names_file_key_and_hint(tmp_path: Path) -> None:
     assert code == 2
     assert one_error_line(err) == (
         "error: recipe.toml: budget.maxx: unknown key (did you mean 'max'?); allowed here: "
-        "max, on, order")
+        "max, on, order"
+    )
 
 
 def test_missing_column_names_column_key_and_close_match(tmp_path: Path) -> None:
@@ -58,7 +57,8 @@ def test_missing_column_names_column_key_and_close_match(tmp_path: Path) -> None
     assert one_error_line(err) == (
         "error: events.parquet: column 'whom' (from recipe.toml: measures.observers) is not in "
         "the source (did you mean 'who'?); columns are: ts, lat, lon, kind, prov, sev, conf, "
-        "who")
+        "who"
+    )
 
 
 def test_column_of_wrong_type_is_named(tmp_path: Path) -> None:
@@ -67,7 +67,8 @@ def test_column_of_wrong_type_is_named(tmp_path: Path) -> None:
     assert code == 2
     assert one_error_line(err) == (
         "error: events.parquet: column 'kind' (from recipe.toml: measures.severity) is String, "
-        "but measures.severity needs numbers; convert the column or pick another")
+        "but measures.severity needs numbers; convert the column or pick another"
+    )
 
 
 def test_coordinates_stored_as_text_are_a_type_error(tmp_path: Path) -> None:
@@ -77,7 +78,8 @@ def test_coordinates_stored_as_text_are_a_type_error(tmp_path: Path) -> None:
     assert code == 2
     assert one_error_line(err) == (
         "error: events.parquet: column 'lat' (from recipe.toml: source.lat) is String, but "
-        "source.lat needs numbers (decimal degrees); convert the column or pick another")
+        "source.lat needs numbers (decimal degrees); convert the column or pick another"
+    )
 
 
 def test_a_missing_source_file_is_one_error_line_exit_2(tmp_path: Path) -> None:
@@ -86,7 +88,8 @@ def test_a_missing_source_file_is_one_error_line_exit_2(tmp_path: Path) -> None:
     assert code == 2
     assert one_error_line(err) == (
         "error: source.path 'events.parquet': no such file or folder (events.parquet); check "
-        "the path, which is relative to the recipe file")
+        "the path, which is relative to the recipe file"
+    )
 
 
 def test_unknown_time_zone_with_hint(tmp_path: Path) -> None:
@@ -95,7 +98,8 @@ def test_unknown_time_zone_with_hint(tmp_path: Path) -> None:
     assert code == 2
     assert one_error_line(err) == (
         "error: recipe.toml: group.time.zone: unknown time zone 'Europe/Pari' (did you mean "
-        "'Europe/Paris'?); use an IANA name such as UTC or Europe/Paris")
+        "'Europe/Paris'?); use an IANA name such as UTC or Europe/Paris"
+    )
 
 
 def test_a_missing_denominators_file_is_one_error_line_exit_2(tmp_path: Path) -> None:
@@ -104,13 +108,17 @@ def test_a_missing_denominators_file_is_one_error_line_exit_2(tmp_path: Path) ->
     assert code == 2
     assert one_error_line(err) == (
         "error: people.csv (normalize.denominators): file not found; check "
-        "normalize.denominators.path, which is relative to the recipe file")
+        "normalize.denominators.path, which is relative to the recipe file"
+    )
 
 
 def test_out_of_range_coordinates_are_counted_not_an_error(tmp_path: Path) -> None:
     df = events(n=1000).with_columns(
-        lat=__import__("polars").when(__import__("polars").int_range(1000) < 7)
-        .then(95.0).otherwise(__import__("polars").col("lat")))
+        lat=__import__("polars")
+        .when(__import__("polars").int_range(1000) < 7)
+        .then(95.0)
+        .otherwise(__import__("polars").col("lat"))
+    )
     recipe = project(tmp_path, HEX_RECIPE.replace('max = "40KB"', 'max = "5MB"'), df=df)
     code, _, err = invoke("run", str(recipe), "--quiet")
     assert code == 0, err
@@ -133,10 +141,13 @@ def test_nothing_fits_exits_1_names_smallest_and_writes_nothing(tmp_path: Path) 
     code, out, err = invoke("run", str(recipe), "--budget", "300B")
     assert code == 1
     line = one_error_line(err)
-    assert line.startswith("error: recipe.toml: no level fits the budget of 300 B gzip: the "
-                           "smallest payload is ")
-    assert "at hex=5, time=1w, top=1, digits=4; raise budget.max (or --budget), add a coarser " \
-           "hex level, add a wider time bin, lower prune.top.k" in line
+    assert line.startswith(
+        "error: recipe.toml: no level fits the budget of 300 B gzip: the smallest payload is "
+    )
+    assert (
+        "at hex=5, time=1w, top=1, digits=4; raise budget.max (or --budget), add a coarser "
+        "hex level, add a wider time bin, lower prune.top.k" in line
+    )
     assert not (tmp_path / "out").exists()  # not even an empty output folder
 
 
@@ -161,7 +172,8 @@ def test_set_overrides_are_validated_like_the_file(tmp_path: Path) -> None:
     assert code == 2
     assert one_error_line(err) == (
         "error: recipe.toml: group.hex.levels: must go from finest to coarsest (strictly "
-        "decreasing resolutions), but 5 is followed by 7")
+        "decreasing resolutions), but 5 is followed by 7"
+    )
 
 
 def test_ladder_table_marks_chosen_and_json_lists_candidates(tmp_path: Path) -> None:
@@ -195,8 +207,9 @@ def test_python_dash_m_runs_the_cli() -> None:
     import subprocess
     import sys
 
-    res = subprocess.run([sys.executable, "-m", "reduce", "--version"], capture_output=True,
-                         text=True, check=False)
+    res = subprocess.run(
+        [sys.executable, "-m", "reduce", "--version"], capture_output=True, text=True, check=False
+    )
     assert res.returncode == 0
     assert res.stdout.startswith("reduce, version ")
 
@@ -207,7 +220,8 @@ def test_write_anyway_exits_1_in_every_output_mode(tmp_path: Path, mode: list[st
     code, out, err = invoke("run", str(recipe), "--budget", "300B", "--write-anyway", *mode)
     assert code == 1
     assert one_error_line(err).startswith(
-        "error: recipe.toml: no level fits the budget of 300 B gzip: the smallest payload is ")
+        "error: recipe.toml: no level fits the budget of 300 B gzip: the smallest payload is "
+    )
     assert (tmp_path / "out" / "hexmap.json").is_file()
     if mode == ["--json"]:
         assert json.loads(out)[0]["over_budget"] is True
@@ -223,12 +237,12 @@ def test_denominators_matching_no_key_is_exit_2_with_samples(tmp_path: Path) -> 
     assert one_error_line(err) == (
         "error: pop.csv (normalize.denominators): none of its 5 keys in column 'prov' matches "
         "the 4 prov keys in the data (data: 'AAA', 'BBB', 'CCC' ...; table: 'aaa', 'bbb', "
-        "'ccc' ...); make the table's keys match the data's")
+        "'ccc' ...); make the table's keys match the data's"
+    )
     assert not (tmp_path / "out").exists()
 
 
-def test_partly_matching_denominators_warn_on_stderr_even_quiet_and_in_json(
-        tmp_path: Path) -> None:
+def test_partly_matching_denominators_warn_on_stderr_even_quiet_and_in_json(tmp_path: Path) -> None:
     recipe = project(tmp_path, REGION_RECIPE)
     from tests._builders import write_population
 
@@ -251,56 +265,77 @@ def test_partly_matching_denominators_warn_on_stderr_even_quiet_and_in_json(
 
 
 def test_layout_that_does_not_match_the_output_file_name_is_exit_2_before_the_scan(
-        tmp_path: Path) -> None:
+    tmp_path: Path,
+) -> None:
     recipe = project(tmp_path)
     (tmp_path / "events.parquet").unlink()  # the scan would fail differently
     code, _, err = invoke("run", str(recipe), "--set", "output.layout=csv")
     assert code == 2
     assert one_error_line(err) == (
         "error: recipe.toml: output.path: 'out/hexmap.json' ends in .json, but output.layout "
-        "'csv' writes .csv files; name the file hexmap.csv or change output.layout")
-    code, _, err = invoke("run", str(recipe), "--set", "output.layout=csv",
-                          "--set", "output.path=out/hexmap.csv", "--quiet")
+        "'csv' writes .csv files; name the file hexmap.csv or change output.layout"
+    )
+    code, _, err = invoke(
+        "run",
+        str(recipe),
+        "--set",
+        "output.layout=csv",
+        "--set",
+        "output.path=out/hexmap.csv",
+        "--quiet",
+    )
     assert code == 2
     assert "events.parquet" in one_error_line(err)  # past the recipe: the missing source
 
 
 def test_check_lists_every_problem_of_every_recipe(tmp_path: Path) -> None:
     good = project(tmp_path)
-    bad_key = write_recipe(tmp_path, HEX_RECIPE.replace("[budget]", "[budget]\nmaxx = 3"),
-                           name="bad1.toml")
-    bad_col = write_recipe(tmp_path, HEX_RECIPE.replace('distinct = "who"', 'distinct = "whom"'),
-                           name="bad2.toml")
+    bad_key = write_recipe(
+        tmp_path, HEX_RECIPE.replace("[budget]", "[budget]\nmaxx = 3"), name="bad1.toml"
+    )
+    bad_col = write_recipe(
+        tmp_path, HEX_RECIPE.replace('distinct = "who"', 'distinct = "whom"'), name="bad2.toml"
+    )
     code, out, err = invoke("check", str(bad_key), str(good), str(bad_col))
     assert code == 2
-    assert out.splitlines() == [f"{good}: ok (hexmap: 1 source file, columns ts, lat, lon, "
-                                "kind, who, sev)"]
+    assert out.splitlines() == [
+        f"{good}: ok (hexmap: 1 source file, columns ts, lat, lon, kind, who, sev)"
+    ]
     assert err.splitlines() == [
         "error: bad1.toml: budget.maxx: unknown key (did you mean 'max'?); allowed here: max, "
         "on, order",
         "error: events.parquet: column 'whom' (from bad2.toml: measures.observers) is not in "
         "the source (did you mean 'who'?); columns are: ts, lat, lon, kind, prov, sev, conf, "
-        "who"]
+        "who",
+    ]
 
 
 def test_run_publishes_nothing_when_any_recipe_is_bad(tmp_path: Path) -> None:
     good = project(tmp_path)
-    bad = write_recipe(tmp_path, HEX_RECIPE.replace('distinct = "who"', 'distinct = "whom"')
-                       .replace("out/hexmap.json", "out/other.json"), name="bad.toml")
+    bad = write_recipe(
+        tmp_path,
+        HEX_RECIPE.replace('distinct = "who"', 'distinct = "whom"').replace(
+            "out/hexmap.json", "out/other.json"
+        ),
+        name="bad.toml",
+    )
     code, out, err = invoke("run", str(good), str(bad))
     assert code == 2
-    assert one_error_line(err).startswith("error: events.parquet: column 'whom' (from "
-                                          "bad.toml: measures.observers)")
+    assert one_error_line(err).startswith(
+        "error: events.parquet: column 'whom' (from bad.toml: measures.observers)"
+    )
     assert not (tmp_path / "out").exists()
 
 
 def test_run_refuses_two_recipes_writing_one_file(tmp_path: Path) -> None:
     first = project(tmp_path)
-    second = write_recipe(tmp_path, HEX_RECIPE.replace('name = "hexmap"', 'name = "again"'),
-                          name="second.toml")
+    second = write_recipe(
+        tmp_path, HEX_RECIPE.replace('name = "hexmap"', 'name = "again"'), name="second.toml"
+    )
     code, out, err = invoke("run", str(first), str(second))
     assert code == 2
     assert one_error_line(err) == (
         "error: second.toml: output.path: writes out/hexmap.json, like recipe.toml; give each "
-        "recipe its own output file")
+        "recipe its own output file"
+    )
     assert not (tmp_path / "out").exists()

@@ -30,9 +30,15 @@ REPO = Path(__file__).resolve().parents[1]
 
 @pytest.fixture(scope="module")
 def address() -> Iterator[str]:
-    lc = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                  host="127.0.0.1", dashboard_address=None, silence_logs=50,
-                                  timeout=60)
+    lc = distributed.LocalCluster(
+        n_workers=2,
+        threads_per_worker=1,
+        processes=True,
+        host="127.0.0.1",
+        dashboard_address=None,
+        silence_logs=50,
+        timeout=60,
+    )
     try:
         yield str(lc.scheduler_address)
     finally:
@@ -57,24 +63,35 @@ def _local_and_cluster(recipe: Path, tmp: Path, address: str) -> tuple[bytes, by
     local = reduce.run(recipe, out_dir=tmp / "local", use_cache=False).path.read_bytes()
     said: list[str] = []
     with cluster.using(address):
-        res = reduce.run(recipe, out_dir=tmp / "cluster", use_cache=False,
-                         progress=said.append)
+        res = reduce.run(recipe, out_dir=tmp / "cluster", use_cache=False, progress=said.append)
     assert any("on the cluster" in m for m in said)  # scanned by the workers, not here
     assert res.manifest["files"] == {"total": 3, "scanned": 3, "reused": 0}
     return local, res.path.read_bytes()
 
 
 def test_hex_time_categories_and_distinct_measures_match_a_local_run(
-        tmp_path: Path, address: str) -> None:
+    tmp_path: Path, address: str
+) -> None:
     _split(random_events(np.random.default_rng(4), 3000, span_days=5), tmp_path)
-    recipe = _recipe(tmp_path, {
-        "source": {"path": "ev/*.parquet", "time": "t", "lat": "lat", "lon": "lon"},
-        "group": {"hex": {"levels": [9, 7]}, "time": {"levels": ["1h", "1d"]},
-                  "category": {"column": "kind"}},
-        "measures": {"n": "count", "mx": {"mean": "x"}, "who": {"distinct": "who"},
-                     "big": {"count": True, "where": {"column": "y", "min": 5}}},
-        "prune": {"top": {"k": [3, 1], "by": "n"}},
-        "budget": {"max": "20KB", "on": "gzip", "order": ["top", "time", "hex"]}})
+    recipe = _recipe(
+        tmp_path,
+        {
+            "source": {"path": "ev/*.parquet", "time": "t", "lat": "lat", "lon": "lon"},
+            "group": {
+                "hex": {"levels": [9, 7]},
+                "time": {"levels": ["1h", "1d"]},
+                "category": {"column": "kind"},
+            },
+            "measures": {
+                "n": "count",
+                "mx": {"mean": "x"},
+                "who": {"distinct": "who"},
+                "big": {"count": True, "where": {"column": "y", "min": 5}},
+            },
+            "prune": {"top": {"k": [3, 1], "by": "n"}},
+            "budget": {"max": "20KB", "on": "gzip", "order": ["top", "time", "hex"]},
+        },
+    )
     local, remote = _local_and_cluster(recipe, tmp_path, address)
     assert local == remote
 
@@ -82,34 +99,54 @@ def test_hex_time_categories_and_distinct_measures_match_a_local_run(
 def test_region_boundaries_and_flows_match_a_local_run(tmp_path: Path, address: str) -> None:
     rng = np.random.default_rng(8)
     n = 3000
-    df = pl.DataFrame({"lat": rng.uniform(-0.2, 2.0, n), "lon": rng.uniform(0.0, 2.0, n),
-                       "from_town": rng.choice(["T1", "T2", "T3", "T4"], n),
-                       "to_town": rng.choice(["T1", "T2", "T3", "T4"], n)})
+    df = pl.DataFrame(
+        {
+            "lat": rng.uniform(-0.2, 2.0, n),
+            "lon": rng.uniform(0.0, 2.0, n),
+            "from_town": rng.choice(["T1", "T2", "T3", "T4"], n),
+            "to_town": rng.choice(["T1", "T2", "T3", "T4"], n),
+        }
+    )
     _split(df, tmp_path)
     (tmp_path / "squares.geojson").write_bytes((FIXTURES / "squares.geojson").read_bytes())
-    regions = _recipe(tmp_path, {
-        "source": {"path": "ev/*.parquet", "lat": "lat", "lon": "lon"},
-        "group": {"region": {"boundaries": "squares.geojson", "id": "code"}},
-        "measures": {"n": "count"}, "output": {"path": "out/c.geojson", "layout": "geojson"}})
+    regions = _recipe(
+        tmp_path,
+        {
+            "source": {"path": "ev/*.parquet", "lat": "lat", "lon": "lon"},
+            "group": {"region": {"boundaries": "squares.geojson", "id": "code"}},
+            "measures": {"n": "count"},
+            "output": {"path": "out/c.geojson", "layout": "geojson"},
+        },
+    )
     local, remote = _local_and_cluster(regions, tmp_path / "r", address)
     assert local == remote
-    flows = _recipe(tmp_path, {
-        "source": {"path": "ev/*.parquet"},
-        "group": {"flow": {"origin": "from_town", "destination": "to_town"}},
-        "measures": {"n": "count"}, "prune": {"top": {"k": [5]}}})
+    flows = _recipe(
+        tmp_path,
+        {
+            "source": {"path": "ev/*.parquet"},
+            "group": {"flow": {"origin": "from_town", "destination": "to_town"}},
+            "measures": {"n": "count"},
+            "prune": {"top": {"k": [5]}},
+        },
+    )
     local, remote = _local_and_cluster(flows, tmp_path / "f", address)
     assert local == remote
 
 
 def test_a_source_that_spills_locally_matches_on_the_cluster(
-        tmp_path: Path, address: str, monkeypatch: pytest.MonkeyPatch) -> None:
+    tmp_path: Path, address: str, monkeypatch: pytest.MonkeyPatch
+) -> None:
     monkeypatch.setenv("REDUCE_PROBE_ROWS", "500")  # the local run spills its keyed rows
     _split(random_events(np.random.default_rng(6), 4500, span_days=4), tmp_path)
-    recipe = _recipe(tmp_path, {
-        "source": {"path": "ev/*.parquet", "time": "t", "lat": "lat", "lon": "lon"},
-        "group": {"hex": {"levels": [10, 8]}, "time": {"levels": ["1h", "1d"]}},
-        "measures": {"n": "count", "sx": {"sum": "x"}},
-        "budget": {"max": "40KB", "on": "gzip"}})
+    recipe = _recipe(
+        tmp_path,
+        {
+            "source": {"path": "ev/*.parquet", "time": "t", "lat": "lat", "lon": "lon"},
+            "group": {"hex": {"levels": [10, 8]}, "time": {"levels": ["1h", "1d"]}},
+            "measures": {"n": "count", "sx": {"sum": "x"}},
+            "budget": {"max": "40KB", "on": "gzip"},
+        },
+    )
     red = reduce.pipeline.Reducer(reduce.load_recipe(recipe), use_cache=False)
     assert isinstance(red.finest(), reduce.aggregate.Spilled)  # the premise
     local, remote = _local_and_cluster(recipe, tmp_path, address)
@@ -118,14 +155,19 @@ def test_a_source_that_spills_locally_matches_on_the_cluster(
 
 def test_cluster_partials_are_cached_per_file(tmp_path: Path, address: str) -> None:
     _split(random_events(np.random.default_rng(2), 2000, span_days=3), tmp_path)
-    recipe = _recipe(tmp_path, {
-        "source": {"path": "ev/*.parquet", "time": "t", "lat": "lat", "lon": "lon"},
-        "group": {"hex": {"levels": [8]}, "time": {"levels": ["1d"]}},
-        "measures": {"n": "count", "who": {"distinct": "who"}}})
+    recipe = _recipe(
+        tmp_path,
+        {
+            "source": {"path": "ev/*.parquet", "time": "t", "lat": "lat", "lon": "lon"},
+            "group": {"hex": {"levels": [8]}, "time": {"levels": ["1d"]}},
+            "measures": {"n": "count", "who": {"distinct": "who"}},
+        },
+    )
     with cluster.using(address):
         first = reduce.run(recipe, out_dir=tmp_path / "a")
         random_events(np.random.default_rng(3), 500).write_parquet(
-            tmp_path / "ev" / "part-9.parquet")
+            tmp_path / "ev" / "part-9.parquet"
+        )
         second = reduce.run(recipe, out_dir=tmp_path / "b")
     assert first.manifest["files"] == {"total": 3, "scanned": 3, "reused": 0}
     assert second.manifest["files"] == {"total": 4, "scanned": 1, "reused": 3}
@@ -135,24 +177,49 @@ def test_cluster_partials_are_cached_per_file(tmp_path: Path, address: str) -> N
 
 def test_a_scheduler_that_does_not_answer_is_one_line_and_exit_2(tmp_path: Path) -> None:
     _split(random_events(np.random.default_rng(1), 300), tmp_path)
-    recipe = _recipe(tmp_path, {"source": {"path": "ev/*.parquet", "lat": "lat", "lon": "lon"},
-                                "group": {"hex": {"levels": [7]}}})
+    recipe = _recipe(
+        tmp_path,
+        {
+            "source": {"path": "ev/*.parquet", "lat": "lat", "lon": "lon"},
+            "group": {"hex": {"levels": [7]}},
+        },
+    )
     env = {**os.environ, "REDUCE_CLUSTER_TIMEOUT": "2"}
     # Port 1 on loopback: nothing listens there (tcpmux, unused on test machines).
-    proc = subprocess.run([sys.executable, "-m", "reduce", "run", str(recipe), "--quiet",
-                           "--cluster", "tcp://127.0.0.1:1"], capture_output=True, text=True,
-                          env=env, cwd=REPO, timeout=120)
+    proc = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "reduce",
+            "run",
+            str(recipe),
+            "--quiet",
+            "--cluster",
+            "tcp://127.0.0.1:1",
+        ],
+        capture_output=True,
+        text=True,
+        env=env,
+        cwd=REPO,
+        timeout=120,
+    )
     assert proc.returncode == 2
     lines = proc.stderr.strip().splitlines()
     assert len(lines) == 1 and "tcp://127.0.0.1:1" in lines[0] and "Traceback" not in lines[0]
     assert not (tmp_path / "out" / "c.json").exists()
 
 
-def test_a_missing_extra_is_one_line_and_exit_2(tmp_path: Path,
-                                                monkeypatch: pytest.MonkeyPatch) -> None:
+def test_a_missing_extra_is_one_line_and_exit_2(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     _split(random_events(np.random.default_rng(1), 300), tmp_path)
-    recipe = _recipe(tmp_path, {"source": {"path": "ev/*.parquet", "lat": "lat", "lon": "lon"},
-                                "group": {"hex": {"levels": [7]}}})
+    recipe = _recipe(
+        tmp_path,
+        {
+            "source": {"path": "ev/*.parquet", "lat": "lat", "lon": "lon"},
+            "group": {"hex": {"levels": [7]}},
+        },
+    )
     monkeypatch.setitem(sys.modules, "distributed", None)  # import fails as if not installed
     out = CliRunner().invoke(main, ["run", str(recipe), "--quiet", "--cluster", "local:2"])
     assert out.exit_code == 2
@@ -161,10 +228,16 @@ def test_a_missing_extra_is_one_line_and_exit_2(tmp_path: Path,
 
 
 def test_reduce_run_reads_the_cluster_from_the_environment(
-        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     _split(random_events(np.random.default_rng(1), 300), tmp_path)
-    recipe = _recipe(tmp_path, {"source": {"path": "ev/*.parquet", "lat": "lat", "lon": "lon"},
-                                "group": {"hex": {"levels": [7]}}})
+    recipe = _recipe(
+        tmp_path,
+        {
+            "source": {"path": "ev/*.parquet", "lat": "lat", "lon": "lon"},
+            "group": {"hex": {"levels": [7]}},
+        },
+    )
     monkeypatch.setenv("REDUCE_CLUSTER", "tcp://127.0.0.1:1")
     monkeypatch.setenv("REDUCE_CLUSTER_TIMEOUT", "1")
     out = CliRunner().invoke(main, ["run", str(recipe), "--quiet"])
@@ -177,9 +250,15 @@ def test_a_file_the_worker_sees_otherwise_is_refused(tmp_path: Path, address: st
     from reduce.source import file_state
 
     _split(random_events(np.random.default_rng(1), 300), tmp_path)
-    recipe = reduce.load_recipe(_recipe(tmp_path, {
-        "source": {"path": "ev/*.parquet", "lat": "lat", "lon": "lon"},
-        "group": {"hex": {"levels": [7]}}}))
+    recipe = reduce.load_recipe(
+        _recipe(
+            tmp_path,
+            {
+                "source": {"path": "ev/*.parquet", "lat": "lat", "lon": "lon"},
+                "group": {"hex": {"levels": [7]}},
+            },
+        )
+    )
     path = tmp_path / "ev" / "part-0.parquet"
     seen = file_state(path)
     random_events(np.random.default_rng(2), 120).write_parquet(path)  # rewritten meanwhile

@@ -26,13 +26,22 @@ def test_the_safe_integer_limit_is_ecmascripts() -> None:
     assert contract.MAX_SAFE_INTEGER == 9_007_199_254_740_991  # 2**53 - 1
 
 
-@pytest.mark.parametrize("literal", [
-    contract.COLUMNS_FORMAT, contract.GEOJSON_FORMAT, contract.MANIFEST_FORMAT,
-    contract.LEVELS_FORMAT, "2**53", "9007199254740991"])
+@pytest.mark.parametrize(
+    "literal",
+    [
+        contract.COLUMNS_FORMAT,
+        contract.GEOJSON_FORMAT,
+        contract.MANIFEST_FORMAT,
+        contract.LEVELS_FORMAT,
+        "2**53",
+        "9007199254740991",
+    ],
+)
 def test_no_module_restates_a_contract_value(literal: str) -> None:
     # Quoted format strings or the limit written out, in code (docstrings may name them).
-    pattern = re.compile(rf"[\"']{re.escape(literal)}[\"']" if "/" in literal
-                         else re.escape(literal))
+    pattern = re.compile(
+        rf"[\"']{re.escape(literal)}[\"']" if "/" in literal else re.escape(literal)
+    )
     found = []
     for f in sorted(PACKAGE.rglob("*.py")):
         if f.name == "contract.py":

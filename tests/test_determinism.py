@@ -97,8 +97,8 @@ def write_inputs(folder: Path, names: list[str]) -> None:
     """Four parquet files of the same events; file i is written under ``names[i]``."""
     rng = np.random.default_rng(5)
     df = events(n=ROWS, seed=3).with_columns(
-        x=pl.Series(rng.lognormal(3.0, 2.0, ROWS)),
-        y=pl.Series(rng.normal(0.0, 1e6, ROWS)))
+        x=pl.Series(rng.lognormal(3.0, 2.0, ROWS)), y=pl.Series(rng.normal(0.0, 1e6, ROWS))
+    )
     (folder / "parts").mkdir(parents=True)
     for i, name in enumerate(names):
         df.slice(i * ROWS // 4, ROWS // 4).write_parquet(folder / "parts" / name)
@@ -106,23 +106,35 @@ def write_inputs(folder: Path, names: list[str]) -> None:
         (folder / f"{r}.toml").write_text(textwrap.dedent(text))
 
 
-def run(folder: Path, out: str, *, threads: int = 2, cache: bool = False
-        ) -> dict[str, tuple[bytes, dict[str, Any]]]:
+def run(
+    folder: Path, out: str, *, threads: int = 2, cache: bool = False
+) -> dict[str, tuple[bytes, dict[str, Any]]]:
     env = dict(os.environ)
     env["POLARS_MAX_THREADS"] = str(threads)
     env["REDUCE_CACHE_DIR"] = str(folder / "cache")
-    env["PYTHONPATH"] = os.pathsep.join([str(REPO), env.get("PYTHONPATH", "")]).rstrip(
-        os.pathsep)
-    args = [sys.executable, "-m", "reduce", "run", "integers.toml", "floats.toml",
-            "--out", out, "--quiet"]
+    env["PYTHONPATH"] = os.pathsep.join([str(REPO), env.get("PYTHONPATH", "")]).rstrip(os.pathsep)
+    args = [
+        sys.executable,
+        "-m",
+        "reduce",
+        "run",
+        "integers.toml",
+        "floats.toml",
+        "--out",
+        out,
+        "--quiet",
+    ]
     if not cache:
         args.append("--no-cache")
-    proc = subprocess.run(args, cwd=folder, env=env, capture_output=True, text=True,
-                          timeout=120)
+    proc = subprocess.run(args, cwd=folder, env=env, capture_output=True, text=True, timeout=120)
     assert proc.returncode == 0, proc.stderr
-    return {r: ((folder / out / f"{r}.json").read_bytes(),
-                json.loads((folder / out / f"{r}.json.manifest.json").read_bytes()))
-            for r in RECIPES}
+    return {
+        r: (
+            (folder / out / f"{r}.json").read_bytes(),
+            json.loads((folder / out / f"{r}.json.manifest.json").read_bytes()),
+        )
+        for r in RECIPES
+    }
 
 
 @pytest.fixture(scope="module")
@@ -162,8 +174,7 @@ def test_inputs_are_what_the_tests_need(runs: dict[str, Any]) -> None:
 
 
 @pytest.mark.parametrize("recipe", RECIPES)
-def test_two_runs_give_identical_payload_and_manifest(runs: dict[str, Any], recipe: str
-                                                      ) -> None:
+def test_two_runs_give_identical_payload_and_manifest(runs: dict[str, Any], recipe: str) -> None:
     payload, manifest = runs["base"][recipe]
     again_payload, again_manifest = runs["again"][recipe]
     assert again_payload == payload
@@ -171,8 +182,9 @@ def test_two_runs_give_identical_payload_and_manifest(runs: dict[str, Any], reci
 
 
 @pytest.mark.parametrize("recipe", RECIPES)
-def test_thread_count_does_not_change_payload_or_manifest(runs: dict[str, Any], recipe: str
-                                                          ) -> None:
+def test_thread_count_does_not_change_payload_or_manifest(
+    runs: dict[str, Any], recipe: str
+) -> None:
     payload, manifest = runs["base"][recipe]
     one_payload, one_manifest = runs["one_thread"][recipe]
     assert one_payload == payload
@@ -180,8 +192,9 @@ def test_thread_count_does_not_change_payload_or_manifest(runs: dict[str, Any], 
 
 
 @pytest.mark.parametrize("recipe", RECIPES)
-def test_cached_partial_gives_identical_payload_and_manifest(runs: dict[str, Any],
-                                                             recipe: str) -> None:
+def test_cached_partial_gives_identical_payload_and_manifest(
+    runs: dict[str, Any], recipe: str
+) -> None:
     payload, manifest = runs["base"][recipe]
     cached_payload, cached_manifest = runs["cached"][recipe]
     assert cached_payload == payload
@@ -193,12 +206,12 @@ def test_cached_partial_gives_identical_payload_and_manifest(runs: dict[str, Any
 
 
 @pytest.mark.parametrize("recipe", RECIPES)
-def test_file_names_and_glob_order_do_not_change_the_payload(runs: dict[str, Any],
-                                                             recipe: str) -> None:
+def test_file_names_and_glob_order_do_not_change_the_payload(
+    runs: dict[str, Any], recipe: str
+) -> None:
     payload, manifest = runs["base"][recipe]
     renamed_payload, renamed_manifest = runs["renamed"][recipe]
     assert renamed_payload == payload
     # Only the source fingerprint (which hashes the files' paths) may differ.
     assert renamed_manifest["source"]["fingerprint"] != manifest["source"]["fingerprint"]
     assert without_fingerprint(renamed_manifest) == without_fingerprint(manifest)
-

@@ -56,17 +56,27 @@ def _edge_points(seed: int, n_corners: int = 40, per: int = 60) -> pl.DataFrame:
     lon += list(rng.uniform(-180, 180, m))
     n = len(lat)
     lon = [((x + 180.0) % 360.0) - 180.0 if abs(x) > 180 else x for x in lon]
-    return pl.DataFrame({
-        "lat": lat, "lon": lon,
-        "kind": rng.choice(list(KINDS), n, p=[0.4, 0.3, 0.2, 0.1]),
-        "x": rng.normal(5, 2, n).round(3),
-        "y": rng.integers(0, 50, n),
-        "who": rng.integers(0, 30, n),
-    })
+    return pl.DataFrame(
+        {
+            "lat": lat,
+            "lon": lon,
+            "kind": rng.choice(list(KINDS), n, p=[0.4, 0.3, 0.2, 0.1]),
+            "x": rng.normal(5, 2, n).round(3),
+            "y": rng.integers(0, 50, n),
+            "who": rng.integers(0, 30, n),
+        }
+    )
 
 
-MEASURES = {"n": "count", "sx": {"sum": "x"}, "sy": {"sum": "y"}, "mx": {"mean": "x"},
-            "lo": {"min": "y"}, "hi": {"max": "y"}, "d": {"distinct": "who"}}
+MEASURES = {
+    "n": "count",
+    "sx": {"sum": "x"},
+    "sy": {"sum": "y"},
+    "mx": {"mean": "x"},
+    "lo": {"min": "y"},
+    "hi": {"max": "y"},
+    "d": {"distinct": "who"},
+}
 
 
 def _direct(points: pl.DataFrame, res: int) -> pl.DataFrame:
@@ -76,12 +86,15 @@ def _direct(points: pl.DataFrame, res: int) -> pl.DataFrame:
 
 
 def _parents_differ(points: pl.DataFrame, fine: int, res: int) -> int:
-    return sum(h3.cell_to_parent(h3.latlng_to_cell(la, lo, fine), res)
-               != h3.latlng_to_cell(la, lo, res) for la, lo in points.select("lat", "lon").rows())
+    return sum(
+        h3.cell_to_parent(h3.latlng_to_cell(la, lo, fine), res) != h3.latlng_to_cell(la, lo, res)
+        for la, lo in points.select("lat", "lon").rows()
+    )
 
 
-def _duckdb(points: pl.DataFrame, res: int, *, k: int | None = None,
-            min_n: int | None = None) -> pl.DataFrame:
+def _duckdb(
+    points: pl.DataFrame, res: int, *, k: int | None = None, min_n: int | None = None
+) -> pl.DataFrame:
     """Reference rows at ``res`` (DuckDB SQL over directly indexed points)."""
     con = duckdb.connect()
     con.register("pts", _direct(points, res).to_arrow())
@@ -120,10 +133,15 @@ def _compare(got: pl.DataFrame, want: pl.DataFrame, where: str) -> None:
 
 
 def _recipe(folder: Path, points: pl.DataFrame, *, prune: dict[str, Any] | None = None) -> Path:
-    return write_case(folder, points, source={"lat": "lat", "lon": "lon"},
-                      group={"hex": {"levels": LEVELS}, "category": {"column": "kind"}},
-                      measures=MEASURES, prune=prune, output={"path": "out/x.json",
-                                                              "digits": [9]})
+    return write_case(
+        folder,
+        points,
+        source={"lat": "lat", "lon": "lon"},
+        group={"hex": {"levels": LEVELS}, "category": {"column": "kind"}},
+        measures=MEASURES,
+        prune=prune,
+        output={"path": "out/x.json", "digits": [9]},
+    )
 
 
 def _level_frame(red: Reducer, level: dict[str, Any]) -> pl.DataFrame:
@@ -145,7 +163,8 @@ def test_edge_points_are_where_h3_parents_go_wrong(points: pl.DataFrame) -> None
 
 @pytest.mark.parametrize("res", LEVELS)
 def test_every_measure_at_every_hex_level_equals_duckdb_over_direct_cells(
-        tmp_path: Path, points: pl.DataFrame, res: int) -> None:
+    tmp_path: Path, points: pl.DataFrame, res: int
+) -> None:
     red = Reducer(reduce.load_recipe(_recipe(tmp_path, points)), use_cache=False)
     got = _level_frame(red, {"hex": res, "digits": 9})
     _compare(got, _duckdb(points, res), f"hex {res}")
@@ -153,7 +172,8 @@ def test_every_measure_at_every_hex_level_equals_duckdb_over_direct_cells(
 
 @pytest.mark.parametrize("res", LEVELS)
 def test_top_k_with_remainder_at_every_hex_level_equals_duckdb(
-        tmp_path: Path, points: pl.DataFrame, res: int) -> None:
+    tmp_path: Path, points: pl.DataFrame, res: int
+) -> None:
     path = _recipe(tmp_path, points, prune={"top": {"k": [2], "by": "n", "rest": "other"}})
     red = Reducer(reduce.load_recipe(path), use_cache=False)
     got = _level_frame(red, {"hex": res, "top": 2, "digits": 9})
@@ -162,7 +182,8 @@ def test_top_k_with_remainder_at_every_hex_level_equals_duckdb(
 
 @pytest.mark.parametrize("res", LEVELS)
 def test_suppression_at_every_hex_level_equals_duckdb_having(
-        tmp_path: Path, points: pl.DataFrame, res: int) -> None:
+    tmp_path: Path, points: pl.DataFrame, res: int
+) -> None:
     path = _recipe(tmp_path, points, prune={"min_count": 3})
     red = Reducer(reduce.load_recipe(path), use_cache=False)
     level = {"hex": res, "digits": 9}
@@ -173,8 +194,9 @@ def test_suppression_at_every_hex_level_equals_duckdb_having(
     assert acc["represented_rows"] + acc["suppressed_rows"] == points.height
 
 
-def test_row_counts_of_every_level_equal_the_rows_built(tmp_path: Path,
-                                                        points: pl.DataFrame) -> None:
+def test_row_counts_of_every_level_equal_the_rows_built(
+    tmp_path: Path, points: pl.DataFrame
+) -> None:
     path = _recipe(tmp_path, points, prune={"top": {"k": [3, 1], "by": "n"}})
     recipe = reduce.load_recipe(path)
     red = Reducer(recipe, use_cache=False)
@@ -183,14 +205,20 @@ def test_row_counts_of_every_level_equal_the_rows_built(tmp_path: Path,
 
 
 def test_spilled_parts_give_the_same_payloads_as_one_pass(
-        tmp_path: Path, points: pl.DataFrame, monkeypatch: pytest.MonkeyPatch) -> None:
+    tmp_path: Path, points: pl.DataFrame, monkeypatch: pytest.MonkeyPatch
+) -> None:
     # Parts split the keyed rows by their exact coarsest cell; cells of finer levels on a
     # coarsest cell's edge have rows in two parts. Distinct measures do not spill, so this
     # recipe counts and sums only.
     measures = {k: v for k, v in MEASURES.items() if k != "d"}
-    path = write_case(tmp_path, points, source={"lat": "lat", "lon": "lon"},
-                      group={"hex": {"levels": LEVELS}, "category": {"column": "kind"}},
-                      measures=measures, prune={"top": {"k": [3, 1], "by": "n"}})
+    path = write_case(
+        tmp_path,
+        points,
+        source={"lat": "lat", "lon": "lon"},
+        group={"hex": {"levels": LEVELS}, "category": {"column": "kind"}},
+        measures=measures,
+        prune={"top": {"k": [3, 1], "by": "n"}},
+    )
     recipe = reduce.load_recipe(path)
     levels = all_levels(recipe.ladder())
     one = Reducer(recipe, use_cache=False)
@@ -208,8 +236,7 @@ def test_spilled_parts_give_the_same_payloads_as_one_pass(
     assert got == expected
 
 
-def test_payload_cells_of_a_fit_are_the_direct_cells(tmp_path: Path,
-                                                     points: pl.DataFrame) -> None:
+def test_payload_cells_of_a_fit_are_the_direct_cells(tmp_path: Path, points: pl.DataFrame) -> None:
     # Through reduce.fit with a budget that forces a coarse level: every cell in the payload
     # is the direct cell of the points it counts (reference: h3 bindings).
     path = _recipe(tmp_path, points)

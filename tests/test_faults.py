@@ -42,18 +42,24 @@ def pair(out: Path, name: str) -> tuple[bytes, dict[str, object]]:
 
 
 def manifest(name: str, data: bytes, pad: int = 0) -> dict[str, object]:
-    return {"format": "reduce.manifest/1", "payload": name, "sha256": sha(data),
-            "notes": ["x" * pad] if pad else []}
+    return {
+        "format": "reduce.manifest/1",
+        "payload": name,
+        "sha256": sha(data),
+        "notes": ["x" * pad] if pad else [],
+    }
 
 
 def debris(folder: Path) -> list[str]:
-    return sorted(p.name for p in folder.iterdir() if p.name.startswith(".")
-                  and p.name != LOCK_NAME)
+    return sorted(
+        p.name for p in folder.iterdir() if p.name.startswith(".") and p.name != LOCK_NAME
+    )
 
 
 @pytest.mark.parametrize("failing_sync", [1, 2, 3])
 def test_disk_full_at_any_sync_leaves_old_pair_and_no_temporary_file(
-        tmp_path: Path, monkeypatch: pytest.MonkeyPatch, failing_sync: int) -> None:
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, failing_sync: int
+) -> None:
     out = tmp_path / "out"
     old = b'{"format": "reduce.columns/1", "v": 1}'
     publish(out / "p.json", old, manifest("p.json", old))
@@ -76,8 +82,9 @@ def test_disk_full_at_any_sync_leaves_old_pair_and_no_temporary_file(
 
 def _tmpfs(folder: Path, size: str) -> bool:
     folder.mkdir(parents=True, exist_ok=True)
-    done = subprocess.run(["mount", "-t", "tmpfs", "-o", f"size={size}", "tmpfs", str(folder)],
-                          capture_output=True)
+    done = subprocess.run(
+        ["mount", "-t", "tmpfs", "-o", f"size={size}", "tmpfs", str(folder)], capture_output=True
+    )
     return done.returncode == 0
 
 
@@ -91,8 +98,7 @@ def tiny_disk(tmp_path: Path):  # type: ignore[no-untyped-def]
 
 
 @pytest.mark.parametrize("what", ["payload", "manifest"])
-def test_full_tmpfs_keeps_old_pair_and_removes_temporary_files(tiny_disk: Path,
-                                                               what: str) -> None:
+def test_full_tmpfs_keeps_old_pair_and_removes_temporary_files(tiny_disk: Path, what: str) -> None:
     old = b"[" + b"1," * 2000 + b"1]"  # 4 KB
     publish(tiny_disk / "p.json", old, manifest("p.json", old))
     if what == "payload":  # more than the disk holds
@@ -107,15 +113,21 @@ def test_full_tmpfs_keeps_old_pair_and_removes_temporary_files(tiny_disk: Path,
 
 def test_run_onto_a_full_disk_is_one_line_exit_2(tiny_disk: Path, tmp_path: Path) -> None:
     rng = np.random.default_rng(5)
-    recipe = write_case(tmp_path / "case", random_events(rng, 4000),
-                        source={"time": "t", "lat": "lat", "lon": "lon"},
-                        group={"hex": {"levels": [9]}}, measures={"n": "count"})
-    res = CliRunner().invoke(main, ["run", str(recipe), "--out", str(tiny_disk), "--quiet",
-                                    "--no-cache"])
+    recipe = write_case(
+        tmp_path / "case",
+        random_events(rng, 4000),
+        source={"time": "t", "lat": "lat", "lon": "lon"},
+        group={"hex": {"levels": [9]}},
+        measures={"n": "count"},
+    )
+    res = CliRunner().invoke(
+        main, ["run", str(recipe), "--out", str(tiny_disk), "--quiet", "--no-cache"]
+    )
     assert res.exit_code == 2, res.output
     assert res.stderr.splitlines() == [
         f"error: {tiny_disk}: cannot write (No space left on device); check free space and "
-        "permissions"]
+        "permissions"
+    ]
     assert debris(tiny_disk) == [] and not (tiny_disk / "case.json").exists()
 
 
@@ -126,28 +138,46 @@ def test_run_onto_a_full_disk_is_one_line_exit_2(tiny_disk: Path, tmp_path: Path
 
 def _spilling_case(tmp: Path) -> Path:
     rng = np.random.default_rng(99)
-    return write_case(tmp, random_events(rng, 6000, span_days=20),
-                      source={"time": "t", "lat": "lat", "lon": "lon"},
-                      group={"hex": {"levels": [10, 8, 6]}, "time": {"levels": ["1h", "1d"]},
-                             "category": {"column": "kind"}},
-                      measures={"n": "count", "sx": {"sum": "x"}},
-                      prune={"top": {"k": [4, 2], "by": "n"}}, name="spilly")
+    return write_case(
+        tmp,
+        random_events(rng, 6000, span_days=20),
+        source={"time": "t", "lat": "lat", "lon": "lon"},
+        group={
+            "hex": {"levels": [10, 8, 6]},
+            "time": {"levels": ["1h", "1d"]},
+            "category": {"column": "kind"},
+        },
+        measures={"n": "count", "sx": {"sum": "x"}},
+        prune={"top": {"k": [4, 2], "by": "n"}},
+        name="spilly",
+    )
 
 
 @pytest.mark.slow
-def test_sigterm_at_several_moments_leaves_no_debris_and_the_old_payload(
-        tmp_path: Path) -> None:
+def test_sigterm_at_several_moments_leaves_no_debris_and_the_old_payload(tmp_path: Path) -> None:
     recipe = _spilling_case(tmp_path / "case")
     out, cache, tmpdir = tmp_path / "out", tmp_path / "cache", tmp_path / "tmpdir"
     tmpdir.mkdir()
-    env = dict(os.environ, REDUCE_CACHE_DIR=str(cache), REDUCE_PROBE_ROWS="1100",
-               TMPDIR=str(tmpdir))
+    env = dict(
+        os.environ, REDUCE_CACHE_DIR=str(cache), REDUCE_PROBE_ROWS="1100", TMPDIR=str(tmpdir)
+    )
     env["PYTHONPATH"] = os.pathsep.join([str(REPO), env.get("PYTHONPATH", "")]).rstrip(":")
     env.pop("CI", None)
 
     def cmd(budget: str, no_cache: bool) -> list[str]:
-        return [sys.executable, "-m", "reduce", "run", str(recipe), "--out", str(out),
-                "--quiet", "--budget", budget, *(["--no-cache"] if no_cache else [])]
+        return [
+            sys.executable,
+            "-m",
+            "reduce",
+            "run",
+            str(recipe),
+            "--out",
+            str(out),
+            "--quiet",
+            "--budget",
+            budget,
+            *(["--no-cache"] if no_cache else []),
+        ]
 
     first = subprocess.run(cmd("30KB", True), env=env, capture_output=True)
     assert first.returncode == 0, first.stderr.decode()
@@ -161,8 +191,9 @@ def test_sigterm_at_several_moments_leaves_no_debris_and_the_old_payload(
     rng = random.Random(12)
     outcomes = set()
     for i in range(6):
-        proc = subprocess.Popen(cmd("60KB", i % 2 == 0), env=env, stdout=subprocess.PIPE,
-                                stderr=subprocess.PIPE)
+        proc = subprocess.Popen(
+            cmd("60KB", i % 2 == 0), env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE
+        )
         time.sleep(rng.uniform(0.05, whole))
         proc.send_signal(signal.SIGTERM)
         _, err = proc.communicate(timeout=120)
@@ -172,7 +203,8 @@ def test_sigterm_at_several_moments_leaves_no_debris_and_the_old_payload(
         assert proc.returncode in (0, 143, -signal.SIGTERM), err.decode()
         if proc.returncode == 143:
             assert err.decode().splitlines() == [
-                "error: terminated (SIGTERM); nothing was published by the unfinished step"]
+                "error: terminated (SIGTERM); nothing was published by the unfinished step"
+            ]
         data, doc = pair(out, "spilly.json")
         assert doc["sha256"] == sha(data)
         assert (data, doc) in (old, fresh)  # nothing published is ever wrong

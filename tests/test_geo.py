@@ -48,8 +48,11 @@ def write_collection(path: Path, features: list[dict[str, Any]]) -> Path:
 
 def square_feature(code: Any, x: float, y: float, size: float = 1.0) -> dict[str, Any]:
     ring = [[x, y], [x + size, y], [x + size, y + size], [x, y + size], [x, y]]
-    return {"type": "Feature", "properties": {"code": code},
-            "geometry": {"type": "Polygon", "coordinates": [ring]}}
+    return {
+        "type": "Feature",
+        "properties": {"code": code},
+        "geometry": {"type": "Polygon", "coordinates": [ring]},
+    }
 
 
 def brute_force(b: Boundaries, lat: np.ndarray, lon: np.ndarray) -> np.ndarray:
@@ -69,8 +72,9 @@ def covering_sets(b: Boundaries, lat: np.ndarray, lon: np.ndarray) -> np.ndarray
 # ------------------------------------------------------------------------------------- loading
 
 
-def test_load_sorts_by_id_and_keeps_each_geometry(provinces_path: Path,
-                                                  provinces: Boundaries) -> None:
+def test_load_sorts_by_id_and_keeps_each_geometry(
+    provinces_path: Path, provinces: Boundaries
+) -> None:
     raw = json.loads(provinces_path.read_text())  # Python's json, shapely's reader
     by_code = {f["properties"]["code"]: shape(f["geometry"]) for f in raw["features"]}
     assert provinces.ids == tuple(sorted(by_code))
@@ -83,8 +87,9 @@ def test_load_sorts_by_id_and_keeps_each_geometry(provinces_path: Path,
 
 
 def test_integer_ids_are_read_as_their_decimal_text(tmp_path: Path) -> None:
-    path = write_collection(tmp_path / "b.geojson",
-                            [square_feature(10, 0, 0), square_feature(9, 1, 0)])
+    path = write_collection(
+        tmp_path / "b.geojson", [square_feature(10, 0, 0), square_feature(9, 1, 0)]
+    )
     b = load_boundaries(path, "code")
     assert b.ids == ("10", "9")  # text order, like every other key
 
@@ -93,11 +98,17 @@ def test_multipolygon_and_holes_are_accepted(tmp_path: Path) -> None:
     outer = [[0, 0], [4, 0], [4, 4], [0, 4], [0, 0]]
     hole = [[1, 1], [1, 3], [3, 3], [3, 1], [1, 1]]
     island = [[10, 10], [11, 10], [11, 11], [10, 10]]
-    path = write_collection(tmp_path / "b.geojson", [
-        {"type": "Feature", "properties": {"code": "M"},
-         "geometry": {"type": "MultiPolygon", "coordinates": [[outer, hole], [island]]}},
-        square_feature("H", 1, 1, 2.0),
-    ])
+    path = write_collection(
+        tmp_path / "b.geojson",
+        [
+            {
+                "type": "Feature",
+                "properties": {"code": "M"},
+                "geometry": {"type": "MultiPolygon", "coordinates": [[outer, hole], [island]]},
+            },
+            square_feature("H", 1, 1, 2.0),
+        ],
+    )
     b = load_boundaries(path, "code")
     assert b.ids == ("H", "M")
     got = assign(np.array([2.0, 0.5, 10.2, 3.0, 20.0]), np.array([2.0, 0.5, 10.5, 2.0, 20.0]), b)
@@ -124,8 +135,8 @@ def test_a_boundaries_file_that_is_not_json_is_an_error(tmp_path: Path) -> None:
     path = tmp_path / "b.geojson"
     path.write_text('{"type": "FeatureCollection",\n "features": [}')
     assert error_of(path) == (
-        f"{path}: not valid JSON (line 2, column 15); "
-        "save the boundaries as GeoJSON (RFC 7946)")
+        f"{path}: not valid JSON (line 2, column 15); save the boundaries as GeoJSON (RFC 7946)"
+    )
 
 
 def test_not_a_feature_collection_errors(tmp_path: Path) -> None:
@@ -133,14 +144,17 @@ def test_not_a_feature_collection_errors(tmp_path: Path) -> None:
     path.write_text(json.dumps(square_feature("A", 0, 0)))
     assert error_of(path) == (
         f"{path}: not a GeoJSON FeatureCollection (top-level type is 'Feature'); save the "
-        "boundaries as a FeatureCollection of Polygon or MultiPolygon features")
+        "boundaries as a FeatureCollection of Polygon or MultiPolygon features"
+    )
     path.write_text("[1, 2]")
     assert error_of(path) == (
         f"{path}: not a GeoJSON FeatureCollection (top-level type is 'list'); save the "
-        "boundaries as a FeatureCollection of Polygon or MultiPolygon features")
+        "boundaries as a FeatureCollection of Polygon or MultiPolygon features"
+    )
     path.write_text('{"type": "FeatureCollection", "features": []}')
     assert error_of(path) == (
-        f"{path}: the FeatureCollection has no features; add the region polygons")
+        f"{path}: the FeatureCollection has no features; add the region polygons"
+    )
 
 
 def test_feature_without_id_names_its_index(tmp_path: Path) -> None:
@@ -149,46 +163,62 @@ def test_feature_without_id_names_its_index(tmp_path: Path) -> None:
     path = write_collection(tmp_path / "b.geojson", [square_feature("A", 0, 0), other])
     assert error_of(path) == (
         f"{path}: feature 1 has no 'code' property; give every feature an 'code' or name "
-        "another id property")
+        "another id property"
+    )
     assert error_of(path, "name") == (
         f"{path}: feature 0 has no 'name' property; give every feature an 'name' or name "
-        "another id property")
+        "another id property"
+    )
 
 
 def test_duplicate_polygon_ids_are_an_error(tmp_path: Path) -> None:
-    path = write_collection(tmp_path / "b.geojson", [
-        square_feature("A", 0, 0), square_feature("B", 1, 0), square_feature("A", 2, 0)])
+    path = write_collection(
+        tmp_path / "b.geojson",
+        [square_feature("A", 0, 0), square_feature("B", 1, 0), square_feature("A", 2, 0)],
+    )
     assert error_of(path) == (
         f"{path}: id 'A' (property 'code') appears in features 0 and 2; make the ids unique, "
-        "or merge those features into one MultiPolygon")
+        "or merge those features into one MultiPolygon"
+    )
 
 
 def test_non_polygon_geometry_error(tmp_path: Path) -> None:
-    point: dict[str, Any] = {"type": "Feature", "properties": {"code": "P"},
-             "geometry": {"type": "Point", "coordinates": [1.0, 2.0]}}
+    point: dict[str, Any] = {
+        "type": "Feature",
+        "properties": {"code": "P"},
+        "geometry": {"type": "Point", "coordinates": [1.0, 2.0]},
+    }
     path = write_collection(tmp_path / "b.geojson", [square_feature("A", 0, 0), point])
     assert error_of(path) == (
         f"{path}: feature 1 ('P') is a Point, not a Polygon or MultiPolygon; region "
-        "boundaries must be polygons")
+        "boundaries must be polygons"
+    )
     point["geometry"] = None
     path = write_collection(tmp_path / "b.geojson", [point])
     assert error_of(path) == (
-        f"{path}: feature 0 ('P') has no geometry; give it a Polygon or MultiPolygon")
+        f"{path}: feature 0 ('P') has no geometry; give it a Polygon or MultiPolygon"
+    )
 
 
 def test_invalid_polygon_error_says_how_to_make_it_valid(tmp_path: Path) -> None:
-    bowtie = {"type": "Feature", "properties": {"code": "X"},
-              "geometry": {"type": "Polygon",
-                           "coordinates": [[[0, 0], [2, 2], [2, 0], [0, 2], [0, 0]]]}}
+    bowtie = {
+        "type": "Feature",
+        "properties": {"code": "X"},
+        "geometry": {"type": "Polygon", "coordinates": [[[0, 0], [2, 2], [2, 0], [0, 2], [0, 0]]]},
+    }
     path = write_collection(tmp_path / "b.geojson", [square_feature("A", 5, 5), bowtie])
     assert error_of(path) == (
         f"{path}: feature 1 ('X') is not a valid polygon (Self-intersection[1 1]); make it "
-        "valid, e.g. with shapely.make_valid")
+        "valid, e.g. with shapely.make_valid"
+    )
 
 
 def test_malformed_polygon_coordinates_are_an_error(tmp_path: Path) -> None:
-    bad = {"type": "Feature", "properties": {"code": "X"},
-           "geometry": {"type": "Polygon", "coordinates": [[[0, 0], [1, "east"], [1, 1], [0, 0]]]}}
+    bad = {
+        "type": "Feature",
+        "properties": {"code": "X"},
+        "geometry": {"type": "Polygon", "coordinates": [[[0, 0], [1, "east"], [1, 1], [0, 0]]]},
+    }
     path = write_collection(tmp_path / "b.geojson", [bad])
     msg = error_of(path)
     assert msg.startswith(f"{path}: feature 0 ('X') has malformed Polygon coordinates (")
@@ -258,12 +288,12 @@ def test_shared_vertices_go_to_the_smallest_id(provinces: Boundaries) -> None:
     assert any(len(ks) >= 3 for ks in shared.values())
 
 
-def test_points_exactly_on_grid_edges_and_corners_go_to_the_smallest_id(
-        tmp_path: Path) -> None:
+def test_points_exactly_on_grid_edges_and_corners_go_to_the_smallest_id(tmp_path: Path) -> None:
     # A 3 x 3 grid of unit squares, ids scrambled so sorted order is not grid order.
     codes = ["G", "C", "I", "A", "E", "H", "B", "F", "D"]
-    feats = [square_feature(codes[3 * r + c], float(c), float(r)) for r in range(3)
-             for c in range(3)]
+    feats = [
+        square_feature(codes[3 * r + c], float(c), float(r)) for r in range(3) for c in range(3)
+    ]
     b = load_boundaries(write_collection(tmp_path / "grid.geojson", feats), "code")
     rng = np.random.default_rng(5)
     xs: list[float] = []
@@ -277,26 +307,37 @@ def test_points_exactly_on_grid_edges_and_corners_go_to_the_smallest_id(
 
     def expected(px: float, py: float) -> int:
         # Squares whose closed box holds the point; the smallest code wins.
-        hits = [codes[3 * r + c] for r in range(3) for c in range(3)
-                if c <= px <= c + 1 and r <= py <= r + 1]
+        hits = [
+            codes[3 * r + c]
+            for r in range(3)
+            for c in range(3)
+            if c <= px <= c + 1 and r <= py <= r + 1
+        ]
         return b.ids.index(min(hits)) if hits else -1
 
     got = assign(y, x, b)
     assert got.tolist() == [expected(px, py) for px, py in zip(xs, ys, strict=True)]
-    on_edges = sum(1 for px, py in zip(xs, ys, strict=True)
-                   if (px % 1 == 0 or py % 1 == 0) and 0 <= px <= 3 and 0 <= py <= 3)
+    on_edges = sum(
+        1
+        for px, py in zip(xs, ys, strict=True)
+        if (px % 1 == 0 or py % 1 == 0) and 0 <= px <= 3 and 0 <= py <= 3
+    )
     assert on_edges > 1000
 
 
 def test_invalid_coordinates_get_minus_one(tmp_path: Path) -> None:
     # A region touching the corner of the valid range (lat 90, lon 180).
-    corner = {"type": "Feature", "properties": {"code": "N"},
-              "geometry": {"type": "Polygon", "coordinates": [
-                  [[170, 80], [180, 80], [180, 90], [170, 90], [170, 80]]]}}
+    corner = {
+        "type": "Feature",
+        "properties": {"code": "N"},
+        "geometry": {
+            "type": "Polygon",
+            "coordinates": [[[170, 80], [180, 80], [180, 90], [170, 90], [170, 80]]],
+        },
+    }
     b = load_boundaries(write_collection(tmp_path / "b.geojson", [corner]), "code")
     lat = np.array([85.0, 90.0, np.nan, 85.0, np.inf, 85.0, 90.0 + 1e-9, 85.0, -np.inf, 95.0])
-    lon = np.array([175.0, 180.0, 175.0, np.nan, 175.0, -np.inf, 175.0, 180 + 1e-9, 175.0,
-                    175.0])
+    lon = np.array([175.0, 180.0, 175.0, np.nan, 175.0, -np.inf, 175.0, 180 + 1e-9, 175.0, 175.0])
     assert assign(lat, lon, b).tolist() == [0, 0, -1, -1, -1, -1, -1, -1, -1, -1]
 
 
@@ -314,8 +355,9 @@ def test_assign_keeps_shape_and_accepts_lists(provinces: Boundaries) -> None:
 def test_assign_is_the_same_in_chunks_and_at_once(provinces: Boundaries) -> None:
     lat, lon = points_on_and_around(provinces, seed=3)
     whole = assign(lat, lon, provinces)
-    parts = np.concatenate([assign(lat[i:i + 997], lon[i:i + 997], provinces)
-                            for i in range(0, lat.size, 997)])
+    parts = np.concatenate(
+        [assign(lat[i : i + 997], lon[i : i + 997], provinces) for i in range(0, lat.size, 997)]
+    )
     assert np.array_equal(whole, parts)
 
 
@@ -330,10 +372,13 @@ def test_assign_expr_in_a_streaming_collect(provinces: Boundaries, tmp_path: Pat
     lon_l[7] = None
     path = tmp_path / "points.parquet"
     pl.DataFrame({"lat": lat_l, "lon": lon_l, "n": range(len(lat_l))}).write_parquet(
-        path, row_group_size=5_000)
-    lf = (pl.scan_parquet(path)
-          .with_columns(assign_expr("lat", "lon", provinces).alias("province"))
-          .select("n", "province"))
+        path, row_group_size=5_000
+    )
+    lf = (
+        pl.scan_parquet(path)
+        .with_columns(assign_expr("lat", "lon", provinces).alias("province"))
+        .select("n", "province")
+    )
     streamed = lf.collect(engine="streaming").sort("n")
     assert streamed.schema["province"] == pl.String
     want_idx = brute_force(provinces, lat, lon)
@@ -341,8 +386,12 @@ def test_assign_expr_in_a_streaming_collect(provinces: Boundaries, tmp_path: Pat
     want[5] = want[7] = None
     assert streamed.get_column("province").to_list() == want
     # The same expression in a grouped streaming query (as the one-scan partial uses keys).
-    counts = (pl.scan_parquet(path).group_by(assign_expr("lat", "lon", provinces))
-              .agg(pl.len()).collect(engine="streaming"))
+    counts = (
+        pl.scan_parquet(path)
+        .group_by(assign_expr("lat", "lon", provinces))
+        .agg(pl.len())
+        .collect(engine="streaming")
+    )
     got_counts = dict(zip(counts["region"].to_list(), counts["len"].to_list(), strict=True))
     want_counts: dict[str | None, int] = {}
     for w in want:
@@ -352,15 +401,16 @@ def test_assign_expr_in_a_streaming_collect(provinces: Boundaries, tmp_path: Pat
 
 def test_assign_expr_handles_integer_and_float32_columns(provinces: Boundaries) -> None:
     p = provinces.geoms[0].representative_point()
-    df = pl.DataFrame({"la": [p.y, 0.0], "lo": [p.x, 0.0]},
-                      schema={"la": pl.Float32, "lo": pl.Float32})
+    df = pl.DataFrame(
+        {"la": [p.y, 0.0], "lo": [p.x, 0.0]}, schema={"la": pl.Float32, "lo": pl.Float32}
+    )
     out = df.lazy().select(assign_expr("la", "lo", provinces)).collect(engine="streaming")
     assert out.columns == ["region"]
     # Float32 rounding may move the point; the answer must be what assign gives for it.
-    idx = assign(df["la"].cast(pl.Float64).to_numpy(), df["lo"].cast(pl.Float64).to_numpy(),
-                 provinces)
-    assert out["region"].to_list() == [provinces.ids[i] if i >= 0 else None
-                                       for i in idx.tolist()]
+    idx = assign(
+        df["la"].cast(pl.Float64).to_numpy(), df["lo"].cast(pl.Float64).to_numpy(), provinces
+    )
+    assert out["region"].to_list() == [provinces.ids[i] if i >= 0 else None for i in idx.tolist()]
     assert out["region"][1] is None
     ints = pl.DataFrame({"la": [0, 1], "lo": [0, 1]})
     assert ints.select(assign_expr("la", "lo", provinces))["region"].to_list() == [None, None]

@@ -36,6 +36,7 @@ def signed_area(ring: list[list[float]]) -> float:
 def strict_json(data: bytes) -> Any:
     def refuse(token: str) -> None:
         raise AssertionError(f"non-RFC 8259 token {token}")
+
     return json.loads(data, parse_constant=refuse)
 
 
@@ -54,8 +55,9 @@ def cells_at(res: int) -> list[str]:
 
 def check_rings(geometry: dict[str, Any]) -> None:
     """RFC 7946 §3.1.6 on every ring: closed, >= 4 positions, exterior CCW, holes CW."""
-    polygons = (geometry["coordinates"] if geometry["type"] == "MultiPolygon"
-                else [geometry["coordinates"]])
+    polygons = (
+        geometry["coordinates"] if geometry["type"] == "MultiPolygon" else [geometry["coordinates"]]
+    )
     for rings in polygons:
         for i, ring in enumerate(rings):
             assert ring[0] == ring[-1] and len(ring) >= 4
@@ -86,8 +88,10 @@ def test_hex_boundary_is_h3s_boundary_lon_first_ccw_and_closed(res: int) -> None
         # counter-clockwise.
         want = [[lng, lat] for lat, lng in h3.cell_to_boundary(cell)]
         candidates = cyclic_variants(want) + cyclic_variants(want[::-1])
-        assert any(len(c) == len(ring) and np.abs(ring - np.asarray(c)).max() <= 0.5e-6 + 1e-12
-                   for c in candidates), cell
+        assert any(
+            len(c) == len(ring) and np.abs(ring - np.asarray(c)).max() <= 0.5e-6 + 1e-12
+            for c in candidates
+        ), cell
         checked += 1
     assert checked >= 30
 
@@ -105,8 +109,11 @@ def test_hex_coordinates_are_rounded_to_digits(digits: int) -> None:
     for x, y in ring:
         assert round(x, digits) == x and round(y, digits) == y
     text = json.dumps(ring)
-    decimals = [len(t.split(".")[1]) for t in text.replace("[", " ").replace("]", " ")
-                .replace(",", " ").split() if "." in t]
+    decimals = [
+        len(t.split(".")[1])
+        for t in text.replace("[", " ").replace("]", " ").replace(",", " ").split()
+        if "." in t
+    ]
     assert max(decimals) <= max(digits, 1)  # 3.0 is written with one decimal
 
 
@@ -129,12 +136,15 @@ def check_antimeridian_cell(cell: str, g: dict[str, Any]) -> None:
         assert shape({"type": "Polygon", "coordinates": part}).is_valid
     # Area in a frame shifted by 360 degrees, where the cell does not wrap: the parts
     # together cover exactly the cell.
-    shifted_cell = [[lng + 360.0 if lng < 0 else lng, lat]
-                    for lat, lng in h3.cell_to_boundary(cell)]
+    shifted_cell = [
+        [lng + 360.0 if lng < 0 else lng, lat] for lat, lng in h3.cell_to_boundary(cell)
+    ]
     cell_area = abs(signed_area(shifted_cell + shifted_cell[:1]))
     # The western part (longitudes <= 0) moves east by 360 degrees, next to the other.
-    parts = [shapely.Polygon([(x + 360.0 if max(xx for xx, _ in p[0]) <= 0 else x, y)
-                              for x, y in p[0]]) for p in g["coordinates"]]
+    parts = [
+        shapely.Polygon([(x + 360.0 if max(xx for xx, _ in p[0]) <= 0 else x, y) for x, y in p[0]])
+        for p in g["coordinates"]
+    ]
     union = shapely.union_all(parts)
     assert math.isclose(union.area, cell_area, rel_tol=1e-9)
     assert math.isclose(sum(p.area for p in parts), cell_area, rel_tol=1e-9)
@@ -227,12 +237,21 @@ def test_polygon_geometry_refuses_other_types() -> None:
 def test_feature_collection_bytes_parse_in_order_without_nan() -> None:
     cells = [h3.latlng_to_cell(0.0, 179.9, 3), h3.latlng_to_cell(10.0, 10.0, 5)]
     geoms = [hex_polygon(c, 6) for c in cells]
-    props = {"hex": cells, "rate": [float("nan"), np.float64(2.5)],
-             "reports": [np.int64(3), 7], "flag": [np.bool_(True), None],
-             "peak": [np.float32("inf"), -math.inf]}
-    extra = {"reduce": {"format": "reduce.geojson/1", "level": {"hex": 5},
-                        "accounting": {"input_rows": 10, "invalid_rows": 0}},
-             "ratio": float("nan")}
+    props = {
+        "hex": cells,
+        "rate": [float("nan"), np.float64(2.5)],
+        "reports": [np.int64(3), 7],
+        "flag": [np.bool_(True), None],
+        "peak": [np.float32("inf"), -math.inf],
+    }
+    extra = {
+        "reduce": {
+            "format": "reduce.geojson/1",
+            "level": {"hex": 5},
+            "accounting": {"input_rows": 10, "invalid_rows": 0},
+        },
+        "ratio": float("nan"),
+    }
     data = feature_collection(geoms, props, extra=extra)
     doc = strict_json(data)
     assert list(doc) == ["type", "features", "reduce", "ratio"]
@@ -256,7 +275,8 @@ def test_feature_collection_checks_lengths_extras_and_big_integers() -> None:
         feature_collection(g, {}, extra={"features": []})
     with pytest.raises(ValueError, match="beyond ±2\\^53"):
         feature_collection(g, {"n": [2**53]})
-    assert strict_json(feature_collection(g, {"n": [2**53 - 1]}))["features"][0][
-        "properties"] == {"n": 2**53 - 1}
+    assert strict_json(feature_collection(g, {"n": [2**53 - 1]}))["features"][0]["properties"] == {
+        "n": 2**53 - 1
+    }
     empty = strict_json(feature_collection([], {}))
     assert empty == {"type": "FeatureCollection", "features": []}

@@ -26,8 +26,11 @@ def _recipe(folder: Path, *, distinct: bool = True, budget: bool = False) -> Pat
     doc: dict[str, object] = {
         "name": "inc",
         "source": {"path": "ev/*.parquet", "time": "t", "lat": "lat", "lon": "lon"},
-        "group": {"hex": {"levels": [9, 7, 5]}, "time": {"levels": ["1h", "1d"]},
-                  "region": {"column": "region"}},
+        "group": {
+            "hex": {"levels": [9, 7, 5]},
+            "time": {"levels": ["1h", "1d"]},
+            "region": {"column": "region"},
+        },
         "measures": measures,
         "output": {"path": "out/inc.json"},
     }
@@ -121,8 +124,11 @@ def test_a_change_keeping_size_and_mtime_is_caught_by_the_footer_hash(tmp_path: 
     # changes, the file's size does not (fixed-width values, no compression).
     biggest = int(df.get_column("x").arg_max())  # type: ignore[arg-type]
     changed = df.with_columns(
-        pl.when(pl.int_range(pl.len()) == biggest).then(pl.col("x") + 1000.0)
-        .otherwise(pl.col("x")).alias("x"))
+        pl.when(pl.int_range(pl.len()) == biggest)
+        .then(pl.col("x") + 1000.0)
+        .otherwise(pl.col("x"))
+        .alias("x")
+    )
     changed.write_parquet(path, **opts)  # type: ignore[arg-type]
     os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns))
     now = os.stat(path)
@@ -155,7 +161,8 @@ def test_a_file_with_no_valid_rows_is_merged_not_refused(tmp_path: Path) -> None
     for i in range(2):
         _write(tmp_path, f"day-{i}.parquet", seed=i)
     df = random_events(np.random.default_rng(9), 200).with_columns(
-        pl.lit(None, dtype=pl.Float64).alias("lat"))
+        pl.lit(None, dtype=pl.Float64).alias("lat")
+    )
     df.write_parquet(tmp_path / "ev" / "day-2.parquet")
     inc, files, fresh = _runs(recipe, tmp_path)
     assert inc == fresh and files["total"] == 3
@@ -163,8 +170,9 @@ def test_a_file_with_no_valid_rows_is_merged_not_refused(tmp_path: Path) -> None
     assert doc["accounting"]["invalid_rows"] >= 200  # the empty file's rows are counted
 
 
-def test_spilled_files_merge_and_match_a_fresh_run(tmp_path: Path,
-                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+def test_spilled_files_merge_and_match_a_fresh_run(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     monkeypatch.setenv("REDUCE_PROBE_ROWS", "600")  # sparse files over 600 rows spill
     recipe = _recipe(tmp_path, distinct=False, budget=True)
     for i in range(3):
@@ -184,7 +192,8 @@ def test_spilled_files_merge_and_match_a_fresh_run(tmp_path: Path,
 
 
 def test_many_small_sparse_files_of_a_large_source_spill_file_by_file(
-        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     # Every file is under the probe, the source is not: each file is probed on its own rows,
     # so the merged partial is not held in memory when the events do not group.
     monkeypatch.setenv("REDUCE_PROBE_ROWS", "1000")
@@ -200,12 +209,17 @@ def test_many_small_sparse_files_of_a_large_source_spill_file_by_file(
 
 
 def test_csv_files_added_and_changed_in_place_match_a_fresh_run(tmp_path: Path) -> None:
-    doc = {"name": "inc", "source": {"path": "ev/*.csv", "time": "t", "lat": "lat",
-                                     "lon": "lon"},
-           "group": {"hex": {"levels": [8, 6]}, "time": {"levels": ["1d"]},
-                     "category": {"column": "kind"}},
-           "measures": {"n": "count", "sx": {"sum": "x"}, "kinds": {"distinct": "kind"}},
-           "output": {"path": "out/inc.json"}}
+    doc = {
+        "name": "inc",
+        "source": {"path": "ev/*.csv", "time": "t", "lat": "lat", "lon": "lon"},
+        "group": {
+            "hex": {"levels": [8, 6]},
+            "time": {"levels": ["1d"]},
+            "category": {"column": "kind"},
+        },
+        "measures": {"n": "count", "sx": {"sum": "x"}, "kinds": {"distinct": "kind"}},
+        "output": {"path": "out/inc.json"},
+    }
     recipe = tmp_path / "recipe.toml"
     recipe.write_text(to_toml(doc), encoding="utf-8")
     (tmp_path / "ev").mkdir()
@@ -231,7 +245,7 @@ def test_csv_files_added_and_changed_in_place_match_a_fresh_run(tmp_path: Path) 
     last = text.rstrip("\n").rsplit("\n", 1)[1]
     digit = next(c for c in reversed(last) if c.isdigit() and c != "9")
     at = text.rindex(digit)
-    path.write_text(text[:at] + str(int(digit) + 1) + text[at + 1:])
+    path.write_text(text[:at] + str(int(digit) + 1) + text[at + 1 :])
     os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns))
     assert os.stat(path).st_size == st.st_size
     inc2, files, fresh2 = _runs(recipe, tmp_path)
@@ -239,11 +253,17 @@ def test_csv_files_added_and_changed_in_place_match_a_fresh_run(tmp_path: Path) 
 
 
 def test_hive_partitioned_folders_keep_their_partition_column(tmp_path: Path) -> None:
-    doc = {"name": "inc", "source": {"path": "ev", "time": "t", "lat": "lat", "lon": "lon"},
-           "group": {"hex": {"levels": [8, 6]}, "time": {"levels": ["1d"]},
-                     "category": {"column": "zone"}},
-           "measures": {"n": "count", "sx": {"sum": "x"}},
-           "output": {"path": "out/inc.json"}}
+    doc = {
+        "name": "inc",
+        "source": {"path": "ev", "time": "t", "lat": "lat", "lon": "lon"},
+        "group": {
+            "hex": {"levels": [8, 6]},
+            "time": {"levels": ["1d"]},
+            "category": {"column": "zone"},
+        },
+        "measures": {"n": "count", "sx": {"sum": "x"}},
+        "output": {"path": "out/inc.json"},
+    }
     recipe = tmp_path / "recipe.toml"
     recipe.write_text(to_toml(doc), encoding="utf-8")
 
@@ -251,7 +271,8 @@ def test_hive_partitioned_folders_keep_their_partition_column(tmp_path: Path) ->
         folder = tmp_path / "ev" / f"zone={zone}"
         folder.mkdir(parents=True)
         random_events(np.random.default_rng(seed), 500, span_days=3).write_parquet(
-            folder / "part.parquet")
+            folder / "part.parquet"
+        )
 
     write("north", 1)
     write("south", 2)

@@ -30,8 +30,9 @@ def sha(data: bytes) -> str:
 
 
 def manifest_of(name: str, data: bytes) -> bytes:
-    return json.dumps({"format": "reduce.manifest/1", "payload": name,
-                       "sha256": sha(data)}).encode()
+    return json.dumps(
+        {"format": "reduce.manifest/1", "payload": name, "sha256": sha(data)}
+    ).encode()
 
 
 def snapshot(root: Path) -> dict[str, bytes | str]:
@@ -57,8 +58,7 @@ def scene(tmp_path: Path) -> tuple[Path, Path, Path]:
     out.mkdir()
     payload = out / "p.json"
     old = b'{"format": "reduce.columns/1", "old": true}'
-    publish(payload, old, {"format": "reduce.manifest/1", "payload": "p.json",
-                           "sha256": sha(old)})
+    publish(payload, old, {"format": "reduce.manifest/1", "payload": "p.json", "sha256": sha(old)})
     outside = tmp_path / "outside"
     outside.mkdir()
     (outside / "secret.txt").write_bytes(b"keep me\n")
@@ -77,36 +77,56 @@ def hostile_cases(root: Path) -> dict[str, tuple[object, str]]:
     outside = root / "outside"
     t, tm = f".p.json.{DEAD_PID}.tmp", f".p.json.manifest.json.{DEAD_PID}.tmp"
     return {
-        "src-leaves-the-folder": ([["../outside/secret.txt", "p.json"],
-                                   [tm, "p.json.manifest.json"]], "../outside/secret.txt"),
-        "dst-leaves-the-folder": ([[t, "../outside/victim.json"],
-                                   [tm, "p.json.manifest.json"]], "../outside/victim.json"),
-        "absolute-src": ([[str(outside / "secret.txt"), "p.json"],
-                          [tm, "p.json.manifest.json"]], str(outside / "secret.txt")),
-        "absolute-dst": ([[t, str(outside / "victim.json")],
-                          [tm, "p.json.manifest.json"]], str(outside / "victim.json")),
-        "another-payload-name": ([[".q.json.1.tmp", "q.json"],
-                                  [".q.json.manifest.json.1.tmp", "q.json.manifest.json"]],
-                                 "q.json"),
-        "two-process-ids": ([[t, "p.json"], [".p.json.manifest.json.7.tmp",
-                                             "p.json.manifest.json"]],
-                            ".p.json.manifest.json.7.tmp"),
-        "three-moves": ([[t, "p.json"], [tm, "p.json.manifest.json"], ["a", "b"]],
-                        "moves"),
+        "src-leaves-the-folder": (
+            [["../outside/secret.txt", "p.json"], [tm, "p.json.manifest.json"]],
+            "../outside/secret.txt",
+        ),
+        "dst-leaves-the-folder": (
+            [[t, "../outside/victim.json"], [tm, "p.json.manifest.json"]],
+            "../outside/victim.json",
+        ),
+        "absolute-src": (
+            [[str(outside / "secret.txt"), "p.json"], [tm, "p.json.manifest.json"]],
+            str(outside / "secret.txt"),
+        ),
+        "absolute-dst": (
+            [[t, str(outside / "victim.json")], [tm, "p.json.manifest.json"]],
+            str(outside / "victim.json"),
+        ),
+        "another-payload-name": (
+            [[".q.json.1.tmp", "q.json"], [".q.json.manifest.json.1.tmp", "q.json.manifest.json"]],
+            "q.json",
+        ),
+        "two-process-ids": (
+            [[t, "p.json"], [".p.json.manifest.json.7.tmp", "p.json.manifest.json"]],
+            ".p.json.manifest.json.7.tmp",
+        ),
+        "three-moves": ([[t, "p.json"], [tm, "p.json.manifest.json"], ["a", "b"]], "moves"),
     }
 
 
-@pytest.mark.parametrize("case", ["src-leaves-the-folder", "dst-leaves-the-folder",
-                                  "absolute-src", "absolute-dst", "another-payload-name",
-                                  "two-process-ids", "three-moves"])
-def test_hostile_journal_is_refused_and_nothing_moves(scene: tuple[Path, Path, Path],
-                                                      case: str) -> None:
+@pytest.mark.parametrize(
+    "case",
+    [
+        "src-leaves-the-folder",
+        "dst-leaves-the-folder",
+        "absolute-src",
+        "absolute-dst",
+        "another-payload-name",
+        "two-process-ids",
+        "three-moves",
+    ],
+)
+def test_hostile_journal_is_refused_and_nothing_moves(
+    scene: tuple[Path, Path, Path], case: str
+) -> None:
     root, out, payload = scene
     moves, entry = hostile_cases(root)[case]
     # Temporary files of the planted form exist, so only the checks can stop the moves.
     (out / f".p.json.{DEAD_PID}.tmp").write_bytes(b"planted payload")
     (out / f".p.json.manifest.json.{DEAD_PID}.tmp").write_bytes(
-        manifest_of("p.json", b"planted payload"))
+        manifest_of("p.json", b"planted payload")
+    )
     journal = plant(out, moves)
     before = snapshot(root)
     with pytest.raises(OutputError) as err:
@@ -134,9 +154,16 @@ def test_link_as_temporary_file_is_refused(scene: tuple[Path, Path, Path]) -> No
 def test_journal_that_is_a_link_is_refused(scene: tuple[Path, Path, Path]) -> None:
     root, out, payload = scene
     fake = root / "outside" / "plan.json"
-    fake.write_bytes(json.dumps({"moves": [[f".p.json.{DEAD_PID}.tmp", "p.json"],
-                                           [f".p.json.manifest.json.{DEAD_PID}.tmp",
-                                            "p.json.manifest.json"]]}).encode())
+    fake.write_bytes(
+        json.dumps(
+            {
+                "moves": [
+                    [f".p.json.{DEAD_PID}.tmp", "p.json"],
+                    [f".p.json.manifest.json.{DEAD_PID}.tmp", "p.json.manifest.json"],
+                ]
+            }
+        ).encode()
+    )
     (out / ".p.json.reduce-commit").symlink_to(fake)
     before = snapshot(root)
     with pytest.raises(OutputError, match="the journal is not a regular file"):
@@ -145,7 +172,8 @@ def test_journal_that_is_a_link_is_refused(scene: tuple[Path, Path, Path]) -> No
 
 
 def test_journal_pairing_a_payload_with_a_wrong_manifest_is_refused(
-        scene: tuple[Path, Path, Path]) -> None:
+    scene: tuple[Path, Path, Path],
+) -> None:
     root, out, _ = scene
     t, tm = f".p.json.{DEAD_PID}.tmp", f".p.json.manifest.json.{DEAD_PID}.tmp"
     (out / t).write_bytes(b"new payload")
@@ -176,8 +204,7 @@ def test_genuine_interrupted_commit_is_completed(scene: tuple[Path, Path, Path])
     plant(out, [[t, "p.json"], [tm, "p.json.manifest.json"]])
     assert recover(out) == [payload]
     assert json.loads(manifest_path(payload).read_bytes())["sha256"] == sha(new)
-    assert sorted(p.name for p in out.iterdir()) == [LOCK_NAME, "p.json",
-                                                     "p.json.manifest.json"]
+    assert sorted(p.name for p in out.iterdir()) == [LOCK_NAME, "p.json", "p.json.manifest.json"]
 
 
 def test_only_our_temporary_files_are_swept(scene: tuple[Path, Path, Path]) -> None:
@@ -196,22 +223,28 @@ def test_run_refuses_a_planted_journal_with_one_line(tmp_path: Path) -> None:
     recipe = project(tmp_path)
     (tmp_path / "out").mkdir()
     (tmp_path / "victim.txt").write_text("keep me\n")
-    journal = plant(tmp_path / "out", [["../victim.txt", "hexmap.json"],
-                                       [".hexmap.json.manifest.json.1.tmp",
-                                        "hexmap.json.manifest.json"]],
-                    name=".hexmap.json.reduce-commit")
+    journal = plant(
+        tmp_path / "out",
+        [
+            ["../victim.txt", "hexmap.json"],
+            [".hexmap.json.manifest.json.1.tmp", "hexmap.json.manifest.json"],
+        ],
+        name=".hexmap.json.reduce-commit",
+    )
     before = snapshot(tmp_path)
     res = CliRunner().invoke(main, ["run", str(recipe), "--quiet", "--no-cache"])
     assert res.exit_code == 2, res.output
     lines = res.stderr.splitlines()
     assert len(lines) == 1
-    assert lines[0].startswith(f"error: {journal}: commit journal entry '../victim.txt' is "
-                               "not one reduce writes")
+    assert lines[0].startswith(
+        f"error: {journal}: commit journal entry '../victim.txt' is not one reduce writes"
+    )
     assert snapshot(tmp_path) == before
 
 
 def test_journal_naming_a_sibling_outside_the_folder_or_of_another_name_is_refused(
-        scene: tuple[Path, Path, Path]) -> None:
+    scene: tuple[Path, Path, Path],
+) -> None:
     # Pre-compressed siblings (p.json.gz, p.json.br) may ride in the commit; nothing else.
     root, out, _ = scene
     t, tm = f".p.json.{DEAD_PID}.tmp", f".p.json.manifest.json.{DEAD_PID}.tmp"
@@ -239,10 +272,16 @@ def test_interrupted_commit_with_siblings_is_completed(scene: tuple[Path, Path, 
     (out / "p.json.gz").write_bytes(b"new gzip")
     (out / tbr).write_bytes(b"new brotli")
     (out / tm).write_bytes(manifest_of("p.json", new))
-    plant(out, [[t, "p.json"], [tgz, "p.json.gz"], [tbr, "p.json.br"],
-                [tm, "p.json.manifest.json"]])
+    plant(
+        out, [[t, "p.json"], [tgz, "p.json.gz"], [tbr, "p.json.br"], [tm, "p.json.manifest.json"]]
+    )
     assert recover(out) == [payload]
     assert (out / "p.json.br").read_bytes() == b"new brotli"
     assert json.loads(manifest_path(payload).read_bytes())["sha256"] == sha(new)
     assert sorted(p.name for p in out.iterdir()) == [
-        LOCK_NAME, "p.json", "p.json.br", "p.json.gz", "p.json.manifest.json"]
+        LOCK_NAME,
+        "p.json",
+        "p.json.br",
+        "p.json.gz",
+        "p.json.manifest.json",
+    ]

@@ -110,9 +110,23 @@ VARIANTS = ((), ("--set", "output.digits=1"))  # two different payloads at the s
 
 def cli(tmp: Path, out: Path, variant: int) -> subprocess.Popen[bytes]:
     return subprocess.Popen(
-        [sys.executable, "-m", "reduce", "run", str(tmp / "recipe.toml"), "--out", str(out),
-         "--no-cache", "--quiet", *VARIANTS[variant]],
-        cwd=tmp, env=env(), stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+        [
+            sys.executable,
+            "-m",
+            "reduce",
+            "run",
+            str(tmp / "recipe.toml"),
+            "--out",
+            str(out),
+            "--no-cache",
+            "--quiet",
+            *VARIANTS[variant],
+        ],
+        cwd=tmp,
+        env=env(),
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.PIPE,
+    )
 
 
 def test_cli_run_killed_at_random_moments_leaves_old_or_new_payload(tmp_path: Path) -> None:
@@ -188,13 +202,24 @@ def test_publish_loop_killed_at_random_moments_is_never_torn(tmp_path: Path) -> 
     script.write_text(PUBLISH_LOOP)
     out = tmp_path / "out"
     out.mkdir()
-    publish(out / "p.json", a, {"format": "reduce.manifest/1", "payload": "p.json",
-                                "sha256": sha(a)})
+    publish(
+        out / "p.json", a, {"format": "reduce.manifest/1", "payload": "p.json", "sha256": sha(a)}
+    )
     rng = random.Random(31337)
     for i in range(40):
-        proc = subprocess.Popen([sys.executable, str(script), str(out), str(tmp_path / "a.bin"),
-                                 str(tmp_path / "b.bin"), str(i % 2)],
-                                env=env(), stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+        proc = subprocess.Popen(
+            [
+                sys.executable,
+                str(script),
+                str(out),
+                str(tmp_path / "a.bin"),
+                str(tmp_path / "b.bin"),
+                str(i % 2),
+            ],
+            env=env(),
+            stdout=subprocess.PIPE,
+            stderr=subprocess.PIPE,
+        )
         assert proc.stdout is not None
         assert proc.stdout.readline() == b"ready\n", proc.stderr.read() if proc.stderr else ""
         time.sleep(rng.uniform(0.0, 0.12))
@@ -249,10 +274,17 @@ def test_publish_killed_before_each_step_recovers_to_old_or_new(tmp_path: Path) 
     def attempt(step: int) -> subprocess.CompletedProcess[bytes]:
         out = tmp_path / f"out{step}"
         out.mkdir()
-        publish(out / "p.json", a, {"format": "reduce.manifest/1", "payload": "p.json",
-                                    "sha256": sha(a)})
-        return subprocess.run([sys.executable, str(script), str(out), str(tmp_path / "b.bin"),
-                               str(step)], env=env(), capture_output=True, timeout=60)
+        publish(
+            out / "p.json",
+            a,
+            {"format": "reduce.manifest/1", "payload": "p.json", "sha256": sha(a)},
+        )
+        return subprocess.run(
+            [sys.executable, str(script), str(out), str(tmp_path / "b.bin"), str(step)],
+            env=env(),
+            capture_output=True,
+            timeout=60,
+        )
 
     # Step 0 never kills: it counts the steps of a whole publish.
     done = attempt(0)

@@ -34,20 +34,27 @@ def test_a_level_reads_like_a_mapping_of_the_axes_it_has_in_axis_order() -> None
     assert orjson.dumps(dict(lv)) == b'{"hex":7,"time":"1d","digits":2}'
 
 
-@pytest.mark.parametrize(("bad", "message"), [
-    ({"hexes": 7}, "not a ladder axis: hexes"),
-    ({"hex": "7"}, "level axis 'hex': '7' is not a int"),
-    ({"top": True}, "level axis 'top': True is not a int"),
-])
-def test_a_level_refuses_unknown_axes_and_wrong_types(bad: dict[str, object],
-                                                      message: str) -> None:
+@pytest.mark.parametrize(
+    ("bad", "message"),
+    [
+        ({"hexes": 7}, "not a ladder axis: hexes"),
+        ({"hex": "7"}, "level axis 'hex': '7' is not a int"),
+        ({"top": True}, "level axis 'top': True is not a int"),
+    ],
+)
+def test_a_level_refuses_unknown_axes_and_wrong_types(bad: dict[str, object], message: str) -> None:
     with pytest.raises(ValueError, match=message):
         Level.of(bad)
 
 
 def _record(**kw: object) -> Record:
-    base: dict[str, object] = {"level": {"hex": 7}, "rows": 10, "elements": 10, "raw": 1000,
-                               "sha256": "0" * 64}
+    base: dict[str, object] = {
+        "level": {"hex": 7},
+        "rows": 10,
+        "elements": 10,
+        "raw": 1000,
+        "sha256": "0" * 64,
+    }
     return Record(**{**base, **kw})  # type: ignore[arg-type]
 
 
@@ -95,17 +102,20 @@ def test_the_store_name_ignores_the_budget_but_not_the_rest() -> None:
 
 
 @settings(max_examples=60, deadline=None)
-@given(data=st.binary(min_size=0, max_size=4000), limit=st.integers(1, 6000),
-       other=st.integers(1, 6000))
+@given(
+    data=st.binary(min_size=0, max_size=4000),
+    limit=st.integers(1, 6000),
+    other=st.integers(1, 6000),
+)
 def test_a_stored_fast_length_replays_the_quick_verdict_for_any_limit(
-        data: bytes, limit: int, other: int) -> None:
+    data: bytes, limit: int, other: int
+) -> None:
     # The lengths a quick look took at one limit give, at any other limit, the verdict a
     # quick look on the bytes would give (a re-fit replays it without the payload).
     first = quick_look(data, "gzip", limit)
     assert first.fast == len(zlib.compress(data, 1)) + 18 - 6
     again = quick_look(data, "gzip", other)
-    replay = quick_verdict("gzip", other, first.fast, again.mid if first.mid is None
-                           else first.mid)
+    replay = quick_verdict("gzip", other, first.fast, again.mid if first.mid is None else first.mid)
     assert replay.fits == again.fits
     # and a quick "fits" never contradicts the exact length (Python's gzip, level 9)
     if again.fits is True:

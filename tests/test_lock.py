@@ -70,8 +70,13 @@ def sha(data: bytes) -> str:
 
 
 def hold_lock(folder: Path) -> subprocess.Popen[str]:
-    proc = subprocess.Popen([sys.executable, "-c", HOLD, str(folder)], env=env(), text=True,
-                            stdin=subprocess.PIPE, stdout=subprocess.PIPE)
+    proc = subprocess.Popen(
+        [sys.executable, "-c", HOLD, str(folder)],
+        env=env(),
+        text=True,
+        stdin=subprocess.PIPE,
+        stdout=subprocess.PIPE,
+    )
     assert proc.stdout is not None and proc.stdout.readline() == "held\n"
     return proc
 
@@ -98,16 +103,32 @@ def check_pair(folder: Path, name: str) -> bytes | None:
 @pytest.mark.slow
 @pytest.mark.parametrize("budgets", [("20KB", "60KB"), ("15KB", "30KB", "80KB")])
 def test_concurrent_runs_into_one_folder_never_mix_payload_and_manifest(
-        tmp_path: Path, budgets: tuple[str, ...]) -> None:
+    tmp_path: Path, budgets: tuple[str, ...]
+) -> None:
     recipe = project(tmp_path)
     out = tmp_path / "out"
     script = tmp_path / "slow_run.py"
     script.write_text(SLOW_RUN)
-    procs = [subprocess.Popen([sys.executable, str(script), "run", str(recipe), "--quiet",
-                               "--budget", b, "--out", str(out)],
-                              env=env(SLOW_FOLDER=str(out)), cwd=tmp_path,
-                              stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-             for b in budgets]
+    procs = [
+        subprocess.Popen(
+            [
+                sys.executable,
+                str(script),
+                "run",
+                str(recipe),
+                "--quiet",
+                "--budget",
+                b,
+                "--out",
+                str(out),
+            ],
+            env=env(SLOW_FOLDER=str(out)),
+            cwd=tmp_path,
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.PIPE,
+        )
+        for b in budgets
+    ]
     checks = 0
     seen: set[bytes] = set()
     while any(p.poll() is None for p in procs):
@@ -134,9 +155,9 @@ def test_concurrent_runs_into_one_folder_never_mix_payload_and_manifest(
     assert not list(out.glob(".*.tmp")) and not list(out.glob(".*.reduce-commit"))
 
 
-def test_second_run_waits_then_names_the_folder_and_holder(tmp_path: Path,
-                                                           monkeypatch: pytest.MonkeyPatch
-                                                           ) -> None:
+def test_second_run_waits_then_names_the_folder_and_holder(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     recipe = project(tmp_path)
     out = tmp_path / "out"
     out.mkdir()
@@ -151,7 +172,8 @@ def test_second_run_waits_then_names_the_folder_and_holder(tmp_path: Path,
     assert res.exit_code == 2, res.output
     assert res.stderr.splitlines() == [
         f"error: {out}: another reduce run (pid {holder.pid}) holds the output folder's lock; "
-        "waited 0.2 s ($REDUCE_LOCK_WAIT); try again when it has finished"]
+        "waited 0.2 s ($REDUCE_LOCK_WAIT); try again when it has finished"
+    ]
     assert sorted(p.name for p in out.iterdir()) == [".reduce.lock"]  # nothing written
 
 
@@ -166,8 +188,11 @@ def test_publish_waits_for_the_lock_and_then_publishes(tmp_path: Path) -> None:
                 pass
     finally:
         release(holder)
-    publish(out / "p.json", data, {"format": "reduce.manifest/1", "payload": "p.json",
-                                   "sha256": sha(data)})
+    publish(
+        out / "p.json",
+        data,
+        {"format": "reduce.manifest/1", "payload": "p.json", "sha256": sha(data)},
+    )
     assert check_pair(out, "p.json") == data
 
 
@@ -175,7 +200,8 @@ def _builders():  # type: ignore[no-untyped-def]
     import importlib.util
 
     spec = importlib.util.spec_from_file_location(
-        "audit_builders", Path(__file__).parent / "fixtures_audit" / "builders.py")
+        "audit_builders", Path(__file__).parent / "fixtures_audit" / "builders.py"
+    )
     assert spec is not None and spec.loader is not None
     module = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(module)
@@ -190,9 +216,11 @@ def _interrupted_commit(out: Path) -> bytes:
     (out / "p.json").write_bytes(new)  # the payload's rename happened
     tm = ".p.json.manifest.json.999999999.tmp"
     (out / tm).write_bytes(b.dump(b.manifest_for(out / "p.json")))
-    (out / ".p.json.reduce-commit").write_bytes(json.dumps(
-        {"moves": [[".p.json.999999999.tmp", "p.json"],
-                   [tm, "p.json.manifest.json"]]}).encode())
+    (out / ".p.json.reduce-commit").write_bytes(
+        json.dumps(
+            {"moves": [[".p.json.999999999.tmp", "p.json"], [tm, "p.json.manifest.json"]]}
+        ).encode()
+    )
     assert json.loads(manifest_path(out / "p.json").read_bytes())["sha256"] != sha(new)
     return new
 
@@ -204,7 +232,8 @@ def test_audit_completes_an_interrupted_commit_and_says_so(tmp_path: Path) -> No
     res = CliRunner().invoke(audit, [str(out), "--quiet"])
     assert res.stderr.splitlines() == [
         f"{out / '.p.json.reduce-commit'}: completed an interrupted commit of p.json before "
-        "auditing"]
+        "auditing"
+    ]
     assert res.exit_code == 0
     assert check_pair(out, "p.json") == new
     assert not list(out.glob(".p.json.reduce-commit"))
@@ -215,20 +244,24 @@ def test_audit_reports_a_refused_journal_as_one_finding(tmp_path: Path) -> None:
     out.mkdir()
     _interrupted_commit(out)
     journal = out / ".p.json.reduce-commit"
-    journal.write_bytes(json.dumps({"moves": [["../x", "p.json"],
-                                              ["y", "p.json.manifest.json"]]}).encode())
+    journal.write_bytes(
+        json.dumps({"moves": [["../x", "p.json"], ["y", "p.json.manifest.json"]]}).encode()
+    )
     res = CliRunner().invoke(audit, [str(out), "--quiet"])
     assert res.exit_code == 1
     assert journal.exists()
     lines = [line for line in res.stderr.splitlines() if line.startswith(str(journal))]
-    assert lines == [f"{journal}: interrupted commit, not completed: {journal}: commit journal "
-                     "entry '../x' is not one reduce writes (expected a temporary file "
-                     "'.p.json.0.tmp' with one process id for both); nothing was moved: remove "
-                     "the journal if reduce did not write it"]
+    assert lines == [
+        f"{journal}: interrupted commit, not completed: {journal}: commit journal "
+        "entry '../x' is not one reduce writes (expected a temporary file "
+        "'.p.json.0.tmp' with one process id for both); nothing was moved: remove "
+        "the journal if reduce did not write it"
+    ]
 
 
 def test_audit_waits_for_a_run_holding_the_lock_then_says_so(
-        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     out = tmp_path / "out"
     out.mkdir()
     _interrupted_commit(out)
@@ -244,4 +277,5 @@ def test_audit_waits_for_a_run_holding_the_lock_then_says_so(
     assert res.exit_code == 2
     assert res.stderr.splitlines() == [
         f"error: {out}: another reduce run (pid {holder.pid}) holds the output folder's lock; "
-        "waited 0.1 s ($REDUCE_LOCK_WAIT); try again when it has finished"]
+        "waited 0.1 s ($REDUCE_LOCK_WAIT); try again when it has finished"
+    ]

@@ -25,16 +25,19 @@ def _squares(folder: Path) -> Path:
 
 def _points(folder: Path, n: int = 4000, seed: int = 3) -> pl.DataFrame:
     rng = np.random.default_rng(seed)
-    df = pl.DataFrame({
-        "lat": rng.uniform(-0.2, 2.0, n),          # some below the squares: outside
-        "lon": rng.uniform(0.0, 2.0, n),
-        "kind": rng.choice(["x", "y", "z"], n),
-        "from_town": rng.choice(["T1", "T2", "T3", "T4", "T5"], n),
-        "to_town": rng.choice(["T1", "T2", "T3", "T4", "T5"], n),
-    })
+    df = pl.DataFrame(
+        {
+            "lat": rng.uniform(-0.2, 2.0, n),  # some below the squares: outside
+            "lon": rng.uniform(0.0, 2.0, n),
+            "kind": rng.choice(["x", "y", "z"], n),
+            "from_town": rng.choice(["T1", "T2", "T3", "T4", "T5"], n),
+            "to_town": rng.choice(["T1", "T2", "T3", "T4", "T5"], n),
+        }
+    )
     df.write_parquet(folder / "ev.parquet")
     pl.DataFrame({"code": ["A", "B", "C", "D"], "pop": [1000, 2000, 0, 4000]}).write_csv(
-        folder / "pop.csv")
+        folder / "pop.csv"
+    )
     return df
 
 
@@ -71,9 +74,13 @@ def test_points_outside_every_polygon_are_counted_as_unassigned(tmp_path: Path) 
     acc = doc["reduce"]["accounting"]
     outside = int((df["lat"] < 0).sum())
     assert acc["unassigned_rows"] == outside > 0
-    assert acc["input_rows"] == (acc["filtered_rows"] + acc["invalid_rows"]
-                                 + acc["unassigned_rows"] + acc["suppressed_rows"]
-                                 + acc["represented_rows"])
+    assert acc["input_rows"] == (
+        acc["filtered_rows"]
+        + acc["invalid_rows"]
+        + acc["unassigned_rows"]
+        + acc["suppressed_rows"]
+        + acc["represented_rows"]
+    )
     # Brute force with shapely: each feature's count equals the points its square covers
     # (boundary points go to the smallest id; random floats never hit an edge here).
     for f in doc["features"]:
@@ -147,8 +154,11 @@ def test_flows_keep_top_pairs_and_conserve_the_total(tmp_path: Path, k: int) -> 
     cols = doc["columns"]
     dicts = doc.get("dictionaries", {})
     origin = [dicts["origin"][i] for i in cols["origin"]] if "origin" in dicts else cols["origin"]
-    dest = ([dicts["destination"][i] for i in cols["destination"]] if "destination" in dicts
-            else cols["destination"])
+    dest = (
+        [dicts["destination"][i] for i in cols["destination"]]
+        if "destination" in dicts
+        else cols["destination"]
+    )
     assert sum(cols["n"]) == df.height  # totals conserved, remainder row included
     pairs = df.group_by("from_town", "to_town").len()
     kept = [(o, d) for o, d in zip(origin, dest) if (o, d) != ("other", "other")]
@@ -162,10 +172,18 @@ def test_flows_from_coordinates_use_hex_cells(tmp_path: Path) -> None:
 
     rng = np.random.default_rng(5)
     n = 500
-    df = pl.DataFrame({"a_lat": rng.uniform(10, 11, n), "a_lon": rng.uniform(20, 21, n),
-                       "b_lat": rng.uniform(10, 11, n), "b_lon": rng.uniform(20, 21, n)})
+    df = pl.DataFrame(
+        {
+            "a_lat": rng.uniform(10, 11, n),
+            "a_lon": rng.uniform(20, 21, n),
+            "b_lat": rng.uniform(10, 11, n),
+            "b_lon": rng.uniform(20, 21, n),
+        }
+    )
     df.write_parquet(tmp_path / "ev.parquet")
-    recipe = write_recipe(tmp_path, """
+    recipe = write_recipe(
+        tmp_path,
+        """
         name = "hexflows"
         [source]
         path = "ev.parquet"
@@ -174,13 +192,17 @@ def test_flows_from_coordinates_use_hex_cells(tmp_path: Path) -> None:
         [output]
         path = "out/hexflows.json"
         layout = "rows"
-        """)
+        """,
+    )
     res = reduce.run(recipe)
     rows = json.loads(res.path.read_bytes())  # type: ignore[union-attr]
     # Reference: the h3 bindings index each end directly.
     want: dict[tuple[str, str], int] = {}
     for r in df.iter_rows(named=True):
-        key = (h3.latlng_to_cell(r["a_lat"], r["a_lon"], 4), h3.latlng_to_cell(r["b_lat"], r["b_lon"], 4))
+        key = (
+            h3.latlng_to_cell(r["a_lat"], r["a_lon"], 4),
+            h3.latlng_to_cell(r["b_lat"], r["b_lon"], 4),
+        )
         want[key] = want.get(key, 0) + 1
     assert {(r["origin"], r["destination"]): r["count"] for r in rows} == want
 
@@ -189,7 +211,9 @@ def test_simplification_is_a_ladder_axis_under_the_budget(tmp_path: Path) -> Non
     from reduce.demo import ensure_scenario
 
     demo = ensure_scenario(rows=20_000, dest=tmp_path / "demo")
-    recipe = write_recipe(tmp_path, f"""
+    recipe = write_recipe(
+        tmp_path,
+        f"""
         name = "choro"
         [source]
         path = "{demo}/events/*.parquet"
@@ -201,7 +225,8 @@ def test_simplification_is_a_ladder_axis_under_the_budget(tmp_path: Path) -> Non
         layout = "geojson"
         simplify = [0.0, 0.002, 0.01]
         coordinate_digits = [6, 4]
-        """)
+        """,
+    )
     full = reduce.ladder(recipe, every_level=True)
     sizes = {(c.level["simplify"], c.level["coords"]): c.gzip for c in full.candidates}
     assert sizes[(0.0, 6)] > sizes[(0.002, 6)] > sizes[(0.01, 6)]
@@ -217,8 +242,12 @@ def test_flows_split_by_a_category_match_duckdb(tmp_path: Path) -> None:
     import duckdb
 
     df = _points(tmp_path)
-    recipe = write_recipe(tmp_path, FLOWS.format(k=1000).replace(
-        'destination = "to_town" }', 'destination = "to_town" }\ncategory = { column = "kind" }'))
+    recipe = write_recipe(
+        tmp_path,
+        FLOWS.format(k=1000).replace(
+            'destination = "to_town" }', 'destination = "to_town" }\ncategory = { column = "kind" }'
+        ),
+    )
     res = reduce.run(recipe)
     doc = json.loads(res.path.read_bytes())  # type: ignore[union-attr]
     cols, dicts = doc["columns"], doc.get("dictionaries", {})
@@ -229,16 +258,24 @@ def test_flows_split_by_a_category_match_duckdb(tmp_path: Path) -> None:
     got = dict(zip(zip(values("origin"), values("destination"), values("kind")), cols["n"]))
     con = duckdb.connect()
     con.register("ev", df.to_arrow())
-    want = {(o, d, k): n for o, d, k, n in con.execute(
-        "SELECT from_town, to_town, kind, count(*) FROM ev GROUP BY ALL").fetchall()}
+    want = {
+        (o, d, k): n
+        for o, d, k, n in con.execute(
+            "SELECT from_town, to_town, kind, count(*) FROM ev GROUP BY ALL"
+        ).fetchall()
+    }
     assert got == want
     assert list(cols)[:3] == ["origin", "destination", "kind"]
 
 
 def test_flow_category_named_like_a_flow_end_is_refused(tmp_path: Path) -> None:
     _points(tmp_path)
-    recipe = write_recipe(tmp_path, FLOWS.format(k=3).replace(
-        'destination = "to_town" }', 'destination = "to_town" }\n'
-        'category = { column = "origin" }'))
+    recipe = write_recipe(
+        tmp_path,
+        FLOWS.format(k=3).replace(
+            'destination = "to_town" }',
+            'destination = "to_town" }\ncategory = { column = "origin" }',
+        ),
+    )
     with pytest.raises(reduce.RecipeError, match="column 'origin' has the name of another key"):
         reduce.load_recipe(recipe)

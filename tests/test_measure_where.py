@@ -50,14 +50,18 @@ def _flights(folder: Path, n: int = 6000) -> pl.DataFrame:
     sched = [start + dt.timedelta(minutes=int(m)) for m in rng.integers(0, 5 * 1440, n)]
     cancelled = rng.random(n) < 0.08
     delay = rng.integers(-10, 120, n)
-    df = pl.DataFrame({
-        "sched": pl.Series(sched, dtype=pl.Datetime("us", "UTC")),
-        "carrier": rng.choice(["AA", "UA", "DL", "B6"], n),
-        "dep_time": pl.Series([None if c else int(d) for c, d in zip(cancelled, delay)],
-                              dtype=pl.Int64),
-        "delay": pl.Series([None if c else int(d) for c, d in zip(cancelled, delay)],
-                           dtype=pl.Int64),
-    }).with_columns(pl.col("sched").dt.hour().cast(pl.Int64).alias("hour"))
+    df = pl.DataFrame(
+        {
+            "sched": pl.Series(sched, dtype=pl.Datetime("us", "UTC")),
+            "carrier": rng.choice(["AA", "UA", "DL", "B6"], n),
+            "dep_time": pl.Series(
+                [None if c else int(d) for c, d in zip(cancelled, delay)], dtype=pl.Int64
+            ),
+            "delay": pl.Series(
+                [None if c else int(d) for c, d in zip(cancelled, delay)], dtype=pl.Int64
+            ),
+        }
+    ).with_columns(pl.col("sched").dt.hour().cast(pl.Int64).alias("hour"))
     df.write_parquet(folder / "flights.parquet")
     return df
 
@@ -80,9 +84,17 @@ def _payload_rows(path: Path) -> dict[tuple[int, str], tuple[Any, ...]]:
     cols = doc["columns"]
     labels = doc.get("dictionaries", {}).get("carrier")
     carriers = [labels[i] for i in cols["carrier"]] if labels else cols["carrier"]
-    return {(t, c): (n, k, s, w) for t, c, n, k, s, w in zip(
-        cols["time"], carriers, cols["flights"], cols["cancelled"], cols["late_minutes"],
-        cols["worst_morning"])}
+    return {
+        (t, c): (n, k, s, w)
+        for t, c, n, k, s, w in zip(
+            cols["time"],
+            carriers,
+            cols["flights"],
+            cols["cancelled"],
+            cols["late_minutes"],
+            cols["worst_morning"],
+        )
+    }
 
 
 def _run(tmp_path: Path, *args: str, env: dict[str, str] | None = None) -> None:
@@ -103,8 +115,7 @@ def test_where_measures_match_duckdb_filter_at_every_level(tmp_path: Path, level
     # 500-row probe finds hourly groups too sparse: the keyed rows go to disk)
     if level == "1d":
         for env in ({}, {"REDUCE_PROBE_ROWS": "500"}):
-            write_recipe(tmp_path, RECIPE.format(extra='[budget]\nmax = "1MB"\n'
-                                                 'order = ["time"]'))
+            write_recipe(tmp_path, RECIPE.format(extra='[budget]\nmax = "1MB"\norder = ["time"]'))
             _run(tmp_path, "--budget", "9KB", "--on", "raw", "--no-cache", env=env)
             doc = json.loads((tmp_path / "out" / "flights.json").read_bytes())
             assert doc["level"]["time"] == "1d"
@@ -113,20 +124,31 @@ def test_where_measures_match_duckdb_filter_at_every_level(tmp_path: Path, level
 
 def test_where_on_a_distinct_measure_is_refused(tmp_path: Path) -> None:
     _flights(tmp_path)
-    write_recipe(tmp_path, RECIPE.format(extra="").replace(
-        'late_minutes = { sum = "delay",', 'late_minutes = { distinct = "delay",'))
+    write_recipe(
+        tmp_path,
+        RECIPE.format(extra="").replace(
+            'late_minutes = { sum = "delay",', 'late_minutes = { distinct = "delay",'
+        ),
+    )
     res = CliRunner().invoke(main, ["check", "recipe.toml"])
     assert res.exit_code == 2
-    assert res.stderr.strip() == ("error: recipe.toml: measures.late_minutes.where: applies to "
-                                  "count, sum, mean, min and max measures, not distinct")
+    assert res.stderr.strip() == (
+        "error: recipe.toml: measures.late_minutes.where: applies to "
+        "count, sum, mean, min and max measures, not distinct"
+    )
 
 
 def test_where_literal_of_the_wrong_type_is_found_by_check(tmp_path: Path) -> None:
     _flights(tmp_path)
-    write_recipe(tmp_path, RECIPE.format(extra="").replace(
-        '{ column = "delay", min = 15 }', '{ column = "delay", in = ["late"] }'))
+    write_recipe(
+        tmp_path,
+        RECIPE.format(extra="").replace(
+            '{ column = "delay", min = 15 }', '{ column = "delay", in = ["late"] }'
+        ),
+    )
     res = CliRunner().invoke(main, ["check", "recipe.toml"])
     assert res.exit_code == 2
     assert res.stderr.strip() == (
         "error: flights.parquet: measures.late_minutes.where[0].in: value 'late' cannot be "
-        "compared with column 'delay' of type Int64; use a value of the column's type")
+        "compared with column 'delay' of type Int64; use a value of the column's type"
+    )

@@ -38,8 +38,9 @@ def _expected_surface(n: int) -> str:
 
 
 @pytest.fixture(scope="module")
-def pages(demo_payloads: dict[str, Path], tmp_path_factory: pytest.TempPathFactory
-          ) -> dict[str, Path]:
+def pages(
+    demo_payloads: dict[str, Path], tmp_path_factory: pytest.TempPathFactory
+) -> dict[str, Path]:
     out = tmp_path_factory.mktemp("pages")
     res = {}
     for name, p in demo_payloads.items():
@@ -58,11 +59,21 @@ def _elements(payload: Path) -> int:
     return len(doc["features"]) if doc.get("type") == "FeatureCollection" else doc["rows"]
 
 
-@pytest.mark.parametrize("name", ["daily-series", "hex-layer", "province-choropleth",
-                                  "province-rates", "sightings-hex", "sightings-hex-all",
-                                  "town-flows"])
+@pytest.mark.parametrize(
+    "name",
+    [
+        "daily-series",
+        "hex-layer",
+        "province-choropleth",
+        "province-rates",
+        "sightings-hex",
+        "sightings-hex-all",
+        "town-flows",
+    ],
+)
 def test_every_demo_page_draws_with_finite_timings_and_no_console_errors(
-        name: str, pages: dict[str, Path], demo_payloads: dict[str, Path], driver: Any) -> None:
+    name: str, pages: dict[str, Path], demo_payloads: dict[str, Path], driver: Any
+) -> None:
     load = load_page(driver, pages[name])
     n = _elements(demo_payloads[name])
     assert load.drawn == n
@@ -97,11 +108,12 @@ return reduceReader.toRows(reducePayload).map((r) => Object.fromEntries(Object.e
 """
 
 
-@pytest.mark.parametrize("name", ["daily-series", "province-rates", "sightings-hex",
-                                  "sightings-hex-all", "town-flows"])
-def test_page_reader_rows_equal_the_python_decoding(name: str, pages: dict[str, Path],
-                                                    demo_payloads: dict[str, Path],
-                                                    driver: Any) -> None:
+@pytest.mark.parametrize(
+    "name", ["daily-series", "province-rates", "sightings-hex", "sightings-hex-all", "town-flows"]
+)
+def test_page_reader_rows_equal_the_python_decoding(
+    name: str, pages: dict[str, Path], demo_payloads: dict[str, Path], driver: Any
+) -> None:
     load_page(driver, pages[name])
     got = driver.execute_script(_JS_ROWS)
     want = _python_rows(json.loads(demo_payloads[name].read_bytes()))
@@ -109,21 +121,29 @@ def test_page_reader_rows_equal_the_python_decoding(name: str, pages: dict[str, 
     assert got == want
 
 
-def test_page_reader_columns_keep_seconds_when_asked(pages: dict[str, Path],
-                                                     demo_payloads: dict[str, Path],
-                                                     driver: Any) -> None:
+def test_page_reader_columns_keep_seconds_when_asked(
+    pages: dict[str, Path], demo_payloads: dict[str, Path], driver: Any
+) -> None:
     load_page(driver, pages["daily-series"])
     got = driver.execute_script(
-        "return reduceReader.toColumns(reducePayload, { dates: false }).time;")
+        "return reduceReader.toColumns(reducePayload, { dates: false }).time;"
+    )
     assert got == json.loads(demo_payloads["daily-series"].read_bytes())["columns"]["time"]
 
 
-def test_page_reader_rejects_an_index_outside_its_dictionary(tmp_path: Path,
-                                                             driver: Any) -> None:
+def test_page_reader_rejects_an_index_outside_its_dictionary(tmp_path: Path, driver: Any) -> None:
     p = tmp_path / "bad.json"
-    p.write_bytes(orjson.dumps({"format": "reduce.columns/1", "recipe": "x", "rows": 1,
-                                "columns": {"kind": [0], "n": [1]},
-                                "dictionaries": {"kind": ["a"]}}))
+    p.write_bytes(
+        orjson.dumps(
+            {
+                "format": "reduce.columns/1",
+                "recipe": "x",
+                "rows": 1,
+                "columns": {"kind": [0], "n": [1]},
+                "dictionaries": {"kind": ["a"]},
+            }
+        )
+    )
     page = preview.write_previews(p, out_dir=tmp_path / "o").html
     load_page(driver, page)
     msg = driver.execute_script("""
@@ -155,9 +175,20 @@ def test_hovering_a_canvas_cell_shows_its_cell(tmp_path: Path, driver: Any) -> N
     cell = h3.latlng_to_cell(10.0, 20.0, 6)
     n = SVG_MAX + 1
     p = tmp_path / "one.json"
-    p.write_bytes(orjson.dumps({"format": "reduce.columns/1", "recipe": "one", "rows": n,
-                                "columns": {"time": [3600 * i for i in range(n)],
-                                            "hex": [cell] * n, "reports": [1] * n}}))
+    p.write_bytes(
+        orjson.dumps(
+            {
+                "format": "reduce.columns/1",
+                "recipe": "one",
+                "rows": n,
+                "columns": {
+                    "time": [3600 * i for i in range(n)],
+                    "hex": [cell] * n,
+                    "reports": [1] * n,
+                },
+            }
+        )
+    )
     load = load_page(driver, preview.write_previews(p, out_dir=tmp_path / "o").html)
     assert load.surface == "canvas"
     plot = driver.find_element(By.ID, "plot")
@@ -170,10 +201,21 @@ def test_hovering_a_canvas_cell_shows_its_cell(tmp_path: Path, driver: Any) -> N
 def test_a_large_payload_is_drawn_with_webgl(tmp_path: Path, driver: Any) -> None:
     n = CANVAS_MAX + 1
     p = tmp_path / "big.json"
-    p.write_bytes(orjson.dumps({
-        "format": "reduce.columns/1", "recipe": "big", "level": {}, "rows": n,
-        "columns": {"kind": [i % 40 for i in range(n)], "reports": [1 + i % 7 for i in range(n)]},
-        "dictionaries": {"kind": [f"k{i:02d}" for i in range(40)]}}))
+    p.write_bytes(
+        orjson.dumps(
+            {
+                "format": "reduce.columns/1",
+                "recipe": "big",
+                "level": {},
+                "rows": n,
+                "columns": {
+                    "kind": [i % 40 for i in range(n)],
+                    "reports": [1 + i % 7 for i in range(n)],
+                },
+                "dictionaries": {"kind": [f"k{i:02d}" for i in range(40)]},
+            }
+        )
+    )
     page = preview.write_previews(p, out_dir=tmp_path / "o").html
     load = load_page(driver, page)
     assert (load.drawn, load.surface) == (n, "webgl")
@@ -189,23 +231,26 @@ def test_a_large_payload_is_drawn_with_webgl(tmp_path: Path, driver: Any) -> Non
     assert painted > 1000
 
 
-def test_measure_pages_reports_medians_of_three_loads(pages: dict[str, Path],
-                                                     demo_payloads: dict[str, Path]) -> None:
+def test_measure_pages_reports_medians_of_three_loads(
+    pages: dict[str, Path], demo_payloads: dict[str, Path]
+) -> None:
     [m] = measure_pages([pages["province-rates"]])
     n = _elements(demo_payloads["province-rates"])
     assert (m["loads"], m["surface"], m["drawn"]) == (3, _expected_surface(n), n)
     assert math.isfinite(m["parse_ms"]) and math.isfinite(m["draw_ms"])
 
 
-def test_cli_preview_measure_json_reports_finite_medians(demo_payloads: dict[str, Path],
-                                                         tmp_path: Path) -> None:
+def test_cli_preview_measure_json_reports_finite_medians(
+    demo_payloads: dict[str, Path], tmp_path: Path
+) -> None:
     from click.testing import CliRunner
 
     from reduce.cli import main
 
     src = demo_payloads["town-flows"]
-    res = CliRunner().invoke(main, ["preview", str(src), "--out", str(tmp_path), "--measure",
-                                    "--json"])
+    res = CliRunner().invoke(
+        main, ["preview", str(src), "--out", str(tmp_path), "--measure", "--json"]
+    )
     assert res.exit_code == 0, res.output
     [entry] = json.loads(res.output)
     m = entry["measured"]
@@ -214,7 +259,8 @@ def test_cli_preview_measure_json_reports_finite_medians(demo_payloads: dict[str
 
 
 def test_audit_measure_adds_timings_and_max_draw_ms_is_a_finding(
-        demo_payloads: dict[str, Path], monkeypatch: pytest.MonkeyPatch) -> None:
+    demo_payloads: dict[str, Path], monkeypatch: pytest.MonkeyPatch
+) -> None:
     from click.testing import CliRunner
 
     from reduce.cli import main
@@ -227,15 +273,25 @@ def test_audit_measure_adds_timings_and_max_draw_ms_is_a_finding(
     # The budget check itself, on a fixed timing (timings are never asserted in tests).
     import reduce.browser
 
-    monkeypatch.setattr(reduce.browser, "measure_payloads", lambda paths: {
-        Path(p): {"surface": "svg", "drawn": 72, "shapes": 25, "loads": 3, "parse_ms": 1.0,
-                  "draw_ms": 12.5} for p in paths})
-    res = CliRunner().invoke(main, ["audit", src, "--measure", "--max-draw-ms", "10",
-                                    "--quiet"])
+    monkeypatch.setattr(
+        reduce.browser,
+        "measure_payloads",
+        lambda paths: {
+            Path(p): {
+                "surface": "svg",
+                "drawn": 72,
+                "shapes": 25,
+                "loads": 3,
+                "parse_ms": 1.0,
+                "draw_ms": 12.5,
+            }
+            for p in paths
+        },
+    )
+    res = CliRunner().invoke(main, ["audit", src, "--measure", "--max-draw-ms", "10", "--quiet"])
     assert res.exit_code == 1
     assert res.output == f"{src}: page draws in 12.5 ms > --max-draw-ms 10 ms\n"
-    res = CliRunner().invoke(main, ["audit", src, "--measure", "--max-draw-ms", "20",
-                                    "--quiet"])
+    res = CliRunner().invoke(main, ["audit", src, "--measure", "--max-draw-ms", "20", "--quiet"])
     assert res.exit_code == 0 and res.output == ""
 
 
@@ -244,14 +300,17 @@ def test_audit_max_draw_ms_needs_measure(demo_payloads: dict[str, Path]) -> None
 
     from reduce.cli import main
 
-    res = CliRunner().invoke(main, ["audit", str(demo_payloads["province-rates"]),
-                                    "--max-draw-ms", "5"])
+    res = CliRunner().invoke(
+        main, ["audit", str(demo_payloads["province-rates"]), "--max-draw-ms", "5"]
+    )
     assert res.exit_code == 2 and "--max-draw-ms needs --measure" in res.output
 
 
 def test_a_rows_layout_payload_is_drawn(tmp_path: Path, driver: Any) -> None:
-    rows = [{"region": r, "kind": k, "reports": n}
-            for r, k, n in [("a", "x", 3), ("a", "y", 5), ("b", "x", 2)]]
+    rows = [
+        {"region": r, "kind": k, "reports": n}
+        for r, k, n in [("a", "x", 3), ("a", "y", 5), ("b", "x", 2)]
+    ]
     p = tmp_path / "rows.json"
     p.write_bytes(orjson.dumps(rows))
     load = load_page(driver, preview.write_previews(p, out_dir=tmp_path / "o").html)

@@ -23,8 +23,11 @@ EVENTS = {"region": ["a", "b", "a", "c", "b", "a"], "kind": ["x", "y", "x", "x",
 
 
 def _case(case, **output):  # type: ignore[no-untyped-def]
-    return case(EVENTS, group={"region": {"column": "region"}, "category": {"column": "kind"}},
-                output={"path": "out/case.json", **output})
+    return case(
+        EVENTS,
+        group={"region": {"column": "region"}, "category": {"column": "kind"}},
+        output={"path": "out/case.json", **output},
+    )
 
 
 def test_precompress_writes_gz_and_br_that_decompress_to_the_payload(case) -> None:  # type: ignore[no-untyped-def]
@@ -45,8 +48,9 @@ def test_precompress_writes_gz_and_br_that_decompress_to_the_payload(case) -> No
 
 def test_precompress_is_also_set_from_the_command_line(case) -> None:  # type: ignore[no-untyped-def]
     recipe = _case(case)
-    res = CliRunner().invoke(main, ["run", str(recipe), "--no-cache", "-q",
-                                    "--set", "output.precompress=true"])
+    res = CliRunner().invoke(
+        main, ["run", str(recipe), "--no-cache", "-q", "--set", "output.precompress=true"]
+    )
     assert res.exit_code == 0, res.output
     out = recipe.parent / "out"
     assert gzip.decompress((out / "case.json.gz").read_bytes()) == (out / "case.json").read_bytes()
@@ -71,15 +75,25 @@ def test_audit_finds_no_problem_with_fresh_siblings_and_skips_them_as_files(case
     assert report.files[0].problems == ()
 
 
-@pytest.mark.parametrize("suffix, damage, message", [
-    (".gz", lambda b: gzip.compress(b + b" ", mtime=0), "does not decompress to the payload"),
-    (".br", lambda b: b"not brotli", "not valid brotli"),
-    # Two gzip members (RFC 1952 2.2) decompress to the same bytes but are longer.
-    (".gz", lambda b: gzip.compress(b[:10], mtime=0) + gzip.compress(b[10:], mtime=0),
-     "but the manifest's bytes.gzip"),
-])
-def test_audit_reports_a_sibling_that_disagrees_with_the_payload(case, suffix: str, damage,  # type: ignore[no-untyped-def]
-                                                                 message: str) -> None:
+@pytest.mark.parametrize(
+    "suffix, damage, message",
+    [
+        (".gz", lambda b: gzip.compress(b + b" ", mtime=0), "does not decompress to the payload"),
+        (".br", lambda b: b"not brotli", "not valid brotli"),
+        # Two gzip members (RFC 1952 2.2) decompress to the same bytes but are longer.
+        (
+            ".gz",
+            lambda b: gzip.compress(b[:10], mtime=0) + gzip.compress(b[10:], mtime=0),
+            "but the manifest's bytes.gzip",
+        ),
+    ],
+)
+def test_audit_reports_a_sibling_that_disagrees_with_the_payload(
+    case,
+    suffix: str,
+    damage,  # type: ignore[no-untyped-def]
+    message: str,
+) -> None:
     recipe = _case(case, precompress=True)
     res = reduce.run(recipe, use_cache=False)
     sib = res.path.with_name(res.path.name + suffix)
@@ -135,6 +149,9 @@ def test_preview_of_a_folder_takes_the_payloads_with_a_manifest(case) -> None:  
 
 def test_output_preview_of_a_csv_layout_is_refused(case) -> None:  # type: ignore[no-untyped-def]
     recipe = _case(case, preview=True, layout="csv", path="out/case.csv")
-    with pytest.raises(reduce.errors.RecipeError, match=r"output.preview: draws JSON layouts "
-                       r"\(columns, rows, geojson\) only"):
+    with pytest.raises(
+        reduce.errors.RecipeError,
+        match=r"output.preview: draws JSON layouts "
+        r"\(columns, rows, geojson\) only",
+    ):
         reduce.load_recipe(recipe)

@@ -30,13 +30,29 @@ VIRIDIS_BOTTOM = (68, 1, 84)  # _viridis_data[0] x 255, rounded
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # RFC 2083 3.1
 
 
-def _columns_payload(columns: dict[str, list], *, recipe: str = "t", level: dict | None = None,
-                     dictionaries: dict | None = None) -> bytes:
+def _columns_payload(
+    columns: dict[str, list],
+    *,
+    recipe: str = "t",
+    level: dict | None = None,
+    dictionaries: dict | None = None,
+) -> bytes:
     n = len(next(iter(columns.values())))
-    doc = {"format": "reduce.columns/1", "recipe": recipe, "level": level or {}, "rows": n,
-           "columns": columns, **({"dictionaries": dictionaries} if dictionaries else {}),
-           "accounting": {"input_rows": n, "filtered_rows": 0, "invalid_rows": 0,
-                          "suppressed_rows": 0, "represented_rows": n}}
+    doc = {
+        "format": "reduce.columns/1",
+        "recipe": recipe,
+        "level": level or {},
+        "rows": n,
+        "columns": columns,
+        **({"dictionaries": dictionaries} if dictionaries else {}),
+        "accounting": {
+            "input_rows": n,
+            "filtered_rows": 0,
+            "invalid_rows": 0,
+            "suppressed_rows": 0,
+            "represented_rows": n,
+        },
+    }
     return orjson.dumps(doc)
 
 
@@ -81,8 +97,12 @@ def test_png_sums_a_cell_over_its_other_keys_before_colouring(tmp_path: Path) ->
     a = h3.latlng_to_cell(10.0, 20.0, 5)
     b = h3.latlng_to_cell(11.0, 21.0, 5)
     p = tmp_path / "k.json"
-    p.write_bytes(_columns_payload({"hex": [a, a, b], "kind": [0, 1, 0], "reports": [3, 4, 6]},
-                                   dictionaries={"kind": ["x", "y"]}))
+    p.write_bytes(
+        _columns_payload(
+            {"hex": [a, a, b], "kind": [0, 1, 0], "reports": [3, 4, 6]},
+            dictionaries={"kind": ["x", "y"]},
+        )
+    )
     t = preview.load_table(p)
     img = Image.open(io.BytesIO(preview.render_png(t))).convert("RGB")
     assert img.getpixel(_pixel_of_cell(t, a)) == VIRIDIS_TOP
@@ -97,10 +117,20 @@ def test_scale_ends_are_the_published_viridis_ends() -> None:
     assert greens == sorted(greens)
 
 
-@pytest.mark.parametrize("name", ["daily-series", "hex-layer", "province-choropleth",
-                                  "province-rates", "sightings-hex-all", "town-flows"])
-def test_demo_png_is_not_blank_and_deterministic(name: str, demo_payloads: dict[str, Path],
-                                                 tmp_path: Path) -> None:
+@pytest.mark.parametrize(
+    "name",
+    [
+        "daily-series",
+        "hex-layer",
+        "province-choropleth",
+        "province-rates",
+        "sightings-hex-all",
+        "town-flows",
+    ],
+)
+def test_demo_png_is_not_blank_and_deterministic(
+    name: str, demo_payloads: dict[str, Path], tmp_path: Path
+) -> None:
     t = preview.load_table(demo_payloads[name])
     first = preview.render_png(t)
     assert preview.render_png(preview.load_table(demo_payloads[name])) == first
@@ -117,31 +147,48 @@ def test_demo_png_is_not_blank_and_deterministic(name: str, demo_payloads: dict[
 
 def test_demo_views_follow_the_rule(demo_payloads: dict[str, Path]) -> None:
     kinds = {n: preview.choose_view(preview.load_table(p)).kind for n, p in demo_payloads.items()}
-    assert kinds == {"daily-series": "lines", "hex-layer": "map", "province-choropleth": "map",
-                     "province-rates": "bars", "sightings-hex": "map",
-                     "sightings-hex-all": "map", "town-flows": "bars"}
+    assert kinds == {
+        "daily-series": "lines",
+        "hex-layer": "map",
+        "province-choropleth": "map",
+        "province-rates": "bars",
+        "sightings-hex": "map",
+        "sightings-hex-all": "map",
+        "town-flows": "bars",
+    }
     # The choropleth is coloured by its rate, not by its raw count.
     t = preview.load_table(demo_payloads["province-choropleth"])
     assert preview.choose_view(t).value == "reports_per_100000"
 
 
-def test_png_bytes_are_the_same_in_another_process(demo_payloads: dict[str, Path],
-                                                   tmp_path: Path) -> None:
+def test_png_bytes_are_the_same_in_another_process(
+    demo_payloads: dict[str, Path], tmp_path: Path
+) -> None:
     src = demo_payloads["province-rates"]
     a, b = tmp_path / "a", tmp_path / "b"
     for out in (a, b):
-        subprocess.run([sys.executable, "-m", "reduce", "preview", str(src), "--out", str(out)],
-                       check=True, capture_output=True)
+        subprocess.run(
+            [sys.executable, "-m", "reduce", "preview", str(src), "--out", str(out)],
+            check=True,
+            capture_output=True,
+        )
     assert (a / "province-rates.png").read_bytes() == (b / "province-rates.png").read_bytes()
     assert (a / "province-rates.html").read_bytes() == (b / "province-rates.html").read_bytes()
 
 
 def test_flows_are_ranked_bars_of_pairs_summed_over_time(tmp_path: Path) -> None:
     p = tmp_path / "f.json"
-    p.write_bytes(_columns_payload(
-        {"time": [0, 0, 86400], "origin": [0, 1, 0], "destination": [1, 0, 1],
-         "forwards": [2, 5, 4]},
-        dictionaries={"origin": ["A", "B"], "destination": ["A", "B"]}))
+    p.write_bytes(
+        _columns_payload(
+            {
+                "time": [0, 0, 86400],
+                "origin": [0, 1, 0],
+                "destination": [1, 0, 1],
+                "forwards": [2, 5, 4],
+            },
+            dictionaries={"origin": ["A", "B"], "destination": ["A", "B"]},
+        )
+    )
     t = preview.load_table(p)
     bars = preview.bar_values(t, preview.choose_view(t))
     assert bars == [("A \u2192 B", 6.0), ("B \u2192 A", 5.0)]
@@ -151,8 +198,15 @@ def test_lines_keep_the_top_categories_by_total(tmp_path: Path) -> None:
     kinds = ["a", "b", "c", "d", "e", "f", "g"]
     rows = [(s, k, 10 - i) for s in (0, 3600) for i, k in enumerate(kinds)]
     p = tmp_path / "s.json"
-    p.write_bytes(_columns_payload({"time": [r[0] for r in rows], "kind": [r[1] for r in rows],
-                                    "reports": [r[2] for r in rows]}))
+    p.write_bytes(
+        _columns_payload(
+            {
+                "time": [r[0] for r in rows],
+                "kind": [r[1] for r in rows],
+                "reports": [r[2] for r in rows],
+            }
+        )
+    )
     t = preview.load_table(p)
     bins, series = preview.line_series(t, preview.choose_view(t))
     assert bins == [0, 3600]
@@ -178,8 +232,9 @@ def test_page_inlines_text_that_would_close_a_script_element(tmp_path: Path) -> 
     assert json.loads(body) == json.loads(p.read_bytes())
 
 
-def test_cli_preview_writes_png_and_html_beside_the_payload(demo_payloads: dict[str, Path],
-                                                           tmp_path: Path) -> None:
+def test_cli_preview_writes_png_and_html_beside_the_payload(
+    demo_payloads: dict[str, Path], tmp_path: Path
+) -> None:
     src = tmp_path / "town-flows.json"
     src.write_bytes(demo_payloads["town-flows"].read_bytes())
     res = CliRunner().invoke(main, ["preview", str(src), "--reader"])
@@ -188,18 +243,26 @@ def test_cli_preview_writes_png_and_html_beside_the_payload(demo_payloads: dict[
     assert (tmp_path / "town-flows.html").is_file()
     assert (tmp_path / "columns-reader.js").read_text() == preview.static_text("columns-reader.js")
     rows = json.loads(src.read_bytes())["rows"]
-    assert res.output == (f"{src}: bars, {rows:,} rows -> {tmp_path / 'town-flows.png'}, "
-                          f"{tmp_path / 'town-flows.html'}\n")
+    assert res.output == (
+        f"{src}: bars, {rows:,} rows -> {tmp_path / 'town-flows.png'}, "
+        f"{tmp_path / 'town-flows.html'}\n"
+    )
 
 
-@pytest.mark.parametrize("content, message", [
-    (b"{not json", "is not valid JSON"),
-    (b'{"format": "other"}', "is not a payload preview can draw"),
-    (b'{"format": "reduce.columns/1", "rows": 2, "columns": {"a": [1]}}',
-     "column 'a' does not have 2 entries"),
-])
-def test_cli_preview_bad_payload_is_one_line_exit_2(tmp_path: Path, content: bytes,
-                                                    message: str) -> None:
+@pytest.mark.parametrize(
+    "content, message",
+    [
+        (b"{not json", "is not valid JSON"),
+        (b'{"format": "other"}', "is not a payload preview can draw"),
+        (
+            b'{"format": "reduce.columns/1", "rows": 2, "columns": {"a": [1]}}',
+            "column 'a' does not have 2 entries",
+        ),
+    ],
+)
+def test_cli_preview_bad_payload_is_one_line_exit_2(
+    tmp_path: Path, content: bytes, message: str
+) -> None:
     p = tmp_path / "bad.json"
     p.write_bytes(content)
     res = CliRunner().invoke(main, ["preview", str(p), "--out", str(tmp_path / "o")])
@@ -216,10 +279,19 @@ def test_cli_preview_missing_file_is_exit_2(tmp_path: Path) -> None:
 
 
 def test_cli_measure_without_a_browser_says_how_to_install_it(
-        demo_payloads: dict[str, Path], tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    demo_payloads: dict[str, Path], tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     monkeypatch.setenv("REDUCE_CHROMIUM", str(tmp_path / "no-chromium"))
-    res = CliRunner().invoke(main, ["preview", str(demo_payloads["province-rates"]),
-                                    "--out", str(tmp_path / "o"), "--measure"])
+    res = CliRunner().invoke(
+        main,
+        [
+            "preview",
+            str(demo_payloads["province-rates"]),
+            "--out",
+            str(tmp_path / "o"),
+            "--measure",
+        ],
+    )
     assert res.exit_code == 2
     lines = res.output.strip().splitlines()
     assert len(lines) == 1 and "apt-get install -y chromium chromium-driver" in lines[0]
@@ -227,7 +299,8 @@ def test_cli_measure_without_a_browser_says_how_to_install_it(
 
 
 def test_ladder_page_shows_every_candidate_with_its_picture_and_marks_the_chosen(
-        case, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
+    case, tmp_path: Path
+) -> None:  # type: ignore[no-untyped-def]
     import base64
     import re
 
@@ -235,9 +308,13 @@ def test_ladder_page_shows_every_candidate_with_its_picture_and_marks_the_chosen
     from conftest import random_events
 
     events = random_events(np.random.default_rng(3), 3000)
-    recipe = case(events, source={"lat": "lat", "lon": "lon"},
-                  group={"hex": {"levels": [7, 6, 5]}}, measures={"n": "count"},
-                  budget={"max": "6KB", "on": "gzip"})
+    recipe = case(
+        events,
+        source={"lat": "lat", "lon": "lon"},
+        group={"hex": {"levels": [7, 6, 5]}},
+        measures={"n": "count"},
+        budget={"max": "6KB", "on": "gzip"},
+    )
     page = tmp_path / "ladder.html"
     args = ["ladder", str(recipe), "--no-cache", "-q", "--json", "--page", str(page)]
     res = CliRunner().invoke(main, args)
@@ -258,8 +335,11 @@ def test_ladder_page_shows_every_candidate_with_its_picture_and_marks_the_chosen
 
 def test_ladder_page_into_a_missing_folder_is_one_line_exit_2(case, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
     recipe = case({"kind": ["a", "b"]}, group={"category": {"column": "kind"}})
-    res = CliRunner().invoke(main, ["ladder", str(recipe), "--no-cache", "-q",
-                                    "--page", str(tmp_path / "nope" / "l.html")])
+    res = CliRunner().invoke(
+        main,
+        ["ladder", str(recipe), "--no-cache", "-q", "--page", str(tmp_path / "nope" / "l.html")],
+    )
     assert res.exit_code == 2
     assert res.output.strip().splitlines()[-1] == (
-        f"error: {tmp_path / 'nope'}: no such folder for --page; create it first")
+        f"error: {tmp_path / 'nope'}: no such folder for --page; create it first"
+    )

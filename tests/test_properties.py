@@ -25,23 +25,30 @@ import reduce
 from reduce import aggregate, prune
 from reduce.recipe import parse_time_bin
 
-SETTINGS = settings(max_examples=60, deadline=None,
-                    suppress_health_check=[HealthCheck.too_slow])
+SETTINGS = settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 
 REGIONS = ["r1", "r2", "r3"]
 KINDS = ["a", "b", "c", "d", "e", "f", "g"]
 
-row = st.tuples(st.sampled_from(REGIONS), st.sampled_from(KINDS),
-                st.one_of(st.none(), st.integers(-50, 500)),  # y
-                st.one_of(st.none(), st.integers(0, 12)))  # who
+row = st.tuples(
+    st.sampled_from(REGIONS),
+    st.sampled_from(KINDS),
+    st.one_of(st.none(), st.integers(-50, 500)),  # y
+    st.one_of(st.none(), st.integers(0, 12)),
+)  # who
 rows_st = st.lists(row, min_size=1, max_size=80)
 
 
 def _frame(rows: list[tuple[Any, ...]]) -> pl.DataFrame:
     region, kind, y, who = zip(*rows)
-    return pl.DataFrame({"region": list(region), "kind": list(kind),
-                         "y": pl.Series(list(y), dtype=pl.Int64),
-                         "who": pl.Series(list(who), dtype=pl.Int64)})
+    return pl.DataFrame(
+        {
+            "region": list(region),
+            "kind": list(kind),
+            "y": pl.Series(list(y), dtype=pl.Int64),
+            "who": pl.Series(list(who), dtype=pl.Int64),
+        }
+    )
 
 
 MEASURES = {"n": "count", "s": {"sum": "y"}, "d": {"distinct": "who"}, "hi": {"max": "y"}}
@@ -65,14 +72,16 @@ def _totals(final: pl.DataFrame, by: list[str]) -> dict[tuple[Any, ...], tuple[i
 @SETTINGS
 @given(rows=rows_st, k=st.integers(1, 5), within=st.sampled_from([["region"], []]))
 def test_top_k_with_remainder_conserves_each_groups_count_and_sum(
-        rows: list[tuple[Any, ...]], k: int, within: list[str]) -> None:
+    rows: list[tuple[Any, ...]], k: int, within: list[str]
+) -> None:
     with tempfile.TemporaryDirectory() as d:
-        path = write_case(Path(d), _frame(rows),
-                          group={"region": {"column": "region"},
-                                 "category": {"column": "kind"}},
-                          measures=MEASURES,
-                          prune={"top": {"k": [k], "by": "n", "within": within,
-                                         "rest": "rest"}})
+        path = write_case(
+            Path(d),
+            _frame(rows),
+            group={"region": {"column": "region"}, "category": {"column": "kind"}},
+            measures=MEASURES,
+            prune={"top": {"k": [k], "by": "n", "within": within, "rest": "rest"}},
+        )
         recipe = reduce.load_recipe(path)
         p = scan(recipe)
         before = aggregate.finalize(recipe, p)
@@ -99,8 +108,9 @@ def test_top_k_with_remainder_conserves_each_groups_count_and_sum(
         if not within:
             continue  # without `within`, each region keeps its own rest row
         (rest,) = rest_rows
-        folded_who = {w for reg, kind, _, w in rows
-                      if (reg,) == g and kind in folded and w is not None}
+        folded_who = {
+            w for reg, kind, _, w in rows if (reg,) == g and kind in folded and w is not None
+        }
         assert rest["d"] == len(folded_who)
 
 
@@ -112,13 +122,17 @@ def test_top_k_with_remainder_conserves_each_groups_count_and_sum(
 @SETTINGS
 @given(rows=rows_st, threshold=st.integers(1, 8), by=st.sampled_from([None, "d"]))
 def test_suppression_never_adds_rows_or_increases_counts(
-        rows: list[tuple[Any, ...]], threshold: int, by: str | None) -> None:
+    rows: list[tuple[Any, ...]], threshold: int, by: str | None
+) -> None:
     mc: Any = threshold if by is None else {"min": threshold, "by": by}
     with tempfile.TemporaryDirectory() as d:
-        path = write_case(Path(d), _frame(rows),
-                          group={"region": {"column": "region"},
-                                 "category": {"column": "kind"}},
-                          measures=MEASURES, prune={"min_count": mc})
+        path = write_case(
+            Path(d),
+            _frame(rows),
+            group={"region": {"column": "region"}, "category": {"column": "kind"}},
+            measures=MEASURES,
+            prune={"min_count": mc},
+        )
         recipe = reduce.load_recipe(path)
         p = scan(recipe)
         before = aggregate.finalize(recipe, p)
@@ -146,15 +160,19 @@ def test_suppression_never_adds_rows_or_increases_counts(
 @SETTINGS
 @given(rows=rows_st, threshold=st.integers(1, 8), k=st.integers(1, 4))
 def test_folding_suppression_never_adds_rows_and_keeps_non_rest_cells(
-        rows: list[tuple[Any, ...]], threshold: int, k: int) -> None:
+    rows: list[tuple[Any, ...]], threshold: int, k: int
+) -> None:
     with tempfile.TemporaryDirectory() as d:
-        path = write_case(Path(d), _frame(rows),
-                          group={"region": {"column": "region"},
-                                 "category": {"column": "kind"}},
-                          measures=MEASURES,
-                          prune={"top": {"k": [k], "by": "n", "within": ["region"],
-                                         "rest": "rest"},
-                                 "min_count": {"min": threshold, "fold": True}})
+        path = write_case(
+            Path(d),
+            _frame(rows),
+            group={"region": {"column": "region"}, "category": {"column": "kind"}},
+            measures=MEASURES,
+            prune={
+                "top": {"k": [k], "by": "n", "within": ["region"], "rest": "rest"},
+                "min_count": {"min": threshold, "fold": True},
+            },
+        )
         recipe = reduce.load_recipe(path)
         p = prune.top_k(recipe, scan(recipe), k)
         before = aggregate.finalize(recipe, p)
@@ -180,26 +198,47 @@ def test_folding_suppression_never_adds_rows_and_keeps_non_rest_cells(
 T0 = dt.datetime(2024, 3, 1, tzinfo=dt.UTC)
 
 # Valid, valid-at-the-edge (|lat| = 90, |lon| = 180 are valid), null, NaN and out of range.
-coord_lat = st.one_of(st.floats(-89.0, 89.0), st.sampled_from([90.0, -90.0]), st.none(),
-                      st.just(math.nan), st.sampled_from([90.5, -95.0, 1e9]))
-coord_lon = st.one_of(st.floats(-179.0, 179.0), st.sampled_from([180.0, -180.0]), st.none(),
-                      st.just(math.nan), st.sampled_from([180.01, -200.0, math.inf]))
+coord_lat = st.one_of(
+    st.floats(-89.0, 89.0),
+    st.sampled_from([90.0, -90.0]),
+    st.none(),
+    st.just(math.nan),
+    st.sampled_from([90.5, -95.0, 1e9]),
+)
+coord_lon = st.one_of(
+    st.floats(-179.0, 179.0),
+    st.sampled_from([180.0, -180.0]),
+    st.none(),
+    st.just(math.nan),
+    st.sampled_from([180.01, -200.0, math.inf]),
+)
 event = st.tuples(
-    coord_lat, coord_lon,
+    coord_lat,
+    coord_lon,
     st.one_of(st.none(), st.integers(0, 4 * 86400 - 1)),  # seconds after T0, or null time
     st.one_of(st.none(), st.sampled_from(KINDS[:4])),  # kind (null: invalid key)
     st.one_of(st.none(), st.integers(-10, 40)),  # y
 )
-filter_st = st.lists(st.one_of(
-    st.builds(lambda v: {"column": "kind", "in": sorted(v)},
-              st.sets(st.sampled_from(KINDS[:4]), min_size=1)),
-    st.builds(lambda v: {"column": "kind", "not_in": sorted(v)},
-              st.sets(st.sampled_from(KINDS[:4]), min_size=1)),
-    st.builds(lambda lo, w: {"column": "y", "min": lo, "max": lo + w},
-              st.integers(-10, 40), st.integers(0, 30)),
-    st.builds(lambda lo: {"column": "y", "min": lo}, st.integers(-10, 40)),
-    st.builds(lambda b: {"column": "y", "null": b}, st.booleans()),
-), max_size=3)
+filter_st = st.lists(
+    st.one_of(
+        st.builds(
+            lambda v: {"column": "kind", "in": sorted(v)},
+            st.sets(st.sampled_from(KINDS[:4]), min_size=1),
+        ),
+        st.builds(
+            lambda v: {"column": "kind", "not_in": sorted(v)},
+            st.sets(st.sampled_from(KINDS[:4]), min_size=1),
+        ),
+        st.builds(
+            lambda lo, w: {"column": "y", "min": lo, "max": lo + w},
+            st.integers(-10, 40),
+            st.integers(0, 30),
+        ),
+        st.builds(lambda lo: {"column": "y", "min": lo}, st.integers(-10, 40)),
+        st.builds(lambda b: {"column": "y", "null": b}, st.booleans()),
+    ),
+    max_size=3,
+)
 
 
 def _passes(f: dict[str, Any], kind: str | None, y: int | None) -> bool:
@@ -220,26 +259,45 @@ def _valid(x: float | None, limit: float) -> bool:
     return x is not None and not math.isnan(x) and abs(x) <= limit
 
 
-EDGE_CASES = [(90.0, 180.0, 0, "a", 1), (-90.0, -180.0, 3600, "b", None),
-              (90.5, 0.0, 0, "a", 1), (0.0, -200.0, 0, "a", 1), (None, 1.0, 0, "a", 1),
-              (math.nan, 1.0, 0, "a", 1), (1.0, math.inf, 0, "a", 1), (1.0, 1.0, None, "a", 1),
-              (1.0, 1.0, 0, None, 1), (1.0, 1.0, 0, "a", None), (1.0, 1.0, 60, "a", 7)]
+EDGE_CASES = [
+    (90.0, 180.0, 0, "a", 1),
+    (-90.0, -180.0, 3600, "b", None),
+    (90.5, 0.0, 0, "a", 1),
+    (0.0, -200.0, 0, "a", 1),
+    (None, 1.0, 0, "a", 1),
+    (math.nan, 1.0, 0, "a", 1),
+    (1.0, math.inf, 0, "a", 1),
+    (1.0, 1.0, None, "a", 1),
+    (1.0, 1.0, 0, None, 1),
+    (1.0, 1.0, 0, "a", None),
+    (1.0, 1.0, 60, "a", 7),
+]
 
 
 @SETTINGS
-@given(events=st.lists(event, min_size=3, max_size=60), filters=filter_st,
-       threshold=st.one_of(st.none(), st.integers(1, 4)))
+@given(
+    events=st.lists(event, min_size=3, max_size=60),
+    filters=filter_st,
+    threshold=st.one_of(st.none(), st.integers(1, 4)),
+)
 @example(events=EDGE_CASES, filters=[], threshold=None)
 @example(events=EDGE_CASES, filters=[{"column": "y", "min": 0}], threshold=2)
 def test_accounting_identity_with_random_filters_and_invalid_rows(
-        events: list[tuple[Any, ...]], filters: list[dict[str, Any]],
-        threshold: int | None) -> None:
+    events: list[tuple[Any, ...]], filters: list[dict[str, Any]], threshold: int | None
+) -> None:
     lat, lon, secs, kind, y = zip(*events)
-    df = pl.DataFrame({
-        "lat": pl.Series(lat, dtype=pl.Float64), "lon": pl.Series(lon, dtype=pl.Float64),
-        "t": pl.Series([None if s is None else T0 + dt.timedelta(seconds=s) for s in secs],
-                       dtype=pl.Datetime("us", "UTC")),
-        "kind": pl.Series(kind, dtype=pl.String), "y": pl.Series(y, dtype=pl.Int64)})
+    df = pl.DataFrame(
+        {
+            "lat": pl.Series(lat, dtype=pl.Float64),
+            "lon": pl.Series(lon, dtype=pl.Float64),
+            "t": pl.Series(
+                [None if s is None else T0 + dt.timedelta(seconds=s) for s in secs],
+                dtype=pl.Datetime("us", "UTC"),
+            ),
+            "kind": pl.Series(kind, dtype=pl.String),
+            "y": pl.Series(y, dtype=pl.Int64),
+        }
+    )
     # Independent computation over the raw rows.
     filtered = invalid = 0
     groups: Counter[tuple[Any, ...]] = Counter()
@@ -251,13 +309,18 @@ def test_accounting_identity_with_random_filters_and_invalid_rows(
         else:
             groups[(h3.latlng_to_cell(la, lo, 4), s // 86400, k)] += 1
     with tempfile.TemporaryDirectory() as d:
-        path = write_case(Path(d), df, source={"time": "t", "lat": "lat", "lon": "lon",
-                                               "filter": filters},
-                          group={"hex": {"resolution": 4},
-                                 "time": {"bin": "1d", "zone": "UTC"},
-                                 "category": {"column": "kind"}},
-                          measures={"n": "count", "s": {"sum": "y"}},
-                          prune=None if threshold is None else {"min_count": threshold})
+        path = write_case(
+            Path(d),
+            df,
+            source={"time": "t", "lat": "lat", "lon": "lon", "filter": filters},
+            group={
+                "hex": {"resolution": 4},
+                "time": {"bin": "1d", "zone": "UTC"},
+                "category": {"column": "kind"},
+            },
+            measures={"n": "count", "s": {"sum": "y"}},
+            prune=None if threshold is None else {"min_count": threshold},
+        )
         try:
             payload = fit_payload(path)
         except reduce.SourceError as e:
@@ -269,52 +332,81 @@ def test_accounting_identity_with_random_filters_and_invalid_rows(
     acc = payload["accounting"]
     suppressed = sum(n for n in groups.values() if threshold is not None and n < threshold)
     represented = sum(groups.values()) - suppressed
-    assert acc == {"input_rows": len(events), "filtered_rows": filtered,
-                   "invalid_rows": invalid, "suppressed_rows": suppressed,
-                   "represented_rows": represented}
-    assert acc["input_rows"] == (acc["filtered_rows"] + acc["invalid_rows"]
-                                 + acc["suppressed_rows"] + acc["represented_rows"])
+    assert acc == {
+        "input_rows": len(events),
+        "filtered_rows": filtered,
+        "invalid_rows": invalid,
+        "suppressed_rows": suppressed,
+        "represented_rows": represented,
+    }
+    assert acc["input_rows"] == (
+        acc["filtered_rows"]
+        + acc["invalid_rows"]
+        + acc["suppressed_rows"]
+        + acc["represented_rows"]
+    )
     # The count measure sums to the represented rows.
     assert sum(payload["columns"]["n"]) == acc["represented_rows"]
-    assert payload["rows"] == sum(1 for n in groups.values()
-                                  if threshold is None or n >= threshold)
+    assert payload["rows"] == sum(1 for n in groups.values() if threshold is None or n >= threshold)
 
 
 # --------------------------------------------------------------------------------------------
 # Distinct counts after roll-up
 # --------------------------------------------------------------------------------------------
 
-visit = st.tuples(st.integers(0, 3 * 86400 - 1), st.sampled_from(REGIONS),
-                  st.one_of(st.none(), st.integers(0, 15)),
-                  st.floats(10.0, 10.3), st.floats(20.0, 20.3))
+visit = st.tuples(
+    st.integers(0, 3 * 86400 - 1),
+    st.sampled_from(REGIONS),
+    st.one_of(st.none(), st.integers(0, 15)),
+    st.floats(10.0, 10.3),
+    st.floats(20.0, 20.3),
+)
 
 
 @SETTINGS
 @given(visits=st.lists(visit, min_size=1, max_size=80))
 def test_distinct_after_rollup_equals_direct_distinct_not_sum_of_children(
-        visits: list[tuple[Any, ...]]) -> None:
+    visits: list[tuple[Any, ...]],
+) -> None:
     secs, region, who, lat, lon = zip(*visits)
-    df = pl.DataFrame({
-        "t": pl.Series([T0 + dt.timedelta(seconds=s) for s in secs],
-                       dtype=pl.Datetime("us", "UTC")),
-        "region": list(region), "who": pl.Series(who, dtype=pl.Int64),
-        "lat": list(lat), "lon": list(lon)})
+    df = pl.DataFrame(
+        {
+            "t": pl.Series(
+                [T0 + dt.timedelta(seconds=s) for s in secs], dtype=pl.Datetime("us", "UTC")
+            ),
+            "region": list(region),
+            "who": pl.Series(who, dtype=pl.Int64),
+            "lat": list(lat),
+            "lon": list(lon),
+        }
+    )
     with tempfile.TemporaryDirectory() as d:
-        path = write_case(Path(d), df, source={"time": "t", "lat": "lat", "lon": "lon"},
-                          group={"hex": {"levels": [9, 6]},
-                                 "time": {"levels": ["1h", "1d"], "zone": "UTC"},
-                                 "region": {"column": "region"}},
-                          measures={"n": "count", "d": {"distinct": "who"}})
+        path = write_case(
+            Path(d),
+            df,
+            source={"time": "t", "lat": "lat", "lon": "lon"},
+            group={
+                "hex": {"levels": [9, 6]},
+                "time": {"levels": ["1h", "1d"], "zone": "UTC"},
+                "region": {"column": "region"},
+            },
+            measures={"n": "count", "d": {"distinct": "who"}},
+        )
         recipe = reduce.load_recipe(path)
         p = scan(recipe)
     up = aggregate.rollup(recipe, p, hex_res=6, time_bin=parse_time_bin("1d"))
-    got = {(int(r["time"].timestamp()), h3.int_to_str(r["hex"]), r["region"]): r["d"]
-           for r in aggregate.finalize(recipe, up).to_dicts()}
+    got = {
+        (int(r["time"].timestamp()), h3.int_to_str(r["hex"]), r["region"]): r["d"]
+        for r in aggregate.finalize(recipe, up).to_dicts()
+    }
     # Direct: distinct non-null who per (UTC day, res-6 cell indexed directly, region).
     direct: dict[tuple[Any, ...], set[int]] = defaultdict(set)
     for s, reg, w, la, lo in visits:
-        key = (int((T0 + dt.timedelta(seconds=s - s % 86400)).timestamp()),
-               h3.latlng_to_cell(la, lo, 6), reg)
+        key = (
+            int((T0 + dt.timedelta(seconds=s - s % 86400)).timestamp()),
+            h3.latlng_to_cell(la, lo, 6),
+            reg,
+        )
         direct[key]  # every group exists, even with only null values
         if w is not None:
             direct[key].add(w)
@@ -324,5 +416,6 @@ def test_distinct_after_rollup_equals_direct_distinct_not_sum_of_children(
     by_day: dict[int, set[int]] = defaultdict(set)
     for (day, _, _), v in direct.items():
         by_day[day] |= v
-    assert {int(r["time"].timestamp()): r["d"] for r in merged.to_dicts()} == \
-        {k: len(v) for k, v in by_day.items()}
+    assert {int(r["time"].timestamp()): r["d"] for r in merged.to_dicts()} == {
+        k: len(v) for k, v in by_day.items()
+    }

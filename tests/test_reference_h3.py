@@ -47,11 +47,13 @@ def _points(seed: int = 20240601) -> pl.DataFrame:
     edge_lon = np.array([0.0, 0.0, 180.0, -180.0, 180.0, -180.0, 179.9999999, -179.9999999])
     all_lat = np.concatenate([lat, am_lat, np_lat, edge_lat])
     all_lon = np.concatenate([lon, am_lon, np_lon, edge_lon])
-    return pl.DataFrame({
-        "pid": [f"p{i:05d}" for i in range(len(all_lat))],
-        "lat": all_lat,
-        "lon": all_lon,
-    })
+    return pl.DataFrame(
+        {
+            "pid": [f"p{i:05d}" for i in range(len(all_lat))],
+            "lat": all_lat,
+            "lon": all_lon,
+        }
+    )
 
 
 @pytest.fixture(scope="module")
@@ -65,30 +67,36 @@ def points() -> pl.DataFrame:
 
 def _hex_recipe(folder: Path, points: pl.DataFrame, levels: list[int]) -> Path:
     # One category per point, so every row of the result names the cell of one point.
-    return write_case(folder, points, source={"lat": "lat", "lon": "lon"},
-                      group={"hex": {"levels": levels}, "category": {"column": "pid"}},
-                      measures={"n": "count"})
+    return write_case(
+        folder,
+        points,
+        source={"lat": "lat", "lon": "lon"},
+        group={"hex": {"levels": levels}, "category": {"column": "pid"}},
+        measures={"n": "count"},
+    )
 
 
 @pytest.mark.parametrize("res", [0, 5, 9, 15])
-def test_payload_hex_cells_equal_h3_latlng_to_cell(tmp_path: Path, points: pl.DataFrame,
-                                                   res: int) -> None:
+def test_payload_hex_cells_equal_h3_latlng_to_cell(
+    tmp_path: Path, points: pl.DataFrame, res: int
+) -> None:
     # Reference: h3.latlng_to_cell (H3 C library) on every point, in the payload's string form.
     recipe = _hex_recipe(tmp_path, points, [res])
     payload = fit_payload(recipe)
-    got = dict(zip(*payload_frame(payload).select("pid", "hex").to_dict(as_series=False)
-                   .values()))
-    expected = {pid: h3.latlng_to_cell(la, lo, res)
-                for pid, la, lo in points.select("pid", "lat", "lon").iter_rows()}
+    got = dict(zip(*payload_frame(payload).select("pid", "hex").to_dict(as_series=False).values()))
+    expected = {
+        pid: h3.latlng_to_cell(la, lo, res)
+        for pid, la, lo in points.select("pid", "lat", "lon").iter_rows()
+    }
     assert payload["accounting"]["invalid_rows"] == 0
     assert len(got) == len(expected)
     wrong = {k: (got.get(k), v) for k, v in expected.items() if got.get(k) != v}
     assert not wrong, f"{len(wrong)} points differ, e.g. {list(wrong.items())[:3]}"
 
 
-def test_scan_partial_cells_equal_h3_on_antimeridian_and_pole_points(tmp_path: Path,
-                                                                     points: pl.DataFrame
-                                                                     ) -> None:
+def test_scan_partial_cells_equal_h3_on_antimeridian_and_pole_points(
+    tmp_path: Path, points: pl.DataFrame
+) -> None:
     # Reference: h3.latlng_to_cell, integer form (h3.str_to_int), on the partial's UInt64 keys.
     hard = points.filter((pl.col("lon").abs() >= 179.99) | (pl.col("lat").abs() > 89.9))
     recipe = _hex_recipe(tmp_path, hard, [15])
@@ -113,8 +121,13 @@ def test_pipeline_finds_all_122_resolution0_cells(tmp_path: Path) -> None:
     cells = sorted(h3.get_res0_cells())
     centers = [h3.cell_to_latlng(c) for c in cells]
     pts = pl.DataFrame({"lat": [c[0] for c in centers], "lon": [c[1] for c in centers]})
-    recipe = write_case(tmp_path, pts, source={"lat": "lat", "lon": "lon"},
-                        group={"hex": {"resolution": 0}}, measures={"n": "count"})
+    recipe = write_case(
+        tmp_path,
+        pts,
+        source={"lat": "lat", "lon": "lon"},
+        group={"hex": {"resolution": 0}},
+        measures={"n": "count"},
+    )
     payload = fit_payload(recipe)
     assert payload["rows"] == 122
     assert sorted(payload["columns"]["hex"]) == cells
@@ -122,15 +135,21 @@ def test_pipeline_finds_all_122_resolution0_cells(tmp_path: Path) -> None:
 
 
 def test_rollup_of_all_resolution1_cells_gives_122_parents_with_7_or_6_children(
-        tmp_path: Path) -> None:
+    tmp_path: Path,
+) -> None:
     # Source: H3 docs table: 2 + 120·7 = 842 cells at resolution 1, 122 at resolution 0;
     # hexagons have 7 children, the 12 pentagons 6 (12·6 + 110·7 = 842).
     res1 = sorted(c for base in h3.get_res0_cells() for c in h3.cell_to_children(base, 1))
     assert len(res1) == 2 + 120 * 7
     centers = [h3.cell_to_latlng(c) for c in res1]
     pts = pl.DataFrame({"lat": [c[0] for c in centers], "lon": [c[1] for c in centers]})
-    recipe_path = write_case(tmp_path, pts, source={"lat": "lat", "lon": "lon"},
-                             group={"hex": {"levels": [1, 0]}}, measures={"n": "count"})
+    recipe_path = write_case(
+        tmp_path,
+        pts,
+        source={"lat": "lat", "lon": "lon"},
+        group={"hex": {"levels": [1, 0]}},
+        measures={"n": "count"},
+    )
     recipe = reduce.load_recipe(recipe_path)
     p = scan(recipe)
     assert p.table.height == 842
@@ -144,7 +163,8 @@ def test_rollup_of_all_resolution1_cells_gives_122_parents_with_7_or_6_children(
 
 
 def test_rolled_up_cells_equal_h3_latlng_to_cell_at_that_resolution(
-        tmp_path: Path, points: pl.DataFrame) -> None:
+    tmp_path: Path, points: pl.DataFrame
+) -> None:
     # Reference: h3.latlng_to_cell at each coarser resolution. A roll-up puts each point in the
     # cell that contains it, not in the H3 parent of its finest cell (the two differ near cell
     # edges, because H3 children are not exactly contained in their parent: H3 docs on
@@ -161,29 +181,37 @@ def test_rolled_up_cells_equal_h3_latlng_to_cell_at_that_resolution(
         expected = {pid: h3.latlng_to_cell(la, lo, res) for pid, la, lo in rows}
         assert got == expected, f"resolution {res}"
         assert up.hex_res == res
-        parents_differ += sum(h3.cell_to_parent(h3.latlng_to_cell(la, lo, 15), res)
-                              != expected[pid] for pid, la, lo in rows)
+        parents_differ += sum(
+            h3.cell_to_parent(h3.latlng_to_cell(la, lo, 15), res) != expected[pid]
+            for pid, la, lo in rows
+        )
     assert parents_differ > 0  # parents would have been wrong here: the check has teeth
 
 
-def test_rolled_up_counts_per_cell_equal_direct_h3_counts(tmp_path: Path,
-                                                          points: pl.DataFrame) -> None:
+def test_rolled_up_counts_per_cell_equal_direct_h3_counts(
+    tmp_path: Path, points: pl.DataFrame
+) -> None:
     # Reference: Counter of h3.latlng_to_cell(p, r) over the points.
-    recipe_path = write_case(tmp_path, points, source={"lat": "lat", "lon": "lon"},
-                             group={"hex": {"levels": [9, 6, 3]}}, measures={"n": "count"})
+    recipe_path = write_case(
+        tmp_path,
+        points,
+        source={"lat": "lat", "lon": "lon"},
+        group={"hex": {"levels": [9, 6, 3]}},
+        measures={"n": "count"},
+    )
     recipe = reduce.load_recipe(recipe_path)
     p = scan(recipe)
     pts = points.select("lat", "lon").rows()
     for res in (6, 3):
-        final = aggregate.finalize(recipe, aggregate.rollup(recipe, p, hex_res=res,
-                                                            time_bin=None))
+        final = aggregate.finalize(recipe, aggregate.rollup(recipe, p, hex_res=res, time_bin=None))
         got = {h3.int_to_str(c): n for c, n in final.select("hex", "n").iter_rows()}
         assert got == dict(Counter(h3.latlng_to_cell(la, lo, res) for la, lo in pts))
 
 
 @pytest.mark.parametrize("res", [0, 7, 15])
 def test_payload_hex_strings_are_15_lowercase_hex_chars_equal_to_h3_int_to_str(
-        tmp_path: Path, points: pl.DataFrame, res: int) -> None:
+    tmp_path: Path, points: pl.DataFrame, res: int
+) -> None:
     # DESIGN contract + reference h3.int_to_str of the partial's integer cell.
     sample = points.head(2000)
     recipe_path = _hex_recipe(tmp_path, sample, [res])

@@ -62,9 +62,13 @@ def _bins(payload: dict[str, Any]) -> dict[int, int]:
 
 
 def _recipe(folder: Path, events: pl.DataFrame, levels: list[str], zone: str) -> Path:
-    return write_case(folder, events, source={"time": "t"},
-                      group={"time": {"levels": levels, "zone": zone}},
-                      measures={"n": "count"})
+    return write_case(
+        folder,
+        events,
+        source={"time": "t"},
+        group={"time": {"levels": levels, "zone": zone}},
+        measures={"n": "count"},
+    )
 
 
 def ref_bin_start(ts: dt.datetime, unit: str, zone: str) -> int:
@@ -161,19 +165,31 @@ def test_new_york_month_bins_start_on_the_first_at_local_midnight(tmp_path: Path
     assert sorted(bins) == [int(_local(2024, m, 1).timestamp()) for m in range(1, 13)]
     # Hours per month on the local clock: March loses one, November gains one (zoneinfo).
     # (timestamps, since subtracting two datetimes of one tzinfo ignores the offsets)
-    hours = {m: (_local(2024 + m // 12, m % 12 + 1, 1).timestamp()
-                 - _local(2024, m, 1).timestamp()) // H for m in range(1, 13)}
+    hours = {
+        m: (_local(2024 + m // 12, m % 12 + 1, 1).timestamp() - _local(2024, m, 1).timestamp()) // H
+        for m in range(1, 13)
+    }
     assert hours[3] == 31 * 24 - 1 and hours[11] == 30 * 24 + 1
-    assert [bins[int(_local(2024, m, 1).timestamp())] for m in range(1, 13)] == \
-        [hours[m] for m in range(1, 13)]
+    assert [bins[int(_local(2024, m, 1).timestamp())] for m in range(1, 13)] == [
+        hours[m] for m in range(1, 13)
+    ]
 
 
 def test_payload_time_values_are_integer_utc_epoch_seconds(tmp_path: Path) -> None:
     # DESIGN contract; reference: datetime(..., tzinfo=ZoneInfo(zone)).timestamp().
-    events = pl.DataFrame({"t": pl.Series([dt.datetime(2024, 7, 4, 15, 42, tzinfo=dt.UTC)],
-                                          dtype=pl.Datetime("us", "UTC"))})
-    for zone, local_day in ((NY, (2024, 7, 4)), ("Asia/Tokyo", (2024, 7, 5)),
-                            ("Pacific/Kiritimati", (2024, 7, 5)), ("UTC", (2024, 7, 4))):
+    events = pl.DataFrame(
+        {
+            "t": pl.Series(
+                [dt.datetime(2024, 7, 4, 15, 42, tzinfo=dt.UTC)], dtype=pl.Datetime("us", "UTC")
+            )
+        }
+    )
+    for zone, local_day in (
+        (NY, (2024, 7, 4)),
+        ("Asia/Tokyo", (2024, 7, 5)),
+        ("Pacific/Kiritimati", (2024, 7, 5)),
+        ("UTC", (2024, 7, 4)),
+    ):
         folder = tmp_path / zone.replace("/", "_")
         payload = _payload(_recipe(folder, events, ["1d"], zone), "1d")
         (value,) = payload["columns"]["time"]
@@ -201,8 +217,9 @@ def test_day_bin_is_one_bin_when_local_midnight_repeats(tmp_path: Path, path: st
     levels = ["1d"] if path == "scan" else ["1h", "1d"]
     bins = _bins(_payload(_recipe(tmp_path, events, levels, zone), "1d"))
     shown = {str(dt.datetime.fromtimestamp(s, ZoneInfo(zone))): n for s, n in sorted(bins.items())}
-    assert sorted(bins) == [int(_local(2024, 11, d, zone=zone).timestamp()) for d in (2, 3, 4)], \
+    assert sorted(bins) == [int(_local(2024, 11, d, zone=zone).timestamp()) for d in (2, 3, 4)], (
         f"day bins (local start: events): {shown}"
+    )
     assert bins[int(first.timestamp())] == 50  # 25 hours of half-hourly events
 
 
@@ -224,34 +241,58 @@ def test_day_bin_starts_at_first_instant_when_local_midnight_is_skipped(tmp_path
 # Every event of a year, several zones, every calendar unit: bins equal the zoneinfo reference
 # --------------------------------------------------------------------------------------------
 
-ZONES = ["UTC", NY, "Europe/London", "America/Santiago", "Australia/Lord_Howe",
-         "Asia/Kathmandu", "Asia/Kolkata"]
+ZONES = [
+    "UTC",
+    NY,
+    "Europe/London",
+    "America/Santiago",
+    "Australia/Lord_Howe",
+    "Asia/Kathmandu",
+    "Asia/Kolkata",
+]
 
 
 @pytest.fixture(scope="module")
 def year_events() -> pl.DataFrame:
     # Every 30 minutes through 2024 (UTC), with an offset of 7 minutes so events are not on
     # bin edges, plus events exactly on the hour.
-    a = _events(dt.datetime(2023, 12, 30, 0, 7, tzinfo=dt.UTC),
-                dt.datetime(2025, 1, 2, tzinfo=dt.UTC), dt.timedelta(minutes=30))
-    b = _events(dt.datetime(2023, 12, 30, tzinfo=dt.UTC),
-                dt.datetime(2025, 1, 2, tzinfo=dt.UTC), dt.timedelta(hours=3))
+    a = _events(
+        dt.datetime(2023, 12, 30, 0, 7, tzinfo=dt.UTC),
+        dt.datetime(2025, 1, 2, tzinfo=dt.UTC),
+        dt.timedelta(minutes=30),
+    )
+    b = _events(
+        dt.datetime(2023, 12, 30, tzinfo=dt.UTC),
+        dt.datetime(2025, 1, 2, tzinfo=dt.UTC),
+        dt.timedelta(hours=3),
+    )
     return pl.concat([a, b])
 
 
 @pytest.mark.parametrize("zone", ZONES)
-@pytest.mark.parametrize("unit,levels", [("1h", ["1h"]), ("1d", ["1h", "1d"]),
-                                         ("1w", ["1h", "1d", "1w"]),
-                                         ("1mo", ["1h", "1d", "1mo"])])
-def test_bin_counts_equal_zoneinfo_reference(tmp_path: Path, year_events: pl.DataFrame,
-                                             zone: str, unit: str, levels: list[str]) -> None:
+@pytest.mark.parametrize(
+    "unit,levels",
+    [
+        ("1h", ["1h"]),
+        ("1d", ["1h", "1d"]),
+        ("1w", ["1h", "1d", "1w"]),
+        ("1mo", ["1h", "1d", "1mo"]),
+    ],
+)
+def test_bin_counts_equal_zoneinfo_reference(
+    tmp_path: Path, year_events: pl.DataFrame, zone: str, unit: str, levels: list[str]
+) -> None:
     expected = Counter(ref_bin_start(t, unit, zone) for t in year_events["t"].to_list())
     got = _bins(_payload(_recipe(tmp_path, year_events, levels, zone), unit))
-    diff = {k: (got.get(k), expected.get(k)) for k in set(got) | set(expected)
-            if got.get(k) != expected.get(k)}
+    diff = {
+        k: (got.get(k), expected.get(k))
+        for k in set(got) | set(expected)
+        if got.get(k) != expected.get(k)
+    }
     assert not diff, f"{len(diff)} bins differ, e.g. " + ", ".join(
         f"{dt.datetime.fromtimestamp(k, ZoneInfo(zone))}: got {g}, expected {e}"
-        for k, (g, e) in sorted(diff.items())[:4])
+        for k, (g, e) in sorted(diff.items())[:4]
+    )
 
 
 # --------------------------------------------------------------------------------------------
@@ -261,27 +302,43 @@ def test_bin_counts_equal_zoneinfo_reference(tmp_path: Path, year_events: pl.Dat
 # (zone, local date of a 2024 DST change), read from zoneinfo. Lord Howe shifts by 30
 # minutes; Chatham (UTC+12:45 / +13:45) changes at 02:45 standard time, so on 2024-09-29 the
 # local hour 03 exists only from 03:45 to 04:00.
-DST_DAYS = [(NY, (2024, 3, 10)), (NY, (2024, 11, 3)), ("Europe/London", (2024, 3, 31)),
-            ("Europe/London", (2024, 10, 27)), ("Australia/Lord_Howe", (2024, 4, 7)),
-            ("Australia/Lord_Howe", (2024, 10, 6)), ("Pacific/Chatham", (2024, 4, 7)),
-            ("Pacific/Chatham", (2024, 9, 29)), ("America/Havana", (2024, 3, 10)),
-            ("America/Havana", (2024, 11, 3))]
+DST_DAYS = [
+    (NY, (2024, 3, 10)),
+    (NY, (2024, 11, 3)),
+    ("Europe/London", (2024, 3, 31)),
+    ("Europe/London", (2024, 10, 27)),
+    ("Australia/Lord_Howe", (2024, 4, 7)),
+    ("Australia/Lord_Howe", (2024, 10, 6)),
+    ("Pacific/Chatham", (2024, 4, 7)),
+    ("Pacific/Chatham", (2024, 9, 29)),
+    ("America/Havana", (2024, 3, 10)),
+    ("America/Havana", (2024, 11, 3)),
+]
 
 
 @pytest.mark.parametrize("zone,day", DST_DAYS, ids=[f"{z}-{d[1]}-{d[2]}" for z, d in DST_DAYS])
-def test_every_event_lies_inside_its_hour_bin_on_dst_days(tmp_path: Path, zone: str,
-                                                          day: tuple[int, int, int]) -> None:
+def test_every_event_lies_inside_its_hour_bin_on_dst_days(
+    tmp_path: Path, zone: str, day: tuple[int, int, int]
+) -> None:
     # A bin holds events of one local wall-clock hour: its start is at or before each of its
     # events and on the same local date and hour. (Where part of an hour repeats, e.g. Lord
     # Howe's 30-minute change, a bin can hold more than 60 minutes of events.)
     z = ZoneInfo(zone)
     start = dt.datetime(*day, tzinfo=z).astimezone(dt.UTC) - dt.timedelta(hours=2)
     times = [start + dt.timedelta(minutes=5 * i) for i in range(12 * 28)]
-    events = pl.DataFrame({"t": pl.Series(times, dtype=pl.Datetime("us", "UTC")),
-                           "pid": [f"e{i:04d}" for i in range(len(times))]})
-    path = write_case(tmp_path, events, source={"time": "t"},
-                      group={"time": {"bin": "1h", "zone": zone}, "category": {"column": "pid"}},
-                      measures={"n": "count"})
+    events = pl.DataFrame(
+        {
+            "t": pl.Series(times, dtype=pl.Datetime("us", "UTC")),
+            "pid": [f"e{i:04d}" for i in range(len(times))],
+        }
+    )
+    path = write_case(
+        tmp_path,
+        events,
+        source={"time": "t"},
+        group={"time": {"bin": "1h", "zone": zone}, "category": {"column": "pid"}},
+        measures={"n": "count"},
+    )
     cols = _payload(path, "1h")["columns"]
     pids = cols["pid"]
     assert len(pids) == len(times)
@@ -289,7 +346,6 @@ def test_every_event_lies_inside_its_hour_bin_on_dst_days(tmp_path: Path, zone: 
     for s, pid in zip(cols["time"], pids):
         ev = times[int(pid[1:])]
         loc_s, loc_e = dt.datetime.fromtimestamp(s, z), ev.astimezone(z)
-        if not (s <= ev.timestamp() and (loc_s.date(), loc_s.hour)
-                == (loc_e.date(), loc_e.hour)):
+        if not (s <= ev.timestamp() and (loc_s.date(), loc_s.hour) == (loc_e.date(), loc_e.hour)):
             bad.append(f"event {loc_e} in bin {loc_s}")
     assert not bad, f"{len(bad)} events outside their bin, e.g. {bad[:3]}"

@@ -21,13 +21,19 @@ from reduce.budget import all_levels
 def _case(tmp: Path) -> Path:
     rng = np.random.default_rng(3)
     events = random_events(rng, 6000, span_days=40, lat=(10.0, 10.4), lon=(20.0, 20.4))
-    return write_case(tmp, events, source={"time": "t", "lat": "lat", "lon": "lon"},
-                      group={"hex": {"levels": [9, 8, 7]},
-                             "time": {"levels": ["6h", "1d", "1w"], "zone": "UTC"},
-                             "category": {"column": "kind"}},
-                      measures={"n": "count", "sx": {"sum": "x"}},
-                      prune={"top": {"k": [4, 2], "by": "n"}},
-                      budget={"max": "40KB", "on": "gzip", "order": ["top", "time", "hex"]})
+    return write_case(
+        tmp,
+        events,
+        source={"time": "t", "lat": "lat", "lon": "lon"},
+        group={
+            "hex": {"levels": [9, 8, 7]},
+            "time": {"levels": ["6h", "1d", "1w"], "zone": "UTC"},
+            "category": {"column": "kind"},
+        },
+        measures={"n": "count", "sx": {"sum": "x"}},
+        prune={"top": {"k": [4, 2], "by": "n"}},
+        budget={"max": "40KB", "on": "gzip", "order": ["top", "time", "hex"]},
+    )
 
 
 def _no_building(monkeypatch: pytest.MonkeyPatch) -> None:
@@ -41,8 +47,9 @@ def _no_building(monkeypatch: pytest.MonkeyPatch) -> None:
 
 
 @pytest.mark.parametrize("budget", ["24KB", "40KB", "120KB", "1MB"])
-def test_refit_at_another_budget_publishes_the_bytes_of_a_cold_run(tmp_path: Path,
-                                                                   budget: str) -> None:
+def test_refit_at_another_budget_publishes_the_bytes_of_a_cold_run(
+    tmp_path: Path, budget: str
+) -> None:
     path = _case(tmp_path)
     reduce.run(path, out_dir=tmp_path / "first")  # fills the cache and the store
     warm = reduce.run(path, out_dir=tmp_path / "warm", budget=budget)
@@ -53,14 +60,17 @@ def test_refit_at_another_budget_publishes_the_bytes_of_a_cold_run(tmp_path: Pat
 
 
 def test_after_every_level_was_measured_a_refit_builds_and_measures_nothing(
-        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     path = _case(tmp_path)
     recipe = reduce.load_recipe(path)
     reduce.ladder(path, every_level=True)  # every level measured exactly, and kept
     first = reduce.run(path, out_dir=tmp_path / "a", budget="25KB")
     assert first.path is not None
-    want = {b: reduce.run(path, out_dir=tmp_path / f"cold-{b}", budget=b, use_cache=False)
-            for b in ("23KB", "60KB")}
+    want = {
+        b: reduce.run(path, out_dir=tmp_path / f"cold-{b}", budget=b, use_cache=False)
+        for b in ("23KB", "60KB")
+    }
     _no_building(monkeypatch)
     for b, cold in want.items():
         warm = reduce.run(path, out_dir=tmp_path / f"warm-{b}", budget=b)
@@ -95,14 +105,18 @@ def test_a_damaged_store_is_ignored(tmp_path: Path) -> None:
 def test_a_changed_denominators_file_is_not_served_from_the_store(tmp_path: Path) -> None:
     rng = np.random.default_rng(4)
     events = random_events(rng, 3000)
-    path = write_case(tmp_path, events, group={"region": {"column": "region"},
-                                               "category": {"column": "kind"}},
-                      measures={"n": "count"},
-                      normalize={"denominators": {"path": "pop.csv", "key": "region",
-                                                  "value": "residents"},
-                                 "per": 1000, "measures": ["n"]},
-                      denominators={"region": ["r1", "r2", "r3"],
-                                    "residents": [1000, 2000, 4000]})
+    path = write_case(
+        tmp_path,
+        events,
+        group={"region": {"column": "region"}, "category": {"column": "kind"}},
+        measures={"n": "count"},
+        normalize={
+            "denominators": {"path": "pop.csv", "key": "region", "value": "residents"},
+            "per": 1000,
+            "measures": ["n"],
+        },
+        denominators={"region": ["r1", "r2", "r3"], "residents": [1000, 2000, 4000]},
+    )
     first = reduce.run(path, out_dir=tmp_path / "a")
     assert first.path is not None
     (tmp_path / "pop.csv").write_text("region,residents\nr1,10\nr2,20\nr3,40\n")

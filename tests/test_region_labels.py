@@ -24,18 +24,26 @@ def _in_tmp(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.chdir(tmp_path)
 
 
-def _case(folder: Path, layout: str, label: str = "name", names: dict[str, object] | None = None,
-          outside: str = "") -> Path:
+def _case(
+    folder: Path,
+    layout: str,
+    label: str = "name",
+    names: dict[str, object] | None = None,
+    outside: str = "",
+) -> Path:
     doc = json.loads((FIXTURES / "squares.geojson").read_bytes())  # codes A..D, names
     for f in doc["features"]:
         f["properties"]["name"] = (names or NAMES).get(f["properties"]["code"])
     (folder / "squares.geojson").write_text(json.dumps(doc))
     rng = np.random.default_rng(4)
     n = 3000
-    pl.DataFrame({"lat": rng.uniform(-0.2, 2.0, n), "lon": rng.uniform(0.0, 2.0, n)}
-                 ).write_parquet(folder / "ev.parquet")
+    pl.DataFrame({"lat": rng.uniform(-0.2, 2.0, n), "lon": rng.uniform(0.0, 2.0, n)}).write_parquet(
+        folder / "ev.parquet"
+    )
     ext = {"geojson": "geojson", "csv": "csv"}.get(layout, "json")
-    return write_recipe(folder, f"""
+    return write_recipe(
+        folder,
+        f"""
         name = "squares"
         [source]
         path = "ev.parquet"
@@ -48,9 +56,8 @@ def _case(folder: Path, layout: str, label: str = "name", names: dict[str, objec
         [output]
         path = "out/squares.{ext}"
         layout = "{layout}"
-        """)
-
-
+        """,
+    )
 
 
 def test_geojson_features_carry_the_label_property(tmp_path: Path) -> None:
@@ -95,19 +102,24 @@ def test_feature_without_the_label_property_is_exit_2(tmp_path: Path) -> None:
     recipe = _case(tmp_path, "columns", names={"A": "Avra", "B": None, "C": "Cosk", "D": "D"})
     code, _, err = invoke("check", str(recipe))
     assert code == 2
-    assert err.strip() == ("error: squares.geojson: feature 1 ('B') has no text 'name' property "
-                           "(group.region.label); give every feature one or name another "
-                           "property")
+    assert err.strip() == (
+        "error: squares.geojson: feature 1 ('B') has no text 'name' property "
+        "(group.region.label); give every feature one or name another "
+        "property"
+    )
 
 
 def test_label_on_a_region_column_is_refused(tmp_path: Path) -> None:
-    recipe = write_recipe(tmp_path, """
+    recipe = write_recipe(
+        tmp_path,
+        """
         name = "x"
         [source]
         path = "ev.parquet"
         [group]
         region = { column = "prov", label = "name" }
-        """)
+        """,
+    )
     code, _, err = invoke("check", str(recipe))
     assert code == 2
     assert err.strip() == "error: recipe.toml: group.region.label: applies to boundaries only"

@@ -54,20 +54,51 @@ layout = "columns"
 # Category values that have broken hand-written JSON encoders and HTML embeddings.
 CONTROL = [chr(c) for c in range(0x20)]
 AWKWARD = [
-    '"', "\\", '\\"', '"\\', "a\"b\\c", "'", "`",
-    "".join(CONTROL), "tab\there", "line\nbreak", "cr\rlf\n", "nul\x00byte",
-    "\u2028", "\u2029", "ls\u2028ps\u2029", "\u200f", "\u202erevo\u202c", "\u200e\u061c",
-    "😀", "👩\u200d👩\u200d👧", "🏳️\u200d🌈", "\ufeffbom", "\ufffd", "\x7f", "\u0085",
-    "</script><script>alert(1)</script>", "<!--", "]]>", "&amp;", "${x}", "%s%n",
-    "", " ", "null", "NaN", "Infinity", "-0", "1e400", "\U0010ffff",
+    '"',
+    "\\",
+    '\\"',
+    '"\\',
+    'a"b\\c',
+    "'",
+    "`",
+    "".join(CONTROL),
+    "tab\there",
+    "line\nbreak",
+    "cr\rlf\n",
+    "nul\x00byte",
+    "\u2028",
+    "\u2029",
+    "ls\u2028ps\u2029",
+    "\u200f",
+    "\u202erevo\u202c",
+    "\u200e\u061c",
+    "😀",
+    "👩\u200d👩\u200d👧",
+    "🏳️\u200d🌈",
+    "\ufeffbom",
+    "\ufffd",
+    "\x7f",
+    "\u0085",
+    "</script><script>alert(1)</script>",
+    "<!--",
+    "]]>",
+    "&amp;",
+    "${x}",
+    "%s%n",
+    "",
+    " ",
+    "null",
+    "NaN",
+    "Infinity",
+    "-0",
+    "1e400",
+    "\U0010ffff",
 ]
 
 
 @pytest.fixture(autouse=True)
 def _isolated(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.chdir(tmp_path)
-
-
 
 
 def _refuse_constant(name: str) -> Any:
@@ -106,19 +137,26 @@ def write_awkward_events(tmp: Path, kinds: list[str]) -> pl.DataFrame:
     df = events(n=n).with_columns(
         kind=pl.Series([kinds[i % len(kinds)] for i in range(n)]),
         prov=pl.Series([kinds[(i * 7) % len(kinds)] for i in range(n)]),
-        x=pl.Series([[float("nan"), float("inf"), -float("inf"), 1.5][i % 4] if i < 40
-                     else float(i) for i in range(n)]))
+        x=pl.Series(
+            [
+                [float("nan"), float("inf"), -float("inf"), 1.5][i % 4] if i < 40 else float(i)
+                for i in range(n)
+            ]
+        ),
+    )
     df.write_parquet(tmp / "events.parquet")
     return df
 
 
 @pytest.mark.parametrize("layout", ["columns", "rows"])
 @pytest.mark.parametrize("inline", [False, True])
-def test_payload_is_valid_json_whatever_the_category_strings(tmp_path: Path, layout: str,
-                                                             inline: bool) -> None:
+def test_payload_is_valid_json_whatever_the_category_strings(
+    tmp_path: Path, layout: str, inline: bool
+) -> None:
     write_awkward_events(tmp_path, AWKWARD)
-    text = PAYLOAD_RECIPE.replace('layout = "columns"',
-                                 f'layout = "{layout}"\ninline = {str(inline).lower()}')
+    text = PAYLOAD_RECIPE.replace(
+        'layout = "columns"', f'layout = "{layout}"\ninline = {str(inline).lower()}'
+    )
     (tmp_path / "recipe.toml").write_text(textwrap.dedent(text))
     code, _, err = invoke("run", "recipe.toml", "--quiet")
     assert code == 0, err
@@ -142,8 +180,9 @@ def test_invalid_utf8_in_a_csv_source_becomes_replacement_characters(tmp_path: P
         kind = [b"rain", b"ha\xffil", b"\xc3(fog", b"dust\xe2\x82"][i % 4]
         rows.append(b"2025-03-0%dT10:00:00Z,AAA,%s,%d" % (1 + i % 5, kind, i))
     (tmp_path / "events.csv").write_bytes(b"\n".join(rows) + b"\n")
-    (tmp_path / "recipe.toml").write_text(textwrap.dedent(
-        PAYLOAD_RECIPE.replace("events.parquet", "events.csv")))
+    (tmp_path / "recipe.toml").write_text(
+        textwrap.dedent(PAYLOAD_RECIPE.replace("events.parquet", "events.csv"))
+    )
     code, _, err = invoke("check", "recipe.toml")
     assert code == 0, err
     code, _, err = invoke("run", "recipe.toml", "--quiet")
@@ -155,16 +194,26 @@ def test_invalid_utf8_in_a_csv_source_becomes_replacement_characters(tmp_path: P
     assert doc["accounting"]["input_rows"] == doc["accounting"]["represented_rows"] == 60
 
 
-INLINE_HOSTILE = ["</script><script>alert(1)</script>", "</SCRIPT >", "<!--<script>",
-                  "a & b", "&lt;", "x\u2028y", "x\u2029y", "]]>", "<\u2028>&"]
+INLINE_HOSTILE = [
+    "</script><script>alert(1)</script>",
+    "</SCRIPT >",
+    "<!--<script>",
+    "a & b",
+    "&lt;",
+    "x\u2028y",
+    "x\u2029y",
+    "]]>",
+    "<\u2028>&",
+]
 
 
 @pytest.mark.parametrize("layout", ["columns", "rows"])
 def test_inline_payload_cannot_close_a_script_element(tmp_path: Path, layout: str) -> None:
     write_awkward_events(tmp_path, INLINE_HOSTILE)
     text = PAYLOAD_RECIPE.replace('layout = "columns"', f'layout = "{layout}"\ninline = true')
-    text = text.replace("[output]", '[prune]\ntop = { k = 20, rest = "</script>&rest" }\n\n'
-                                    "[output]")
+    text = text.replace(
+        "[output]", '[prune]\ntop = { k = 20, rest = "</script>&rest" }\n\n[output]'
+    )
     (tmp_path / "recipe.toml").write_text(textwrap.dedent(text))
     code, _, err = invoke("run", "recipe.toml", "--quiet")
     assert code == 0, err
@@ -202,11 +251,17 @@ def no_pwned_file(*roots: Path) -> None:
 
 def test_code_in_a_filter_value_is_compared_as_a_literal(tmp_path: Path) -> None:
     df = events(n=300)
-    df = df.with_columns(pl.when(pl.int_range(pl.len()) < 7).then(pl.lit(CODE))
-                         .otherwise(pl.col("kind")).alias("kind"))
+    df = df.with_columns(
+        pl.when(pl.int_range(pl.len()) < 7)
+        .then(pl.lit(CODE))
+        .otherwise(pl.col("kind"))
+        .alias("kind")
+    )
     df.write_parquet(tmp_path / "events.parquet")
-    text = PAYLOAD_RECIPE.replace('time = "ts"\n', 'time = "ts"\nfilter = [{ column = "kind", '
-                                  f'in = ["rain", {json.dumps(CODE)}] }}]\n')
+    text = PAYLOAD_RECIPE.replace(
+        'time = "ts"\n',
+        f'time = "ts"\nfilter = [{{ column = "kind", in = ["rain", {json.dumps(CODE)}] }}]\n',
+    )
     text = text.replace('level = { mean = "x" }', "")
     (tmp_path / "recipe.toml").write_text(textwrap.dedent(text))
     code, _, err = invoke("run", "recipe.toml", "--quiet")
@@ -218,8 +273,17 @@ def test_code_in_a_filter_value_is_compared_as_a_literal(tmp_path: Path) -> None
     no_pwned_file(tmp_path)
 
 
-@pytest.mark.parametrize("where", ["rest label", "measure column", "source path",
-                                   "set override", "output file name", "time zone"])
+@pytest.mark.parametrize(
+    "where",
+    [
+        "rest label",
+        "measure column",
+        "source path",
+        "set override",
+        "output file name",
+        "time zone",
+    ],
+)
 def test_code_anywhere_in_a_recipe_is_never_run(tmp_path: Path, where: str) -> None:
     events(n=300).write_parquet(tmp_path / "events.parquet")
     text = textwrap.dedent(PAYLOAD_RECIPE)
@@ -227,8 +291,9 @@ def test_code_anywhere_in_a_recipe_is_never_run(tmp_path: Path, where: str) -> N
         text = text.replace('level = { mean = "x" }', "")
     args: list[str] = []
     if where == "rest label":
-        text = text.replace("[output]", f"[prune]\ntop = {{ k = 2, rest = {json.dumps(CODE)} }}"
-                                        "\n\n[output]")
+        text = text.replace(
+            "[output]", f"[prune]\ntop = {{ k = 2, rest = {json.dumps(CODE)} }}\n\n[output]"
+        )
     elif where == "measure column":
         text = text.replace('mean = "x"', f"mean = {json.dumps(CODE)}")
     elif where == "source path":
@@ -281,7 +346,10 @@ def test_run_writes_only_inside_the_output_folder(tmp_path: Path) -> None:
     assert tree(tmp_path, skip=("dest",)) == before  # nothing beside the recipe, no cache
     # The payload, its manifest and the folder's lock file (reduce.publish.LOCK_NAME).
     assert sorted(p.name for p in (tmp_path / "dest").iterdir()) == [
-        ".reduce.lock", "safe.json", "safe.json.manifest.json"]
+        ".reduce.lock",
+        "safe.json",
+        "safe.json.manifest.json",
+    ]
 
 
 def test_link_planted_at_the_manifest_path_is_not_followed(tmp_path: Path) -> None:

@@ -143,7 +143,8 @@ CASES = [
 
 @pytest.mark.parametrize("op, key, value", CASES, ids=[f"{c[0]}-{c[1]}" for c in CASES])
 def test_a_bad_recipe_fails_the_schema_at_the_key_reduce_check_names(
-        op: str, key: str, value: Any, tmp_path: Path) -> None:
+    op: str, key: str, value: Any, tmp_path: Path
+) -> None:
     doc = copy.deepcopy(BASE)
     if op == "set":
         _set(doc, key, value)

@@ -30,14 +30,19 @@ from reduce.source import file_state, open_source
 
 def _case(tmp: Path) -> Path:
     rng = np.random.default_rng(4)
-    return write_case(tmp, random_events(rng, 3000),
-                      source={"time": "t", "lat": "lat", "lon": "lon"},
-                      group={"hex": {"levels": [8, 6]}}, measures={"n": "count"})
+    return write_case(
+        tmp,
+        random_events(rng, 3000),
+        source={"time": "t", "lat": "lat", "lon": "lon"},
+        group={"hex": {"levels": [8, 6]}},
+        measures={"n": "count"},
+    )
 
 
 @pytest.mark.parametrize("use_cache", [True, False])
 def test_source_replaced_mid_scan_is_neither_published_nor_cached(
-        tmp_path: Path, monkeypatch: pytest.MonkeyPatch, use_cache: bool) -> None:
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, use_cache: bool
+) -> None:
     recipe = _case(tmp_path / "case")
     events = tmp_path / "case" / "events.parquet"
     first = reduce.run(recipe, out_dir=tmp_path / "out")
@@ -55,12 +60,22 @@ def test_source_replaced_mid_scan_is_neither_published_nor_cached(
         return out
 
     monkeypatch.setattr(aggregate, "scan_partial", scan_then_replace)
-    res = CliRunner().invoke(main, ["run", str(recipe), "--out", str(tmp_path / "out"),
-                                    "--quiet", *([] if use_cache else ["--no-cache"])])
+    res = CliRunner().invoke(
+        main,
+        [
+            "run",
+            str(recipe),
+            "--out",
+            str(tmp_path / "out"),
+            "--quiet",
+            *([] if use_cache else ["--no-cache"]),
+        ],
+    )
     assert res.exit_code == 2, res.output
     assert res.stderr.splitlines() == [
         f"error: {events}: changed while it was being read (size, modification time or "
-        "content); nothing was published or cached: run again once the file is complete"]
+        "content); nothing was published or cached: run again once the file is complete"
+    ]
     assert first.path.read_bytes() == old
     after = sorted(p.name for p in cache_root.iterdir()) if cache_root.is_dir() else []
     assert after == entries_before
@@ -88,26 +103,42 @@ def test_unchanged_source_passes_the_check(tmp_path: Path) -> None:
     assert file_state(src.files[0]) == src.states[0]
 
 
-@pytest.mark.parametrize(("line", "why"), [
-    ('{"ts": "2025-03-01T10:00:00", "lat": 10.5, "lon": ',
-     "not valid JSON (unexpected end of data)"),
-    ("[1, 2]", "a JSON list, not an object"),
-    ('{"ts": "2025-03-01T10:00:00", "lat": "north", "lon": 1.0}',
-     "key 'lat' holds 'north', which cannot be read as Float64 like the lines before it"),
-])
-@pytest.mark.parametrize("group", ['hex = { levels = [6] }',
-                                   'hex = { levels = [6] }\ntime = { levels = ["1d"] }'])
-def test_malformed_ndjson_line_is_named_with_its_number(tmp_path: Path, line: str,
-                                                        why: str, group: str) -> None:
-    rows = [json.dumps({"ts": f"2025-03-0{1 + i % 9}T10:00:00", "lat": 10 + i / 1e5,
-                        "lon": 20 + i / 1e5}) for i in range(12000)]
+@pytest.mark.parametrize(
+    ("line", "why"),
+    [
+        (
+            '{"ts": "2025-03-01T10:00:00", "lat": 10.5, "lon": ',
+            "not valid JSON (unexpected end of data)",
+        ),
+        ("[1, 2]", "a JSON list, not an object"),
+        (
+            '{"ts": "2025-03-01T10:00:00", "lat": "north", "lon": 1.0}',
+            "key 'lat' holds 'north', which cannot be read as Float64 like the lines before it",
+        ),
+    ],
+)
+@pytest.mark.parametrize(
+    "group", ["hex = { levels = [6] }", 'hex = { levels = [6] }\ntime = { levels = ["1d"] }']
+)
+def test_malformed_ndjson_line_is_named_with_its_number(
+    tmp_path: Path, line: str, why: str, group: str
+) -> None:
+    rows = [
+        json.dumps(
+            {"ts": f"2025-03-0{1 + i % 9}T10:00:00", "lat": 10 + i / 1e5, "lon": 20 + i / 1e5}
+        )
+        for i in range(12000)
+    ]
     rows[11000] = line  # past the rows polars infers the schema from
     (tmp_path / "ev.ndjson").write_text("\n".join(rows) + "\n")
     (tmp_path / "r.toml").write_text(
         'name = "nd"\n[source]\npath = "ev.ndjson"\ntime = "ts"\nlat = "lat"\nlon = "lon"\n'
-        f'[group]\n{group}\n[measures]\nn = "count"\n')
-    res = CliRunner().invoke(main, ["run", str(tmp_path / "r.toml"), "--no-cache", "--quiet",
-                                    "--out", str(tmp_path / "out")])
+        f'[group]\n{group}\n[measures]\nn = "count"\n'
+    )
+    res = CliRunner().invoke(
+        main,
+        ["run", str(tmp_path / "r.toml"), "--no-cache", "--quiet", "--out", str(tmp_path / "out")],
+    )
     assert res.exit_code == 2, res.output
     shown = tmp_path / "ev.ndjson"
     try:
@@ -116,5 +147,6 @@ def test_malformed_ndjson_line_is_named_with_its_number(tmp_path: Path, line: st
         pass
     assert res.stderr.splitlines() == [
         f"error: {shown}: line 11001: {why}; fix or remove that line (NDJSON holds one JSON "
-        "object per line)"]
+        "object per line)"
+    ]
     assert not (tmp_path / "out").exists()

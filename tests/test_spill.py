@@ -26,8 +26,14 @@ from reduce.aggregate import Partial, Spilled
 from reduce.budget import all_levels
 from reduce.pipeline import Reducer
 
-MEASURES = {"n": "count", "sx": {"sum": "x"}, "sy": {"sum": "y"}, "mx": {"min": "x"},
-            "my": {"max": "y"}, "ax": {"mean": "x"}}
+MEASURES = {
+    "n": "count",
+    "sx": {"sum": "x"},
+    "sy": {"sum": "y"},
+    "mx": {"min": "x"},
+    "my": {"max": "y"},
+    "ax": {"mean": "x"},
+}
 
 
 def _sparse(tmp: Path, **kw: Any) -> Path:
@@ -35,13 +41,22 @@ def _sparse(tmp: Path, **kw: Any) -> Path:
     df = random_events(rng, 5000, span_days=20, null_fraction=0.1)
     # A few rows of each kind of invalid input, spread over the ranges.
     i = pl.int_range(pl.len())
-    df = df.with_columns(pl.when(i % 397 == 5).then(None).otherwise(pl.col("lat")).alias("lat"),
-                         pl.when(i % 613 == 7).then(None).otherwise(pl.col("t")).alias("t"))
-    return write_case(tmp, df, source={"time": "t", "lat": "lat", "lon": "lon", **kw},
-                      group={"hex": {"levels": [10, 8, 6]},
-                             "time": {"levels": ["1h", "1d", "1w"], "zone": "Europe/Berlin"},
-                             "category": {"column": "kind"}},
-                      measures=MEASURES, prune={"top": {"k": [4, 2], "by": "n"}})
+    df = df.with_columns(
+        pl.when(i % 397 == 5).then(None).otherwise(pl.col("lat")).alias("lat"),
+        pl.when(i % 613 == 7).then(None).otherwise(pl.col("t")).alias("t"),
+    )
+    return write_case(
+        tmp,
+        df,
+        source={"time": "t", "lat": "lat", "lon": "lon", **kw},
+        group={
+            "hex": {"levels": [10, 8, 6]},
+            "time": {"levels": ["1h", "1d", "1w"], "zone": "Europe/Berlin"},
+            "category": {"column": "kind"},
+        },
+        measures=MEASURES,
+        prune={"top": {"k": [4, 2], "by": "n"}},
+    )
 
 
 @pytest.fixture
@@ -53,19 +68,19 @@ def cached_case(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> tuple[Path, 
     return cache, _sparse(tmp_path / "case")
 
 
-
 def _payloads(recipe_path: Path) -> tuple[Reducer, dict[str, bytes]]:
     recipe = reduce.load_recipe(recipe_path)
     red = Reducer(recipe, use_cache=False)
     return red, {str(lv): red.payload(lv) for lv in all_levels(recipe.ladder())}
 
 
-@pytest.mark.parametrize(("filters", "part_rows"), [
-    ({}, 5_000_000), ({}, 900), ({"filter": [{"column": "kind", "not_in": ["e"]}]}, 900)])
-def test_spilled_scan_gives_every_level_byte_for_byte(tmp_path: Path,
-                                                    monkeypatch: pytest.MonkeyPatch,
-                                                    filters: dict[str, Any],
-                                                    part_rows: int) -> None:
+@pytest.mark.parametrize(
+    ("filters", "part_rows"),
+    [({}, 5_000_000), ({}, 900), ({"filter": [{"column": "kind", "not_in": ["e"]}]}, 900)],
+)
+def test_spilled_scan_gives_every_level_byte_for_byte(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, filters: dict[str, Any], part_rows: int
+) -> None:
     path = _sparse(tmp_path, **filters)
     whole, expected = _payloads(path)
     assert isinstance(whole.finest(), Partial)
@@ -94,13 +109,16 @@ def test_spilled_scan_gives_every_level_byte_for_byte(tmp_path: Path,
     assert spilled.partial().table.sort(keys).equals(whole.partial().table.sort(keys))
 
 
-def test_dense_source_is_grouped_in_memory_not_spilled(tmp_path: Path,
-                                                           monkeypatch: pytest.MonkeyPatch
-                                                           ) -> None:
+def test_dense_source_is_grouped_in_memory_not_spilled(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     rng = np.random.default_rng(5)
-    path = write_case(tmp_path, random_events(rng, 5000),
-                      group={"region": {"column": "region"}, "category": {"column": "kind"}},
-                      measures=MEASURES)
+    path = write_case(
+        tmp_path,
+        random_events(rng, 5000),
+        group={"region": {"column": "region"}, "category": {"column": "kind"}},
+        measures=MEASURES,
+    )
     whole, expected = _payloads(path)
     monkeypatch.setenv("REDUCE_PROBE_ROWS", "1100")
     split, got = _payloads(path)
@@ -110,7 +128,8 @@ def test_dense_source_is_grouped_in_memory_not_spilled(tmp_path: Path,
 
 
 def test_spilled_partial_is_cached_and_refits_give_the_same_payload(
-        cached_case: tuple[Path, Path]) -> None:
+    cached_case: tuple[Path, Path],
+) -> None:
     cache, path = cached_case
     first = reduce.fit(path, budget="20KB")
     again = reduce.fit(path, budget="20KB")
@@ -123,15 +142,21 @@ def test_spilled_partial_is_cached_and_refits_give_the_same_payload(
     # The spilled rows, their meta and checksums (with their locks), plus the store of
     # measured levels (reduce.levels).
     assert [n for n in names if not n.startswith(("levels-", "payload-"))] == [
-        ".lock", ".sums-lock", "meta.json", "rows", "sums.json"]
+        ".lock",
+        ".sums-lock",
+        "meta.json",
+        "rows",
+        "sums.json",
+    ]
     assert any(n.startswith("levels-") for n in names)
     del first, again
     gc.collect()
     assert not [d for d in cache.iterdir() if d.name.endswith(".spill")]
 
 
-def test_spill_folder_outside_the_cache_is_removed(tmp_path: Path,
-                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+def test_spill_folder_outside_the_cache_is_removed(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     monkeypatch.setenv("REDUCE_PROBE_ROWS", "1100")
     monkeypatch.setenv("TMPDIR", str(tmp_path / "tmp"))
     (tmp_path / "tmp").mkdir()
@@ -174,9 +199,9 @@ def _without_distinct(text: str, root: Path) -> str:
 
 @pytest.mark.parametrize("always", [False, True], ids=["when-sparse", "always"])
 @pytest.mark.parametrize("name", sorted(p.stem for p in RECIPES.glob("*.toml")))
-def test_demo_recipes_give_the_same_payloads_spilled(name: str, always: bool, demo_root: Path,
-                                                     tmp_path: Path,
-                                                     monkeypatch: pytest.MonkeyPatch) -> None:
+def test_demo_recipes_give_the_same_payloads_spilled(
+    name: str, always: bool, demo_root: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
     # Regions from boundaries, flows, GeoJSON geometry, rates and suppression all work the
     # same on spilled rows (and, for dense keys, after the probe) as on one pass.
     path = tmp_path / f"{name}.toml"
@@ -196,8 +221,8 @@ def test_demo_recipes_give_the_same_payloads_spilled(name: str, always: bool, de
 
 
 def test_full_disk_while_spilling_is_one_line_exit_2_and_nothing_left(
-        tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
-        cached_case: tuple[Path, Path]) -> None:
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, cached_case: tuple[Path, Path]
+) -> None:
     from click.testing import CliRunner
 
     from reduce.cli import main
@@ -206,16 +231,21 @@ def test_full_disk_while_spilling_is_one_line_exit_2_and_nothing_left(
 
     def full(self: pl.LazyFrame, *args: Any, **kw: Any) -> None:
         # What polars raises when the disk fills up mid-write (seen on a 2 MB tmpfs).
-        raise pl.exceptions.ComputeError("parquet: File out of specification: underlying IO "
-                                         "error: No space left on device (os error 28)")
+        raise pl.exceptions.ComputeError(
+            "parquet: File out of specification: underlying IO "
+            "error: No space left on device (os error 28)"
+        )
 
     monkeypatch.setattr(pl.LazyFrame, "sink_parquet", full)
     res = CliRunner().invoke(main, ["run", str(path), "--quiet"])
     assert res.exit_code == 2
-    assert res.stderr.strip().splitlines() == [(
-        f"error: {cache}: cannot write the scan's keyed rows (No space left on device); free "
-        "space there or point REDUCE_CACHE_DIR (TMPDIR with --no-cache) at a disk with room "
-        "for about 16 bytes per event")]
+    assert res.stderr.strip().splitlines() == [
+        (
+            f"error: {cache}: cannot write the scan's keyed rows (No space left on device); free "
+            "space there or point REDUCE_CACHE_DIR (TMPDIR with --no-cache) at a disk with room "
+            "for about 16 bytes per event"
+        )
+    ]
     assert not (tmp_path / "case" / "out").exists()
     gc.collect()
     assert list(cache.iterdir()) == []
@@ -223,13 +253,18 @@ def test_full_disk_while_spilling_is_one_line_exit_2_and_nothing_left(
 
 @pytest.mark.parametrize("probe", ["1100", "1000000"], ids=["spilled", "in-memory"])
 def test_new_source_version_replaces_the_recipes_cache_entry(
-        tmp_path: Path, monkeypatch: pytest.MonkeyPatch, probe: str) -> None:
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, probe: str
+) -> None:
     cache = tmp_path / "cache"
     monkeypatch.setenv("REDUCE_CACHE_DIR", str(cache))
     monkeypatch.setenv("REDUCE_PROBE_ROWS", probe)
     path = _sparse(tmp_path / "case")
-    other = write_case(tmp_path / "other", random_events(np.random.default_rng(3), 2000),
-                       group={"region": {"column": "region"}}, measures={"n": "count"})
+    other = write_case(
+        tmp_path / "other",
+        random_events(np.random.default_rng(3), 2000),
+        group={"region": {"column": "region"}},
+        measures={"n": "count"},
+    )
     reduce.fit(other)
     first = reduce.fit(path)
     assert len([d for d in cache.iterdir() if not d.name.startswith(".")]) == 2
@@ -247,7 +282,8 @@ def test_new_source_version_replaces_the_recipes_cache_entry(
 
 
 def test_an_entry_stored_by_another_run_is_left_alone_and_a_damaged_one_replaced(
-        cached_case: tuple[Path, Path]) -> None:
+    cached_case: tuple[Path, Path],
+) -> None:
     from reduce import cache as cache_mod
 
     cache, path = cached_case

@@ -47,11 +47,13 @@ def provinces(tmp_path_factory: pytest.TempPathFactory) -> Boundaries:
     return load_boundaries(path, "code")
 
 
-def _wavy_ring(cx: float, cy: float, r: float, n: int, rng: np.random.Generator,
-               amp: float) -> np.ndarray:
+def _wavy_ring(
+    cx: float, cy: float, r: float, n: int, rng: np.random.Generator, amp: float
+) -> np.ndarray:
     t = np.linspace(0, 2 * np.pi, n, endpoint=False)
-    rr = r * (1 + amp * np.sin(3 * t + rng.uniform(0, 6))
-              + 0.5 * amp * np.sin(7 * t + rng.uniform(0, 6)))
+    rr = r * (
+        1 + amp * np.sin(3 * t + rng.uniform(0, 6)) + 0.5 * amp * np.sin(7 * t + rng.uniform(0, 6))
+    )
     return np.column_stack([cx + rr * np.cos(t), cy + rr * np.sin(t)])
 
 
@@ -73,14 +75,22 @@ def synthetic_tiling(seed: int = 11, n: int = 14) -> list[Any]:
         p = rng.uniform(-0.9, 0.9, 2) + (cx, cy)
         if outline.contains(shapely.Point(p)):
             seeds.append(p)
-    cells = shapely.get_parts(shapely.voronoi_polygons(shapely.multipoints(np.array(seeds)),
-                                                       extend_to=outline.buffer(0.5)))
+    cells = shapely.get_parts(
+        shapely.voronoi_polygons(
+            shapely.multipoints(np.array(seeds)), extend_to=outline.buffer(0.5)
+        )
+    )
     # Node the coast and the cell borders once, densify each line once, polygonize: every
     # shared border has the same vertices on both sides.
-    noded = shapely.segmentize(shapely.get_parts(shapely.union_all(
-        [outline.exterior, *(c.exterior for c in cells)])), 0.005)
-    faces = [f for f in shapely.get_parts(shapely.polygonize(noded))
-             if outline.contains(shapely.point_on_surface(f))]
+    noded = shapely.segmentize(
+        shapely.get_parts(shapely.union_all([outline.exterior, *(c.exterior for c in cells)])),
+        0.005,
+    )
+    faces = [
+        f
+        for f in shapely.get_parts(shapely.polygonize(noded))
+        if outline.contains(shapely.point_on_surface(f))
+    ]
     faces.sort(key=lambda f: (round(f.centroid.x, 6), round(f.centroid.y, 6)))
     # An enclave: a small region inside a hole of the largest one.
     big = max(range(len(faces)), key=lambda i: faces[i].area)
@@ -96,9 +106,14 @@ def synthetic_tiling(seed: int = 11, n: int = 14) -> list[Any]:
 
 
 def write_tiling(path: Path, geoms: Sequence[Any], codes: Sequence[str]) -> Path:
-    features = [{"type": "Feature", "properties": {"code": c},
-                 "geometry": json.loads(shapely.to_geojson(g))}
-                for c, g in zip(codes, geoms, strict=True)]
+    features = [
+        {
+            "type": "Feature",
+            "properties": {"code": c},
+            "geometry": json.loads(shapely.to_geojson(g)),
+        }
+        for c, g in zip(codes, geoms, strict=True)
+    ]
     path.write_text(json.dumps({"type": "FeatureCollection", "features": features}))
     return path
 
@@ -109,8 +124,9 @@ def synthetic(tmp_path_factory: pytest.TempPathFactory) -> Boundaries:
     # Ids scrambled, so sorted order is not the order the regions were made in.
     order = np.random.default_rng(3).permutation(len(geoms))
     codes = [f"S{int(i):02d}" for i in order]
-    return load_boundaries(write_tiling(tmp_path_factory.mktemp("syn") / "s.geojson",
-                                        geoms, codes), "code")
+    return load_boundaries(
+        write_tiling(tmp_path_factory.mktemp("syn") / "s.geojson", geoms, codes), "code"
+    )
 
 
 @pytest.fixture(scope="module", params=["provinces", "synthetic"])
@@ -194,8 +210,7 @@ def neighbours(geoms: Sequence[Any], longer_than: float = 0.0) -> list[tuple[int
     return pairs
 
 
-def check_tiling(geoms: Sequence[Any], original: Sequence[Any], *,
-                 grid: float = 0.0) -> None:
+def check_tiling(geoms: Sequence[Any], original: Sequence[Any], *, grid: float = 0.0) -> None:
     """Valid; no overlaps; no gaps; every pair of neighbours shares one identical border.
 
     Neighbours must stay neighbours, except (with ``grid``, after rounding) those whose
@@ -232,8 +247,10 @@ def coordinates_bytes(geoms: Sequence[Any], digits: int) -> int:
     """Reference count: json.dumps of rounded [lon, lat] rings, compact separators."""
     total = 0
     for g in geoms:
-        polys = [[[[round(x, digits) + 0.0, round(y, digits) + 0.0] for x, y in r]
-                  for r in rings(p)] for p in shapely.get_parts(g)]
+        polys = [
+            [[[round(x, digits) + 0.0, round(y, digits) + 0.0] for x, y in r] for r in rings(p)]
+            for p in shapely.get_parts(g)
+        ]
         for p in polys:
             for r in p:
                 r[:] = [pt for k, pt in enumerate(r) if k == 0 or pt != r[k - 1]]
@@ -250,7 +267,8 @@ def test_the_inputs_are_valid_tilings(tiling: Boundaries) -> None:
 
 
 def test_synthetic_tiling_has_an_enclave_an_island_and_wiggly_borders(
-        synthetic: Boundaries) -> None:
+    synthetic: Boundaries,
+) -> None:
     kinds = [g.geom_type for g in synthetic.geoms]
     assert kinds.count("MultiPolygon") == 1
     assert sum(len(p.interiors) for g in synthetic.geoms for p in shapely.get_parts(g)) == 1
@@ -272,8 +290,7 @@ def test_simplified_tiling_is_valid_without_gaps_or_overlaps(tiling: Boundaries)
 
 
 @pytest.mark.parametrize("factor", [10, 60])
-def test_coarse_tolerances_still_keep_the_tiling_whole(tiling: Boundaries,
-                                                       factor: int) -> None:
+def test_coarse_tolerances_still_keep_the_tiling_whole(tiling: Boundaries, factor: int) -> None:
     # Coarse enough that Douglas-Peucker on separate arcs makes some cross or collapse:
     # the arcs at fault are redone with smaller tolerances.
     simplified = simplify_shared(tiling, factor * default_tolerance(tiling))
@@ -281,7 +298,8 @@ def test_coarse_tolerances_still_keep_the_tiling_whole(tiling: Boundaries,
 
 
 def test_default_tolerance_changes_total_area_by_under_one_percent(
-        tiling: Boundaries, record_property: Any) -> None:
+    tiling: Boundaries, record_property: Any
+) -> None:
     tol = default_tolerance(tiling)
     simplified = simplify_shared(tiling, tol)
     a0 = np.array([g.area for g in tiling.geoms])
@@ -296,20 +314,22 @@ def test_default_tolerance_changes_total_area_by_under_one_percent(
 
 
 def test_bytes_saved_by_simplification_at_the_default_tolerance(
-        provinces: Boundaries, record_property: Any, capsys: pytest.CaptureFixture[str]) -> None:
+    provinces: Boundaries, record_property: Any, capsys: pytest.CaptureFixture[str]
+) -> None:
     simplified = simplify_shared(provinces, default_tolerance(provinces))
     before, after = geometry_bytes(provinces.geoms, 6), geometry_bytes(simplified, 6)
     record_property("coordinate_bytes_before", before)
     record_property("coordinate_bytes_after", after)
     with capsys.disabled():
-        print(f"\ndemo provinces, 6 digits: {before:,} -> {after:,} coordinate bytes "
-              f"({1 - after / before:.0%} saved) at tolerance "
-              f"{default_tolerance(provinces):.6f} degrees")
+        print(
+            f"\ndemo provinces, 6 digits: {before:,} -> {after:,} coordinate bytes "
+            f"({1 - after / before:.0%} saved) at tolerance "
+            f"{default_tolerance(provinces):.6f} degrees"
+        )
     assert after < 0.75 * before
 
 
-def test_geometry_bytes_counts_the_coordinates_as_geojson_writes_them(
-        tiling: Boundaries) -> None:
+def test_geometry_bytes_counts_the_coordinates_as_geojson_writes_them(tiling: Boundaries) -> None:
     for digits in (6, 3):
         assert geometry_bytes(tiling.geoms, digits) == coordinates_bytes(tiling.geoms, digits)
 
@@ -329,8 +349,10 @@ def test_zero_tolerance_gives_the_input_back(tiling: Boundaries) -> None:
 
 def test_simplifying_each_polygon_alone_fails_these_checks(synthetic: Boundaries) -> None:
     # The control: the checks above catch what shared arcs prevent.
-    alone = [shapely.simplify(g, 3 * default_tolerance(synthetic), preserve_topology=True)
-             for g in synthetic.geoms]
+    alone = [
+        shapely.simplify(g, 3 * default_tolerance(synthetic), preserve_topology=True)
+        for g in synthetic.geoms
+    ]
     with pytest.raises(AssertionError):
         check_tiling(alone, synthetic.geoms)
     union = shapely.union_all(alone)
@@ -343,9 +365,12 @@ def test_a_t_junction_becomes_a_node(tmp_path: Path) -> None:
     left = [(0, 0), (1, -0.01), (2, 0), (2, 2), (1, 2.01), (0, 2), (0, 0)]
     low = [(2, 0), (3, 0), (3, 1), (2.5, 1.002), (2, 1), (2, 0)]
     high = [(2, 1), (2.5, 1.002), (3, 1), (3, 2), (2, 2), (2, 1)]
-    b = load_boundaries(write_tiling(tmp_path / "t.geojson",
-                                     [shapely.Polygon(r) for r in (left, low, high)],
-                                     ["L", "P", "Q"]), "code")
+    b = load_boundaries(
+        write_tiling(
+            tmp_path / "t.geojson", [shapely.Polygon(r) for r in (left, low, high)], ["L", "P", "Q"]
+        ),
+        "code",
+    )
     out = simplify_shared(b, 0.05)
     check_tiling(out, b.geoms)
     assert (2.0, 1.0) in set(map(tuple, shapely.get_coordinates(out[0]).tolist()))
@@ -360,19 +385,25 @@ def test_borders_computed_twice_are_merged_before_simplifying(tmp_path: Path) ->
     seeds = shapely.multipoints(rng.uniform(0, 1, (7, 2)))
     frame = shapely.box(0, 0, 1, 1)
     cells = shapely.intersection(
-        shapely.get_parts(shapely.voronoi_polygons(seeds, extend_to=frame)), frame)
+        shapely.get_parts(shapely.voronoi_polygons(seeds, extend_to=frame)), frame
+    )
     geoms = list(shapely.segmentize(cells, 0.003))
-    b = load_boundaries(write_tiling(tmp_path / "v.geojson", geoms,
-                                     [f"V{i}" for i in range(len(geoms))]), "code")
+    b = load_boundaries(
+        write_tiling(tmp_path / "v.geojson", geoms, [f"V{i}" for i in range(len(geoms))]), "code"
+    )
     shared = [edges(b.geoms[i]) & edges(b.geoms[j]) for i, j in neighbours(b.geoms)]
-    crossing = [(i, j) for i, j in itertools.combinations(range(len(geoms)), 2)
-                if shapely.relate_pattern(b.geoms[i], b.geoms[j], "T********")]
+    crossing = [
+        (i, j)
+        for i, j in itertools.combinations(range(len(geoms)), 2)
+        if shapely.relate_pattern(b.geoms[i], b.geoms[j], "T********")
+    ]
     assert crossing or sum(map(len, shared)) < 10  # the input is not a clean tiling
     out = simplify_shared(b, 0.001)
     check_tiling(out, quantize(b.geoms, 9))
     # Straight borders: only the corners are left.
     assert sum(shapely.get_num_coordinates(np.asarray(out))) < 0.1 * sum(
-        shapely.get_num_coordinates(np.asarray(b.geoms)))
+        shapely.get_num_coordinates(np.asarray(b.geoms))
+    )
 
 
 def test_negative_tolerance_is_refused(provinces: Boundaries) -> None:
@@ -387,11 +418,11 @@ def test_negative_tolerance_is_refused(provinces: Boundaries) -> None:
 def test_quantize_keeps_validity_and_shared_borders(tiling: Boundaries, digits: int) -> None:
     for geoms in (tiling.geoms, simplify_shared(tiling, default_tolerance(tiling))):
         q = quantize(geoms, digits)
-        check_tiling(q, tiling.geoms, grid=10.0 ** -digits)
+        check_tiling(q, tiling.geoms, grid=10.0**-digits)
         c = np.concatenate([shapely.get_coordinates(g) for g in q])
         assert np.array_equal(c, np.round(c, digits))  # on the grid
         a0 = sum(g.area for g in geoms)
-        assert abs(sum(g.area for g in q) - a0) / a0 < 10.0 ** -digits * 50
+        assert abs(sum(g.area for g in q) - a0) / a0 < 10.0**-digits * 50
 
 
 def test_quantize_where_plain_rounding_breaks_polygons(synthetic: Boundaries) -> None:

@@ -192,8 +192,7 @@ def audit_paths(
         total_verdict = Verdict(
             limit=t_limit, on=t_on, size=sum(s or 0 for s in sizes), source=t_source
         )
-    return AuditReport(files=tuple(results), on=measure, total=total_verdict,
-                       commits=commits)
+    return AuditReport(files=tuple(results), on=measure, total=total_verdict, commits=commits)
 
 
 def _check_globs_match(budgets: Budgets, files: Sequence[tuple[str, Path]]) -> None:
@@ -202,9 +201,11 @@ def _check_globs_match(budgets: Budgets, files: Sequence[tuple[str, Path]]) -> N
     for rule in budgets.rules:
         if not any(rule.matches(_candidates(budgets, path, given)) for given, path in files):
             n = len(files)
-            raise AuditError(f"{rule.source} matches none of the {n:,} audited "
-                             f"file{'s' if n != 1 else ''}; fix the glob (relative to the "
-                             "budgets file's folder) or remove the rule")
+            raise AuditError(
+                f"{rule.source} matches none of the {n:,} audited "
+                f"file{'s' if n != 1 else ''}; fix the glob (relative to the "
+                "budgets file's folder) or remove the rule"
+            )
 
 
 def _candidates(budgets: Budgets, path: Path, given: str) -> list[str]:
@@ -222,8 +223,10 @@ def _is_preview(path: Path) -> bool:
     import glob
 
     stem = glob.escape(path.stem)
-    return (any(path.parent.glob(f"{stem}.*{MANIFEST_SUFFIX}"))
-            or path.with_name(path.stem + MANIFEST_SUFFIX).is_file())
+    return (
+        any(path.parent.glob(f"{stem}.*{MANIFEST_SUFFIX}"))
+        or path.with_name(path.stem + MANIFEST_SUFFIX).is_file()
+    )
 
 
 def _collect(paths: Sequence[str | os.PathLike[str]]) -> list[tuple[str, Path]]:
@@ -285,8 +288,9 @@ def _audit_file(
     out = _Findings()
     suffix = path.suffix.lower()
     if _links_outside(path):
-        out.notes.append("a link to a file outside its folder: sizes only (its content is "
-                         "not shown)")
+        out.notes.append(
+            "a link to a file outside its folder: sizes only (its content is not shown)"
+        )
     elif suffix in _JSON_SUFFIXES:
         _analyse_json(data, suffix, out)
     elif suffix in _CSV_SUFFIXES:
@@ -316,9 +320,12 @@ def _audit_file(
     share_on: Measure = rule[1] if rule is not None else "gzip"
     shares = field_shares(data, out.kind, share_on, [f.name for f in fields])
     if shares is not None:
-        fields = tuple(sorted((replace(f, on=share_on, share=shares.get(f.name))
-                               for f in fields),
-                              key=lambda f: (-(f.share or 0), -f.bytes, f.name)))
+        fields = tuple(
+            sorted(
+                (replace(f, on=share_on, share=shares.get(f.name)) for f in fields),
+                key=lambda f: (-(f.share or 0), -f.bytes, f.name),
+            )
+        )
     return FileAudit(
         path=given,
         kind=out.kind,
@@ -339,8 +346,9 @@ def _audit_file(
 FIELD_SHARE_MAX_BYTES = BROTLI_AUTO_MAX
 
 
-def field_shares(data: bytes, kind: str, on: Measure,
-                 names: Sequence[str]) -> dict[str, int] | None:
+def field_shares(
+    data: bytes, kind: str, on: Measure, names: Sequence[str]
+) -> dict[str, int] | None:
     """The bytes on ``on`` (gzip level 9, brotli quality 11, or raw) each field adds to the
     file: the size of the file re-encoded whole minus its size re-encoded without that
     field (columns payloads: the column, or its dictionary for ``name (dictionary)``; row
@@ -350,8 +358,10 @@ def field_shares(data: bytes, kind: str, on: Measure,
     if len(data) > FIELD_SHARE_MAX_BYTES or kind not in ("columns", "rows", "geojson", "csv"):
         return None
     sizers: dict[str, Callable[[bytes], int]] = {
-        "raw": len, "gzip": lambda b: len(gzip_bytes(b)),
-        "brotli": lambda b: len(brotli_bytes(b))}
+        "raw": len,
+        "gzip": lambda b: len(gzip_bytes(b)),
+        "brotli": lambda b: len(brotli_bytes(b)),
+    }
     size = sizers[on]
     try:
         if kind == "csv":
@@ -365,8 +375,9 @@ def field_shares(data: bytes, kind: str, on: Measure,
             def without(name: str | None) -> bytes:
                 keep = [i for i, h in enumerate(table[0]) if h != name]
                 buf = io.StringIO()
-                csv.writer(buf, lineterminator="\n").writerows([[r[i] for i in keep if i < len(r)]
-                                                                 for r in table])
+                csv.writer(buf, lineterminator="\n").writerows(
+                    [[r[i] for i in keep if i < len(r)] for r in table]
+                )
                 return buf.getvalue().encode()
         else:
             doc = orjson.loads(data)
@@ -392,9 +403,11 @@ def _drop_field(doc: Any, kind: str, name: str | None) -> Any:
             return {**doc, "columns": {k: v for k, v in cols.items() if k != name}}
         return doc
     if kind == "rows" and isinstance(doc, list):
-        return [{k: v for k, v in r.items() if k != name} if isinstance(r, dict) else r
-                for r in doc]
+        return [
+            {k: v for k, v in r.items() if k != name} if isinstance(r, dict) else r for r in doc
+        ]
     if kind == "geojson" and isinstance(doc, dict) and isinstance(doc.get("features"), list):
+
         def feature(f: Any) -> Any:
             if not isinstance(f, dict):
                 return f
@@ -405,12 +418,14 @@ def _drop_field(doc: Any, kind: str, name: str | None) -> Any:
             if isinstance(props, dict):
                 return {**f, "properties": {k: v for k, v in props.items() if k != prop}}
             return f
+
         return {**doc, "features": [feature(f) for f in doc["features"]]}
     return doc
 
 
-def _complete_commits(paths: Sequence[str | os.PathLike[str]],
-                      files: list[tuple[str, Path]]) -> tuple[CommitCheck, ...]:
+def _complete_commits(
+    paths: Sequence[str | os.PathLike[str]], files: list[tuple[str, Path]]
+) -> tuple[CommitCheck, ...]:
     """Complete the interrupted commits (see reduce.publish) in the audited folders, under
     each folder's lock; one that cannot be completed (a refused journal, a folder that is not
     writable, a lock held too long) is reported, never guessed at."""
@@ -426,12 +441,14 @@ def _complete_commits(paths: Sequence[str | os.PathLike[str]],
         except (ReduceError, OSError) as exc:
             why = exc.message if isinstance(exc, ReduceError) else (exc.strerror or str(exc))
             for j in found:
-                out.append(CommitCheck(str(j), False, "interrupted commit, not completed: "
-                                                      f"{why}"))
+                out.append(CommitCheck(str(j), False, f"interrupted commit, not completed: {why}"))
             continue
         for j in found:
             name = j.name[1:].removesuffix(".reduce-commit")
             if name in done:
-                out.append(CommitCheck(str(j), True, f"completed an interrupted commit of "
-                                                     f"{name} before auditing"))
+                out.append(
+                    CommitCheck(
+                        str(j), True, f"completed an interrupted commit of {name} before auditing"
+                    )
+                )
     return tuple(out)

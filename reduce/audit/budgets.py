@@ -1,5 +1,4 @@
-"""Budgets files: per-file rules (globs) and a site total, parsed and matched.
-"""
+"""Budgets files: per-file rules (globs) and a site total, parsed and matched."""
 
 from __future__ import annotations
 

@@ -50,11 +50,19 @@ __all__ = ["audit"]
 @click.option("--json", "as_json", is_flag=True, help="Print the report as JSON.")
 @click.option("--markdown", is_flag=True, help="Print the report as Markdown for a pull request.")
 @click.option("--quiet", "-q", is_flag=True, help="No report; only problem lines and exit code.")
-@click.option("--measure", is_flag=True,
-              help="Draw each payload's preview page in headless Chromium and report parse "
-                   "and draw ms (median of 3 loads).")
-@click.option("--max-draw-ms", type=click.FloatRange(min=0, min_open=True), default=None,
-              metavar="MS", help="With --measure: a file whose page draws slower is a finding.")
+@click.option(
+    "--measure",
+    is_flag=True,
+    help="Draw each payload's preview page in headless Chromium and report parse "
+    "and draw ms (median of 3 loads).",
+)
+@click.option(
+    "--max-draw-ms",
+    type=click.FloatRange(min=0, min_open=True),
+    default=None,
+    metavar="MS",
+    help="With --measure: a file whose page draws slower is a finding.",
+)
 @click.pass_context
 def audit(
     ctx: click.Context,
@@ -107,8 +115,11 @@ def audit(
         ctx.exit(err.exit_code)
         return
 
-    slow = [(path, m) for path, m in measured.items()
-            if max_draw_ms is not None and float(m["draw_ms"]) > max_draw_ms]  # type: ignore[arg-type]
+    slow = [
+        (path, m)
+        for path, m in measured.items()
+        if max_draw_ms is not None and float(m["draw_ms"]) > max_draw_ms  # type: ignore[arg-type]
+    ]
     if not quiet:
         if as_json:
             import orjson
@@ -119,19 +130,21 @@ def audit(
                     entry["measured"] = measured[entry["path"]]
             if measure:
                 doc["max_draw_ms"] = max_draw_ms
-                doc["findings"] += [{"path": path, "message": _slow_message(m, max_draw_ms)}
-                                    for path, m in slow]
+                doc["findings"] += [
+                    {"path": path, "message": _slow_message(m, max_draw_ms)} for path, m in slow
+                ]
                 doc["ok"] = doc["ok"] and not slow
             click.echo(orjson.dumps(doc, option=orjson.OPT_INDENT_2).decode("utf-8"))
         else:
             text = render_markdown(report) if markdown else render_table(report)
             click.echo(text, nl=False)
             if measured:
-                click.echo("measured in headless Chromium (median of 3 loads of the preview "
-                           "page):")
+                click.echo("measured in headless Chromium (median of 3 loads of the preview page):")
                 for path, m in measured.items():
-                    click.echo(f"  {path}: {m['surface']}, {m['drawn']:,} elements, parse "
-                               f"{m['parse_ms']:.1f} ms, draw {m['draw_ms']:.1f} ms")
+                    click.echo(
+                        f"  {path}: {m['surface']}, {m['drawn']:,} elements, parse "
+                        f"{m['parse_ms']:.1f} ms, draw {m['draw_ms']:.1f} ms"
+                    )
     for commit in report.commits:
         if commit.completed:  # said in one line; an uncompleted one is a finding below
             click.echo(f"{commit.journal}: {commit.message}", err=True)

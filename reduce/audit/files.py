@@ -1,5 +1,4 @@
-"""Reading audited files safely: regular files only, within a size cap, never blocking.
-"""
+"""Reading audited files safely: regular files only, within a size cap, never blocking."""
 
 from __future__ import annotations
 
@@ -25,17 +24,23 @@ def _read(path: Path, given: str, *, cap: int | None = None) -> bytes:
     try:
         before = os.stat(path)
         if not stat.S_ISREG(before.st_mode):
-            raise AuditError(f"{given}: not a regular file ({_file_kind(before.st_mode)}); the "
-                             "audit reads only regular files and links to them")
+            raise AuditError(
+                f"{given}: not a regular file ({_file_kind(before.st_mode)}); the "
+                "audit reads only regular files and links to them"
+            )
         fd = os.open(path, os.O_RDONLY | os.O_NONBLOCK | os.O_CLOEXEC)
         try:
             st = os.fstat(fd)
-            if not stat.S_ISREG(st.st_mode) or (st.st_dev, st.st_ino) != (before.st_dev,
-                                                                          before.st_ino):
+            if not stat.S_ISREG(st.st_mode) or (st.st_dev, st.st_ino) != (
+                before.st_dev,
+                before.st_ino,
+            ):
                 raise AuditError(f"{given}: changed while being opened; audit it again")
             if st.st_size > limit:
-                raise AuditError(f"{given}: {st.st_size:,} bytes, over the audit's limit of "
-                                 f"{limit:,} bytes per file; is it a payload?")
+                raise AuditError(
+                    f"{given}: {st.st_size:,} bytes, over the audit's limit of "
+                    f"{limit:,} bytes per file; is it a payload?"
+                )
             chunks = []
             left = limit + 1
             while left > 0:
@@ -46,8 +51,9 @@ def _read(path: Path, given: str, *, cap: int | None = None) -> bytes:
                 left -= len(chunk)
             data = b"".join(chunks)
             if len(data) > limit:
-                raise AuditError(f"{given}: grew over the audit's limit of {limit:,} bytes "
-                                 "while being read")
+                raise AuditError(
+                    f"{given}: grew over the audit's limit of {limit:,} bytes while being read"
+                )
             return data
         finally:
             os.close(fd)
@@ -57,15 +63,17 @@ def _read(path: Path, given: str, *, cap: int | None = None) -> bytes:
         raise AuditError(f"{given}: cannot read ({exc.strerror or exc})") from None
 
 
-
 def _file_kind(mode: int) -> str:
-    for test, name in ((stat.S_ISFIFO, "a FIFO"), (stat.S_ISCHR, "a character device"),
-                       (stat.S_ISBLK, "a block device"), (stat.S_ISSOCK, "a socket"),
-                       (stat.S_ISDIR, "a folder")):
+    for test, name in (
+        (stat.S_ISFIFO, "a FIFO"),
+        (stat.S_ISCHR, "a character device"),
+        (stat.S_ISBLK, "a block device"),
+        (stat.S_ISSOCK, "a socket"),
+        (stat.S_ISDIR, "a folder"),
+    ):
         if test(mode):
             return name
     return "not a plain file"
-
 
 
 def _links_outside(path: Path) -> bool:
@@ -77,7 +85,6 @@ def _links_outside(path: Path) -> bool:
         return False
     except (ValueError, OSError):
         return True
-
 
 
 def _read_manifest(path: Path) -> tuple[Path, bytes | None, str | None]:
@@ -92,8 +99,14 @@ def _read_manifest(path: Path) -> tuple[Path, bytes | None, str | None]:
         return man, None, f"manifest {man.name}: cannot read ({exc.strerror or exc})"
     if not stat.S_ISREG(st.st_mode):
         kind = "a link" if stat.S_ISLNK(st.st_mode) else _file_kind(st.st_mode)
-        return man, None, (f"manifest {man.name}: is {kind}, not a regular file; reduce "
-                           "writes manifests as regular files")
+        return (
+            man,
+            None,
+            (
+                f"manifest {man.name}: is {kind}, not a regular file; reduce "
+                "writes manifests as regular files"
+            ),
+        )
     try:
         return man, _read(man, str(man), cap=MANIFEST_MAX_BYTES), None
     except AuditError as exc:

@@ -1,5 +1,4 @@
-"""Inspecting JSON payloads: our columns layout, row JSON and GeoJSON (RFC 7946).
-"""
+"""Inspecting JSON payloads: our columns layout, row JSON and GeoJSON (RFC 7946)."""
 
 from __future__ import annotations
 

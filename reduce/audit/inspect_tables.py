@@ -1,5 +1,4 @@
-"""Inspecting CSV and Arrow IPC payloads.
-"""
+"""Inspecting CSV and Arrow IPC payloads."""
 
 from __future__ import annotations
 

@@ -1,5 +1,4 @@
-"""Checking a payload against its manifest and its pre-compressed siblings.
-"""
+"""Checking a payload against its manifest and its pre-compressed siblings."""
 
 from __future__ import annotations
 
@@ -90,8 +89,7 @@ def _check_manifest(
 _SIBLING_SUFFIXES = {".gz": "gzip", ".br": "brotli"}
 
 
-def _check_siblings(path: Path, data: bytes, out: _Findings,
-                    manifest_bytes: bytes | None) -> None:
+def _check_siblings(path: Path, data: bytes, out: _Findings, manifest_bytes: bytes | None) -> None:
     """Pre-compressed copies beside a payload (x.json.gz, x.json.br) must decompress to it
     (Python's gzip and brotli modules), and their lengths must be the manifest's sizes."""
     import contextlib
@@ -109,8 +107,9 @@ def _check_siblings(path: Path, data: bytes, out: _Findings,
         sib = path.with_name(path.name + suffix)
         if not sib.is_file():
             if isinstance(listed, dict) and measure in listed:
-                out.problems.append(f"{sib.name}: listed in the manifest but missing; run "
-                                    "reduce run again")
+                out.problems.append(
+                    f"{sib.name}: listed in the manifest but missing; run reduce run again"
+                )
             continue
         packed = _read(sib, str(sib))
         try:
@@ -119,11 +118,15 @@ def _check_siblings(path: Path, data: bytes, out: _Findings,
             out.problems.append(f"{sib.name}: not valid {measure} ({e}); run reduce run again")
             continue
         if unpacked != data:
-            out.problems.append(f"{sib.name}: does not decompress to the payload; run reduce "
-                                "run again or delete it")
-        elif isinstance(sizes, dict) and isinstance(listed, dict) and \
-                sizes.get(measure) != len(packed):
-            out.problems.append(f"{sib.name}: {len(packed):,} bytes, but the manifest's "
-                                f"bytes.{measure} is {_show(sizes.get(measure))}")
-
-
+            out.problems.append(
+                f"{sib.name}: does not decompress to the payload; run reduce run again or delete it"
+            )
+        elif (
+            isinstance(sizes, dict)
+            and isinstance(listed, dict)
+            and sizes.get(measure) != len(packed)
+        ):
+            out.problems.append(
+                f"{sib.name}: {len(packed):,} bytes, but the manifest's "
+                f"bytes.{measure} is {_show(sizes.get(measure))}"
+            )

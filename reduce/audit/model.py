@@ -1,5 +1,4 @@
-"""The audit's results and the constants its checks and reports share.
-"""
+"""The audit's results and the constants its checks and reports share."""
 
 from __future__ import annotations
 
@@ -38,7 +37,6 @@ SLOW_LINK_BITS_PER_SECOND = 1_000_000
 TRANSFER_ASSUMPTION = f"a {SLOW_LINK_NAME} of 1 Mbit/s assumed"
 
 
-
 _JSON_SUFFIXES = frozenset({".json", ".geojson"})
 _CSV_SUFFIXES = frozenset({".csv"})
 _ARROW_SUFFIXES = frozenset({".arrow", ".feather"})
@@ -61,7 +59,6 @@ KIND_LABELS = {
     "json": "JSON (other layout)",
     "other": "other (sizes only)",
 }
-
 
 
 # --------------------------------------------------------------------------------------------
@@ -204,7 +201,6 @@ def advice(elements: int) -> str:
 def transfer_seconds(nbytes: int) -> float:
     """Seconds to transfer ``nbytes`` on the assumed slow link (1 Mbit/s, no latency)."""
     return nbytes * 8 / SLOW_LINK_BITS_PER_SECOND
-
 
 
 class _Findings:

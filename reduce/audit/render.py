@@ -1,5 +1,4 @@
-"""Rendering an audit report: a text table, Markdown for a pull request, JSON.
-"""
+"""Rendering an audit report: a text table, Markdown for a pull request, JSON."""
 
 from __future__ import annotations
 
@@ -36,8 +35,7 @@ _SURFACE_NOTE = (
     "WebGL (GPU) beyond."
 )
 _TRANSFER_NOTE = (
-    f"Transfer time: gzip bytes on {TRANSFER_ASSUMPTION} (our assumption), latency not "
-    "included."
+    f"Transfer time: gzip bytes on {TRANSFER_ASSUMPTION} (our assumption), latency not included."
 )
 _PRECISION_NOTE = (
     f"More than {PRECISION_DECIMALS} decimals is finer than about 0.1 m in degrees "
@@ -88,8 +86,10 @@ def render_table(report: AuditReport) -> str:
         if f.fields:
             on, total = _share_basis(f)
             width = max(len("field"), *(len(c.name) for c in f.fields))
-            lines.append(f"  {'field':<{width}}  {'raw bytes':>13}  {on + ' bytes':>13}  "
-                         f"{'share':>6}  >6 decimals")
+            lines.append(
+                f"  {'field':<{width}}  {'raw bytes':>13}  {on + ' bytes':>13}  "
+                f"{'share':>6}  >6 decimals"
+            )
             for c in f.fields:
                 part = _share_of(c, on)
                 lines.append(
@@ -140,8 +140,9 @@ def _md(text: str) -> str:
 
 def render_markdown(report: AuditReport) -> str:
     """A Markdown summary to paste into a pull request."""
-    head = ("| file | layout | raw | gzip | brotli | elements | surface | "
-            f"{SLOW_LINK_NAME} | budget |")
+    head = (
+        f"| file | layout | raw | gzip | brotli | elements | surface | {SLOW_LINK_NAME} | budget |"
+    )
     rule = "| --- | --- | ---: | ---: | ---: | ---: | --- | ---: | --- |"
     lines = ["### reduce audit", "", head, rule]
     for f in report.files:
@@ -228,8 +229,12 @@ def report_to_json(report: AuditReport) -> bytes:
                 "surface": f.surface,
                 "transfer_seconds": round(f.transfer_seconds, 3),
                 "fields": [
-                    {"name": c.name, "bytes": c.bytes, "too_precise": c.too_precise,
-                     "measured": {"on": c.on, "bytes": c.share}}
+                    {
+                        "name": c.name,
+                        "bytes": c.bytes,
+                        "too_precise": c.too_precise,
+                        "measured": {"on": c.on, "bytes": c.share},
+                    }
                     for c in f.fields
                 ],
                 "budget": _verdict_json(f.budget),
@@ -241,7 +246,9 @@ def report_to_json(report: AuditReport) -> bytes:
         "total": _verdict_json(report.total),
         "total_size": report.total_size,
         "findings": [{"path": p, "message": m} for p, m in report.findings],
-        "commits": [{"journal": c.journal, "completed": c.completed, "message": c.message}
-                    for c in report.commits],
+        "commits": [
+            {"journal": c.journal, "completed": c.completed, "message": c.message}
+            for c in report.commits
+        ],
     }
     return orjson.dumps(doc, option=orjson.OPT_INDENT_2 | orjson.OPT_APPEND_NEWLINE)

@@ -90,42 +90,52 @@ def load_boundaries(path: Path, id_property: str) -> Boundaries:
     except FileNotFoundError:
         raise SourceError(f"{path}: boundaries file not found; check the path") from None
     except IsADirectoryError:
-        raise SourceError(f"{path}: is a folder, not a boundaries file; "
-                          "name a GeoJSON file") from None
+        raise SourceError(
+            f"{path}: is a folder, not a boundaries file; name a GeoJSON file"
+        ) from None
     except OSError as e:
-        raise SourceError(f"{path}: cannot read the boundaries file ({e.strerror}); "
-                          "check its permissions") from None
+        raise SourceError(
+            f"{path}: cannot read the boundaries file ({e.strerror}); check its permissions"
+        ) from None
     try:
         doc = orjson.loads(raw)
     except orjson.JSONDecodeError as e:
-        raise SourceError(f"{path}: not valid JSON (line {e.lineno}, column {e.colno}); "
-                          "save the boundaries as GeoJSON (RFC 7946)") from None
+        raise SourceError(
+            f"{path}: not valid JSON (line {e.lineno}, column {e.colno}); "
+            "save the boundaries as GeoJSON (RFC 7946)"
+        ) from None
     kind = doc.get("type") if isinstance(doc, dict) else type(doc).__name__
     if not isinstance(doc, dict) or kind != "FeatureCollection":
-        raise SourceError(f"{path}: not a GeoJSON FeatureCollection (top-level type is "
-                          f"{kind!r}); save the boundaries as a FeatureCollection of "
-                          "Polygon or MultiPolygon features")
+        raise SourceError(
+            f"{path}: not a GeoJSON FeatureCollection (top-level type is "
+            f"{kind!r}); save the boundaries as a FeatureCollection of "
+            "Polygon or MultiPolygon features"
+        )
     features = doc.get("features")
     if not isinstance(features, list):
-        raise SourceError(f"{path}: the FeatureCollection has no \"features\" list; "
-                          "save the boundaries as a FeatureCollection of Polygon or "
-                          "MultiPolygon features")
+        raise SourceError(
+            f'{path}: the FeatureCollection has no "features" list; '
+            "save the boundaries as a FeatureCollection of Polygon or "
+            "MultiPolygon features"
+        )
     if not features:
-        raise SourceError(f"{path}: the FeatureCollection has no features; "
-                          "add the region polygons")
+        raise SourceError(f"{path}: the FeatureCollection has no features; add the region polygons")
     first_seen: dict[str, int] = {}
     regions: list[tuple[str, Any]] = []
     for i, feature in enumerate(features):
         region_id = _feature_id(path, i, feature, id_property)
         if region_id in first_seen:
-            raise SourceError(f"{path}: id {region_id!r} (property {id_property!r}) appears "
-                              f"in features {first_seen[region_id]} and {i}; make the ids "
-                              "unique, or merge those features into one MultiPolygon")
+            raise SourceError(
+                f"{path}: id {region_id!r} (property {id_property!r}) appears "
+                f"in features {first_seen[region_id]} and {i}; make the ids "
+                "unique, or merge those features into one MultiPolygon"
+            )
         first_seen[region_id] = i
         regions.append((region_id, _feature_geometry(path, i, region_id, feature)))
     regions.sort(key=lambda r: r[0])
-    return Boundaries(ids=tuple(r[0] for r in regions), geoms=tuple(r[1] for r in regions),
-                      path=path)
+    return Boundaries(
+        ids=tuple(r[0] for r in regions), geoms=tuple(r[1] for r in regions), path=path
+    )
 
 
 def region_labels(path: Path, id_property: str, label_property: str) -> dict[str, str]:
@@ -138,9 +148,11 @@ def region_labels(path: Path, id_property: str, label_property: str) -> dict[str
         region_id = _feature_id(path, i, feature, id_property)
         value = (feature.get("properties") or {}).get(label_property)
         if isinstance(value, bool) or not isinstance(value, (str, int, float)):
-            raise SourceError(f"{shown_path(path)}: feature {i} ({region_id!r}) has no text "
-                              f"{label_property!r} property (group.region.label); give every "
-                              "feature one or name another property")
+            raise SourceError(
+                f"{shown_path(path)}: feature {i} ({region_id!r}) has no text "
+                f"{label_property!r} property (group.region.label); give every "
+                "feature one or name another property"
+            )
         out[region_id] = value if isinstance(value, str) else str(value)
     del b
     return out
@@ -148,20 +160,26 @@ def region_labels(path: Path, id_property: str, label_property: str) -> dict[str
 
 def _feature_id(path: Path, i: int, feature: Any, id_property: str) -> str:
     if not isinstance(feature, dict) or feature.get("type") != "Feature":
-        raise SourceError(f"{path}: feature {i} is not a GeoJSON Feature object; "
-                          "write each region as {\"type\": \"Feature\", \"geometry\": ..., "
-                          "\"properties\": ...}")
+        raise SourceError(
+            f"{path}: feature {i} is not a GeoJSON Feature object; "
+            'write each region as {"type": "Feature", "geometry": ..., '
+            '"properties": ...}'
+        )
     props = feature.get("properties")
     value = props.get(id_property) if isinstance(props, dict) else None
     if value is None:
-        raise SourceError(f"{path}: feature {i} has no {id_property!r} property; give every "
-                          f"feature an {id_property!r} or name another id property")
+        raise SourceError(
+            f"{path}: feature {i} has no {id_property!r} property; give every "
+            f"feature an {id_property!r} or name another id property"
+        )
     if isinstance(value, str):
         return value
     if isinstance(value, int) and not isinstance(value, bool):
         return str(value)
-    raise SourceError(f"{path}: feature {i} has {id_property!r} = {value!r}, not a string "
-                      "or an integer; use text ids")
+    raise SourceError(
+        f"{path}: feature {i} has {id_property!r} = {value!r}, not a string "
+        "or an integer; use text ids"
+    )
 
 
 def _feature_geometry(path: Path, i: int, region_id: str, feature: dict[str, Any]) -> Any:
@@ -171,21 +189,34 @@ def _feature_geometry(path: Path, i: int, region_id: str, feature: dict[str, Any
         raise SourceError(f"{where} has no geometry; give it a Polygon or MultiPolygon")
     kind = geometry.get("type")
     if kind not in _POLYGONAL:
-        raise SourceError(f"{where} is a {kind}, not a Polygon or MultiPolygon; region "
-                          "boundaries must be polygons")
+        raise SourceError(
+            f"{where} is a {kind}, not a Polygon or MultiPolygon; region "
+            "boundaries must be polygons"
+        )
     try:
         geom = shapely.force_2d(shape(geometry))
-    except (ValueError, TypeError, KeyError, IndexError, AttributeError,
-            shapely.errors.ShapelyError) as e:
-        raise SourceError(f"{where} has malformed {kind} coordinates ({e}); write closed "
-                          "rings of [longitude, latitude] positions (RFC 7946)") from None
+    except (
+        ValueError,
+        TypeError,
+        KeyError,
+        IndexError,
+        AttributeError,
+        shapely.errors.ShapelyError,
+    ) as e:
+        raise SourceError(
+            f"{where} has malformed {kind} coordinates ({e}); write closed "
+            "rings of [longitude, latitude] positions (RFC 7946)"
+        ) from None
     if geom.is_empty:
-        raise SourceError(f"{where} has an empty geometry; give it coordinates or remove "
-                          "the feature")
+        raise SourceError(
+            f"{where} has an empty geometry; give it coordinates or remove the feature"
+        )
     if not shapely.is_valid(geom):
         reason = shapely.is_valid_reason(geom)
-        raise SourceError(f"{where} is not a valid polygon ({reason}); make it valid, e.g. "
-                          "with shapely.make_valid")
+        raise SourceError(
+            f"{where} is not a valid polygon ({reason}); make it valid, e.g. "
+            "with shapely.make_valid"
+        )
     return geom
 
 
@@ -207,11 +238,11 @@ def assign(lat: np.ndarray, lon: np.ndarray, b: Boundaries) -> np.ndarray:
     out = np.full(flat_lat.size, -1, dtype=np.int32)
     index = b._index
     for start in range(0, flat_lat.size, _CHUNK):
-        y = flat_lat[start:start + _CHUNK]
-        x = flat_lon[start:start + _CHUNK]
+        y = flat_lat[start : start + _CHUNK]
+        x = flat_lon[start : start + _CHUNK]
         with np.errstate(invalid="ignore"):
             valid = (np.abs(y) <= 90.0) & (np.abs(x) <= 180.0)  # False for NaN
-        out[start:start + _CHUNK] = index.locate(x, y, valid)
+        out[start : start + _CHUNK] = index.locate(x, y, valid)
     return out.reshape(lat_a.shape)
 
 
@@ -236,9 +267,11 @@ def assign_expr(lat: str, lon: str, b: Boundaries) -> pl.Expr:
         gather = pl.select(pl.when(gather >= 0).then(gather)).to_series()
         return labels.gather(gather).alias("region")
 
-    return (pl.struct([pl.col(lat), pl.col(lon)])
-            .map_batches(regions, return_dtype=pl.String, is_elementwise=True)
-            .alias("region"))
+    return (
+        pl.struct([pl.col(lat), pl.col(lon)])
+        .map_batches(regions, return_dtype=pl.String, is_elementwise=True)
+        .alias("region")
+    )
 
 
 def _float_array(s: pl.Series) -> np.ndarray:
@@ -249,8 +282,9 @@ def _float_array(s: pl.Series) -> np.ndarray:
 # ------------------------------------------------------------------------------- the grid index
 
 
-def _first_covering(geoms: tuple[Any, ...], bounds: np.ndarray, x: np.ndarray,
-                    y: np.ndarray) -> np.ndarray:
+def _first_covering(
+    geoms: tuple[Any, ...], bounds: np.ndarray, x: np.ndarray, y: np.ndarray
+) -> np.ndarray:
     """Exact: index of the first polygon (in order) covering each point, else -1."""
     out = np.full(x.size, -1, dtype=np.int32)
     todo = np.arange(x.size)
@@ -335,8 +369,16 @@ class _GridIndex:
         owner = _first_covering(geoms, bounds, cx, cy)
         dtype = np.int16 if len(geoms) < np.iinfo(np.int16).max else np.int32
         table = np.where(free, owner[run_of], _AMBIGUOUS).astype(dtype)
-        return _GridIndex(geoms=geoms, bounds=bounds, x0=x0, y0=y0, scale=scale,
-                          width=width, height=height, table=table)
+        return _GridIndex(
+            geoms=geoms,
+            bounds=bounds,
+            x0=x0,
+            y0=y0,
+            scale=scale,
+            width=width,
+            height=height,
+            table=table,
+        )
 
     def locate(self, x: np.ndarray, y: np.ndarray, valid: np.ndarray) -> np.ndarray:
         with np.errstate(invalid="ignore"):

@@ -138,8 +138,9 @@ def _cut_antimeridian(lon: np.ndarray, lat: np.ndarray, *, north: bool) -> list[
     return [np.asarray(p, dtype=np.float64) for p in pieces]
 
 
-def _crossing(lon: np.ndarray, lat: np.ndarray, i: int, j: int,
-              d: float) -> tuple[float, float, float]:
+def _crossing(
+    lon: np.ndarray, lat: np.ndarray, i: int, j: int, d: float
+) -> tuple[float, float, float]:
     """Where edge i -> j meets the antimeridian: (exit lon, entry lon, latitude)."""
     if d < 0:  # eastward across +180: lon[j] + 360 in the plane where the edge is straight
         exit_x, entry_x, target = 180.0, -180.0, lon[j] + 360.0
@@ -162,8 +163,10 @@ def polygon_geometry(geom: Any, digits: int) -> dict[str, Any]:
     _check_digits(digits)
     kind = shapely.get_type_id(geom)
     if kind not in (3, 6):  # Polygon, MultiPolygon
-        raise ValueError(f"polygon_geometry takes a Polygon or MultiPolygon, "
-                         f"not {getattr(geom, 'geom_type', type(geom).__name__)}")
+        raise ValueError(
+            f"polygon_geometry takes a Polygon or MultiPolygon, "
+            f"not {getattr(geom, 'geom_type', type(geom).__name__)}"
+        )
     polygons = []
     for part in shapely.get_parts(geom):
         if part.is_empty:
@@ -171,8 +174,9 @@ def polygon_geometry(geom: Any, digits: int) -> dict[str, Any]:
         shell = _round_ring(np.asarray(part.exterior.coords)[:, :2], digits, ccw=True)
         if shell is None:
             continue
-        holes = [_round_ring(np.asarray(h.coords)[:, :2], digits, ccw=False)
-                 for h in part.interiors]
+        holes = [
+            _round_ring(np.asarray(h.coords)[:, :2], digits, ccw=False) for h in part.interiors
+        ]
         polygons.append([shell, *(h for h in holes if h is not None)])
     if kind == 3:
         return {"type": "Polygon", "coordinates": polygons[0] if polygons else []}
@@ -194,14 +198,20 @@ def _plain(name: str, value: Any) -> Any:
         return value if math.isfinite(value) else None
     if isinstance(value, int):
         if abs(value) > MAX_SAFE_INT:
-            raise ValueError(f"property {name!r} holds {value}, beyond ±2^53, which a browser "
-                             "cannot represent exactly; scale it down or write it as text")
+            raise ValueError(
+                f"property {name!r} holds {value}, beyond ±2^53, which a browser "
+                "cannot represent exactly; scale it down or write it as text"
+            )
         return value
     return value
 
 
-def feature_collection(geometries: list[dict[str, Any]], properties: dict[str, list[Any]], *,
-                       extra: dict[str, Any] | None = None) -> bytes:
+def feature_collection(
+    geometries: list[dict[str, Any]],
+    properties: dict[str, list[Any]],
+    *,
+    extra: dict[str, Any] | None = None,
+) -> bytes:
     """An RFC 7946 FeatureCollection as orjson bytes: one Feature per geometry, in order.
 
     ``properties`` maps each property name to one value per geometry (its order is the
@@ -216,8 +226,11 @@ def feature_collection(geometries: list[dict[str, Any]], properties: dict[str, l
             raise ValueError(f"property {name!r} has {len(values)} values for {n} geometries")
         columns.append((name, [_plain(name, v) for v in values]))
     features = [
-        {"type": "Feature", "geometry": geometry,
-         "properties": {name: values[i] for name, values in columns}}
+        {
+            "type": "Feature",
+            "geometry": geometry,
+            "properties": {name: values[i] for name, values in columns},
+        }
         for i, geometry in enumerate(geometries)
     ]
     doc: dict[str, Any] = {"type": "FeatureCollection", "features": features}

@@ -109,8 +109,9 @@ def _rings_of(geoms: Sequence[Any]) -> list[tuple[int, int, int, np.ndarray]]:
     return rings
 
 
-def _add_t_junctions(rings: list[tuple[int, int, int, np.ndarray]]
-                     ) -> list[tuple[int, int, int, np.ndarray]]:
+def _add_t_junctions(
+    rings: list[tuple[int, int, int, np.ndarray]],
+) -> list[tuple[int, int, int, np.ndarray]]:
     """Insert into each ring the vertices (of any ring) that lie exactly on its edges."""
     coords = [r[3] for r in rings]
     a = np.concatenate(coords)
@@ -132,8 +133,12 @@ def _add_t_junctions(rings: list[tuple[int, int, int, np.ndarray]]
     for r, (k, p, h, c) in enumerate(rings):
         mine = ring_of[si] == r
         if mine.any():
-            pos = np.concatenate([np.arange(len(c), dtype=np.float64),
-                                  index_in_ring[si[mine]] + np.clip(t[mine], 1e-12, 1 - 1e-12)])
+            pos = np.concatenate(
+                [
+                    np.arange(len(c), dtype=np.float64),
+                    index_in_ring[si[mine]] + np.clip(t[mine], 1e-12, 1 - 1e-12),
+                ]
+            )
             c = np.vstack([c, v[mine]])[np.argsort(pos, kind="stable")]
         out.append((k, p, h, c))
     return out
@@ -147,7 +152,7 @@ def arcs_of(geoms: Sequence[Any]) -> Topology:
     vid = vid.ravel()
     nv = len(vertices)
     bounds = np.cumsum([0] + [len(r[3]) for r in rings])
-    ring_ids = [vid[bounds[i]:bounds[i + 1]] for i in range(len(rings))]
+    ring_ids = [vid[bounds[i] : bounds[i + 1]] for i in range(len(rings))]
     # Undirected edges and the polygons owning each.
     u = np.concatenate(ring_ids)
     v = np.concatenate([np.roll(w, -1) for w in ring_ids])
@@ -182,7 +187,7 @@ def arcs_of(geoms: Sequence[Any]) -> Topology:
         walk = np.append(w, w[0])
         used = []
         for a, b in itertools.pairwise(cuts):
-            seq = tuple(walk[a:b + 1].tolist())
+            seq = tuple(walk[a : b + 1].tolist())
             rev = seq[::-1]
             canon = min(seq, rev)
             i = arc_index.get(canon)
@@ -194,8 +199,13 @@ def arcs_of(geoms: Sequence[Any]) -> Topology:
             used.append((i, seq == canon))
         ring_arcs.append((k, p, h, tuple(used)))
     multi = tuple(shapely.get_type_id(g) == 6 for g in geoms)
-    return Topology(vertices=vertices, arcs=tuple(arcs), rings=tuple(ring_arcs),
-                    owners=tuple(tuple(sorted(o)) for o in arc_owners), multi=multi)
+    return Topology(
+        vertices=vertices,
+        arcs=tuple(arcs),
+        rings=tuple(ring_arcs),
+        owners=tuple(tuple(sorted(o)) for o in arc_owners),
+        multi=multi,
+    )
 
 
 # ----------------------------------------------------------------------------- simplification
@@ -230,8 +240,9 @@ def simplify_shared(b: Boundaries, tolerance: float) -> tuple[Any, ...]:
     tol = np.full(len(topo.arcs), float(tolerance))
     round_ = 0
     while True:
-        lines = np.where(tol > 0, shapely.simplify(original, tol, preserve_topology=False),
-                         original)
+        lines = np.where(
+            tol > 0, shapely.simplify(original, tol, preserve_topology=False), original
+        )
         bad, _ = _arc_faults(lines, closed, known)
         if not bad:
             built, bad = _rebuild(topo, lines)
@@ -247,8 +258,9 @@ def simplify_shared(b: Boundaries, tolerance: float) -> tuple[Any, ...]:
         round_ += 1
 
 
-def _arc_faults(lines: np.ndarray, closed: np.ndarray,
-                known: set[tuple[int, int]]) -> tuple[set[int], set[tuple[int, int]]]:
+def _arc_faults(
+    lines: np.ndarray, closed: np.ndarray, known: set[tuple[int, int]]
+) -> tuple[set[int], set[tuple[int, int]]]:
     """Arcs at fault, and the pairs of arcs that meet anywhere but at their shared ends."""
     bad: set[int] = set()
     counts = shapely.get_num_coordinates(lines)
@@ -313,8 +325,11 @@ def _rebuild(topo: Topology, lines: np.ndarray) -> tuple[tuple[Any, ...], set[in
         parts[k].append(poly)
     built = []
     for k in range(n):
-        geom = (shapely.MultiPolygon(parts[k]) if topo.multi[k]
-                else (parts[k][0] if parts[k] else shapely.Polygon()))
+        geom = (
+            shapely.MultiPolygon(parts[k])
+            if topo.multi[k]
+            else (parts[k][0] if parts[k] else shapely.Polygon())
+        )
         if geom.is_empty or not shapely.is_valid(geom):
             bad.update(arcs_of_polygon[k])
         built.append(geom)
@@ -357,7 +372,7 @@ def quantize(geoms: Sequence[Any], digits: int) -> tuple[Any, ...]:
     arr = np.asarray(list(geoms), dtype=object)
     if arr.size == 0:
         return ()
-    grid = 10.0 ** -digits
+    grid = 10.0**-digits
     noded = shapely.union_all(shapely.boundary(arr), grid_size=grid)
     faces = shapely.get_parts(shapely.polygonize(shapely.get_parts(noded)))
     owner = np.full(len(faces), -1)
@@ -373,8 +388,9 @@ def quantize(geoms: Sequence[Any], digits: int) -> tuple[Any, ...]:
     for k, geom in enumerate(arr):
         mine = faces[owner == k]
         if len(mine) == 0:
-            out.append(shapely.MultiPolygon() if shapely.get_type_id(geom) == 6
-                       else shapely.Polygon())
+            out.append(
+                shapely.MultiPolygon() if shapely.get_type_id(geom) == 6 else shapely.Polygon()
+            )
             continue
         merged = shapely.coverage_union_all(mine) if len(mine) > 1 else mine[0]
         if not shapely.is_valid(merged):  # a ring pinched to a point: split it into parts
