@@ -367,7 +367,7 @@ def scan_partial(
                 raise OutputError(
                     f"{folder.parent}: cannot write the scan's keyed rows "
                     f"({why}); free space there or point REDUCE_CACHE_DIR (TMPDIR "
-                    "with --no-cache) at a disk with room for about 16 bytes per "
+                    "with --no-cache) at a disk with room for about 25 bytes per "
                     "event"
                 ) from None
             return _spilled(recipe, label, keys, folder, input_rows, renamed, floats, check=whole)

@@ -243,7 +243,7 @@ def test_full_disk_while_spilling_is_one_line_exit_2_and_nothing_left(
         (
             f"error: {cache}: cannot write the scan's keyed rows (No space left on device); free "
             "space there or point REDUCE_CACHE_DIR (TMPDIR with --no-cache) at a disk with room "
-            "for about 16 bytes per event"
+            "for about 25 bytes per event"
         )
     ]
     assert not (tmp_path / "case" / "out").exists()
