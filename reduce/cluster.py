@@ -97,6 +97,11 @@ def using(address: str | None) -> Iterator[str | None]:
             raise ClusterError(
                 f"--cluster {address}: give a scheduler address such as tcp://host:8786, or local:N"
             )
+        else:
+            # The scheduler must answer now, even when every file's partial is cached and
+            # nothing is sent to it: a wrong address fails the run it was given to.
+            with _client(address):
+                pass
         _address = address
         yield address
     finally:

@@ -264,3 +264,38 @@ def test_a_file_the_worker_sees_otherwise_is_refused(tmp_path: Path, address: st
     random_events(np.random.default_rng(2), 120).write_parquet(path)  # rewritten meanwhile
     with pytest.raises(SourceError, match="part-0.parquet: differs on the worker"):
         cluster.scan_files(address, recipe, [seen])
+
+
+def test_a_scheduler_that_does_not_answer_fails_even_when_nothing_needs_scanning(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Every file's partial is cached by a first run, so the run with --cluster would send
+    # nothing to the cluster: the wrong address still fails it, before anything is written.
+    _split(random_events(np.random.default_rng(1), 300), tmp_path)
+    recipe = _recipe(
+        tmp_path,
+        {
+            "source": {"path": "ev/*.parquet", "lat": "lat", "lon": "lon"},
+            "group": {"hex": {"levels": [7]}},
+        },
+    )
+    first = CliRunner().invoke(main, ["run", str(recipe), "--quiet", "--out", str(tmp_path / "a")])
+    assert first.exit_code == 0, first.output
+    monkeypatch.setenv("REDUCE_CLUSTER_TIMEOUT", "1")
+    out = CliRunner().invoke(
+        main,
+        [
+            "run",
+            str(recipe),
+            "--quiet",
+            "--out",
+            str(tmp_path / "b"),
+            "--cluster",
+            "tcp://127.0.0.1:1",
+        ],
+    )
+    assert out.exit_code == 2
+    lines = out.stderr.strip().splitlines()
+    assert len(lines) == 1
+    assert lines[0].startswith("error: cluster tcp://127.0.0.1:1: the scheduler does not answer")
+    assert not (tmp_path / "b").exists()
