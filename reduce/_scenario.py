@@ -37,6 +37,8 @@ import shapely
 from numpy.typing import NDArray
 from shapely.geometry.polygon import orient
 
+from reduce._util.atomic import temp_path, write_atomic
+
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
 
@@ -818,7 +820,7 @@ def _build_forwards(
 
 
 def _temp_path(path: Path) -> Path:
-    return path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    return temp_path(path)
 
 
 def _replace_durably(tmp: Path, path: Path) -> None:
@@ -829,13 +831,7 @@ def _replace_durably(tmp: Path, path: Path) -> None:
 
 def _atomic_write(path: Path, data: bytes) -> None:
     path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = _temp_path(path)
-    try:
-        tmp.write_bytes(data)
-        _replace_durably(tmp, path)
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
+    write_atomic(path, data, durable=True)
 
 
 def _write_parquet(frame: pl.DataFrame, path: Path) -> None:

@@ -43,6 +43,7 @@ from pathlib import Path
 import orjson
 import polars as pl
 
+from reduce._util.atomic import write_atomic
 from reduce._util.procs import process_alive
 from reduce._version import __version__
 from reduce.aggregate import Accounting, Partial, Spilled
@@ -215,9 +216,7 @@ def _sums(entry: Path) -> dict[str, str]:
 
 def _write_sums(entry: Path, sums: dict[str, str]) -> None:
     data = orjson.dumps({"format": SUMS_FORMAT, "sha256": dict(sorted(sums.items()))})
-    tmp = entry / f".{SUMS}.{os.getpid()}.tmp"
-    tmp.write_bytes(data)
-    os.replace(tmp, entry / SUMS)
+    write_atomic(entry / SUMS, data)
 
 
 def _digest_file(path: Path) -> str:
@@ -244,14 +243,7 @@ def write_file(entry_dir: Path, name: str, data: bytes) -> None:
         raise ValueError(f"cache file name {name!r} must be a relative path inside the entry")
     path = entry_dir / name
     path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
-    try:
-        tmp.write_bytes(data)
-        os.replace(tmp, path)
-    except BaseException:
-        with contextlib.suppress(OSError):
-            tmp.unlink()
-        raise
+    write_atomic(path, data)
     with _sums_lock(entry_dir):
         try:
             sums = _sums(entry_dir)

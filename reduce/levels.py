@@ -23,10 +23,8 @@ does not match its record, is treated as absent, never used. This module imports
 
 from __future__ import annotations
 
-import contextlib
 import dataclasses
 import hashlib
-import os
 import zlib
 from collections.abc import Callable, Iterator, Mapping
 from dataclasses import asdict, dataclass, field
@@ -35,6 +33,7 @@ from typing import Any
 
 import orjson
 
+from reduce._util.atomic import write_atomic
 from reduce.contract import LEVELS_FORMAT
 
 # The ladder axes, in the order levels are shown and keyed.
@@ -342,12 +341,8 @@ class Store:
 
 
 def _write_atomic(path: Path, data: bytes) -> bool:
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
     try:
-        tmp.write_bytes(data)
-        os.replace(tmp, path)
-        return True
+        write_atomic(path, data)
     except OSError:
-        with contextlib.suppress(OSError):
-            tmp.unlink()
         return False
+    return True

@@ -742,15 +742,11 @@ def write_previews(payload: Path, *, out_dir: Path | None = None, reader: bool =
 
 def write_atomic(path: Path, data: bytes) -> None:
     """Write to a temporary file in the same folder, then rename over ``path``."""
-    import os
+    from reduce._util import atomic
 
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
     try:
-        with open(tmp, "wb") as f:
-            f.write(data)
-        os.replace(tmp, path)
+        atomic.write_atomic(path, data)
     except OSError as e:
-        tmp.unlink(missing_ok=True)
         raise PreviewError(
             f"{path}: cannot write the preview ({e.strerror}); check the "
             "folder's permissions and free space"
