@@ -533,24 +533,34 @@ def store(
         finally:
             if fd is not None:
                 os.close(fd)
+    try:
+        with _new_entry(root, key) as tmp:
+            write_file(tmp, "table.parquet", _parquet_bytes(p.table))
+            names = sorted(p.pairs)
+            for i, name in enumerate(names):
+                write_file(tmp, f"pairs-{i}.parquet", _parquet_bytes(p.pairs[name]))
+                write_file(tmp, f"values-{i}.parquet", _parquet_bytes(p.values[name].to_frame("v")))
+            meta = {**_meta(p), "recipe": recipe, "pairs": names}
+            write_file(tmp, "meta.json", orjson.dumps(meta))
+    except OSError:
+        return None
+    if drop_others:
+        _drop_others(root, key, recipe)
+    return p
+
+
+@contextlib.contextmanager
+def _new_entry(root: Path, key: str) -> Iterator[Path]:
+    """A temporary folder to fill with an entry's files, renamed to the entry ``key`` when
+    the block ends without error; whatever happens otherwise (a full disk, a signal), no
+    half-written entry stays behind."""
     tmp = root / f".{key}.{os.getpid()}.tmp"
     try:
         tmp.mkdir(parents=True, exist_ok=True)
         (tmp / _LOCK).touch()
-        write_file(tmp, "table.parquet", _parquet_bytes(p.table))
-        names = sorted(p.pairs)
-        for i, name in enumerate(names):
-            write_file(tmp, f"pairs-{i}.parquet", _parquet_bytes(p.pairs[name]))
-            write_file(tmp, f"values-{i}.parquet", _parquet_bytes(p.values[name].to_frame("v")))
-        write_file(tmp, "meta.json", orjson.dumps({**_meta(p), "recipe": recipe, "pairs": names}))
-        os.replace(tmp, final)
-        if drop_others:
-            _drop_others(root, key, recipe)
-        return p
-    except OSError:
-        return None
+        yield tmp
+        os.replace(tmp, root / key)
     finally:
-        # Whatever happened (a full disk, a signal), no half-written entry stays behind.
         if tmp.exists():
             shutil.rmtree(tmp, ignore_errors=True)
 
@@ -598,19 +608,14 @@ def mark_files(key: str, files: list[str], *, recipe: str) -> Path | None:
     final = root / key
     if final.is_dir() and not _remove_if_damaged(final):
         return final
-    tmp = root / f".{key}.{os.getpid()}.tmp"
     try:
-        tmp.mkdir(parents=True, exist_ok=True)
-        (tmp / _LOCK).touch()
-        write_file(tmp, "meta.json", orjson.dumps({"files": sorted(files), "recipe": recipe}))
-        os.replace(tmp, final)
-        _drop_others(root, key, recipe)
-        return final
+        with _new_entry(root, key) as tmp:
+            meta = {"files": sorted(files), "recipe": recipe}
+            write_file(tmp, "meta.json", orjson.dumps(meta))
     except OSError:
         return None
-    finally:
-        if tmp.exists():
-            shutil.rmtree(tmp, ignore_errors=True)
+    _drop_others(root, key, recipe)
+    return final
 
 
 def remove(key: str) -> bool:
