@@ -501,10 +501,12 @@ def rollup_spilled_parts(
     hex_res: int | None,
     time_bin: TimeBin | None,
     keys_only: bool = False,
+    where: pl.Expr | None = None,
 ) -> Iterator[pl.DataFrame]:
     """The table of a level (the finest included) from spilled keyed rows, part by part:
     the same aggregation the scan would have done, in memory for one part at a time
-    (``keys_only``: just the level's distinct keys, which is all a row count needs)."""
+    (``keys_only``: just the level's distinct keys, which is all a row count needs;
+    ``where``: only the spilled rows it holds true for, e.g. a sample of cells)."""
     mapping = coarsen(
         recipe, hex_res=hex_res, time_bin=time_bin, from_hex=s.hex_res, from_time=s.time_bin
     )
@@ -518,7 +520,7 @@ def rollup_spilled_parts(
             a for a in _scan_aggs(renamed, floats) if not a.meta.output_name().startswith("__ovf")
         ]
     for i in range(len(s.parts)):
-        lf = s.frame(i)
+        lf = s.frame(i) if where is None else s.frame(i).filter(where)
         if keys_only:
             yield (
                 lf.select([*s.keys, *hidden_below(recipe, None)])
@@ -555,10 +557,15 @@ def split_cells(recipe: Recipe, s: Spilled, hex_res: int | None) -> pl.Series | 
 
 
 def rollup_spilled(
-    recipe: Recipe, s: Spilled, *, hex_res: int | None, time_bin: TimeBin | None
+    recipe: Recipe,
+    s: Spilled,
+    *,
+    hex_res: int | None,
+    time_bin: TimeBin | None,
+    where: pl.Expr | None = None,
 ) -> Partial:
     """The partial at a level from spilled keyed rows (see :func:`rollup_spilled_parts`)."""
-    tables = list(rollup_spilled_parts(recipe, s, hex_res=hex_res, time_bin=time_bin))
+    tables = list(rollup_spilled_parts(recipe, s, hex_res=hex_res, time_bin=time_bin, where=where))
     table = pl.concat(tables, how="vertical_relaxed") if tables else pl.DataFrame()
     return Partial(
         keys=s.keys,

@@ -250,6 +250,9 @@ class Store:
         self._bad_payload: tuple[type[BaseException], ...] = (zlib.error, *self._errors)
         self.records: dict[str, Record] = {}
         self.counts: dict[str, int] = {}  # rows of levels counted, not measured
+        # levels judged by a sample: {"rows", "sample_rows", "every", "<measure>": the
+        # sample's fast length scaled to the level's rows} (evidence only, see measure.py)
+        self.samples: dict[str, dict[str, int]] = {}
         self.dirty = False
         if folder is not None:
             self._load()
@@ -270,9 +273,13 @@ class Store:
                 return
             records = {level_id(r["level"]): Record(**r) for r in doc["records"]}
             counts = {str(k): int(v) for k, v in doc.get("counts", {}).items()}
+            samples = {
+                str(k): {str(m): int(n) for m, n in v.items()}
+                for k, v in doc.get("samples", {}).items()
+            }
         except self._bad_store:
             return
-        self.records, self.counts = records, counts
+        self.records, self.counts, self.samples = records, counts, samples
 
     def get(self, level: Mapping[str, Any]) -> Record | None:
         return self.records.get(level_id(level))
@@ -294,6 +301,34 @@ class Store:
         if self.counts.get(k) != rows:
             self.counts[k] = rows
             self.dirty = True
+
+    def sample(self, level: Mapping[str, Any]) -> dict[str, int] | None:
+        """What a sample of the level showed (see :meth:`put_sample`), if taken before."""
+        return self.samples.get(level_id(level))
+
+    def put_sample(self, level: Mapping[str, Any], figures: Mapping[str, int]) -> None:
+        """Keep what a sample of a level showed, merged with what earlier samples showed."""
+        k = level_id(level)
+        new = {**self.samples.get(k, {}), **figures}
+        if self.samples.get(k) != new:
+            self.samples[k] = new
+            self.dirty = True
+
+    def ratio(self, on: str, default: float) -> float:
+        """The median of exact length / sample estimate over levels that have both: how a
+        sample's scaled fast compression relates to the exact one on this recipe's payloads
+        (``default`` until some level has both)."""
+        seen = sorted(
+            exact / est
+            for k, rec in self.records.items()
+            if (exact := rec.size(on)) is not None
+            and (est := self.samples.get(k, {}).get(on)) is not None
+            and est > 0
+        )
+        if not seen:
+            return default
+        mid = len(seen) // 2
+        return seen[mid] if len(seen) % 2 else (seen[mid - 1] + seen[mid]) / 2
 
     def payload(self, level: Mapping[str, Any]) -> bytes | None:
         """The kept payload bytes of a level, if kept and intact (sha256 checked)."""
@@ -332,6 +367,7 @@ class Store:
             "format": FORMAT,
             "records": [asdict(r) for _, r in sorted(self.records.items())],
             "counts": dict(sorted(self.counts.items())),
+            "samples": dict(sorted(self.samples.items())),
         }
         try:
             self._write(self.folder, self.file_name, orjson.dumps(doc))

@@ -152,20 +152,33 @@ def fit(
             default=0,
         )
 
-    def evaluate(level: Mapping[str, Any], *, force_exact: bool = False) -> bsearch.Candidate:
+    def settled(c: bsearch.Candidate, force_exact: bool, verify: bool, full: bool) -> bool:
+        """Whether a candidate evaluated before answers as asked: ``force_exact``, every
+        measure exact; ``verify``, the budget's measure exact (or an exact compression
+        stopped over the limit); ``full``, judged on the level's whole payload."""
+        if force_exact:
+            return (
+                not c.estimated
+                and c.gzip is not None
+                and not (c.brotli is None and b is not None and b.on == "brotli")
+            )
+        if verify and b is not None:
+            return not c.estimated and (c.size(b.on) is not None or c.note.startswith(">"))
+        return not (full and c.estimated)
+
+    def evaluate(
+        level: Mapping[str, Any],
+        *,
+        force_exact: bool = False,
+        verify: bool = False,
+        full: bool = False,
+    ) -> bsearch.Candidate:
         level = Level.of(level)
         k = bsearch.level_key(level)
         c = cands.get(k)
-        if c is not None and not (
-            force_exact
-            and (
-                c.estimated
-                or c.gzip is None
-                or (c.brotli is None and b is not None and b.on == "brotli")
-            )
-        ):
+        if c is not None and settled(c, force_exact, verify, full):
             return c
-        if use_estimates and not force_exact and b is not None:
+        if use_estimates and not (force_exact or verify or full) and b is not None:
             per_row = [
                 x.floor / x.rows
                 for x in cands.values()
@@ -177,17 +190,28 @@ def fit(
                     c = red.estimate(level, b.on, min(per_row), b.max, rows=bound)
                     cands[k] = c
                     return c
+            if red.known_count(level) is None:
                 red.progress(f"counting rows of {bsearch.describe_level(level)}")
-                rows = red.row_count(level)
-                counted.append((level, rows))
-                if rows * min(per_row) > margin * b.max:
-                    c = red.estimate(level, b.on, min(per_row), b.max)
-                    cands[k] = c
-                    red.forget(level)
-                    return c
+            rows = red.row_count(level)
+            counted.append((level, rows))
+            if per_row and rows * min(per_row) > margin * b.max:
+                c = red.estimate(level, b.on, min(per_row), b.max)
+                cands[k] = c
+                red.forget(level)
+                return c
+            # A sample of the level's cells: far enough from the limit, its estimate is the
+            # verdict (steering only: the chosen level is measured exactly below).
+            sampled = red.sampled(level, b.on, b.max)
+            if sampled is not None:
+                cands[k] = sampled
+                return sampled
         red.progress(f"measuring {bsearch.describe_level(level)}")
         c = red.candidate(
-            level, exact=exact or force_exact, on=b.on if b else None, limit=b.max if b else None
+            level,
+            exact=exact or force_exact,
+            on=b.on if b else None,
+            limit=b.max if b else None,
+            quick=not verify,
         )
         cands[k] = c
         counted.append((level, c.rows))
@@ -195,7 +219,7 @@ def fit(
             red.forget(level)  # bounded memory: over-budget levels are never published
         return c
 
-    chosen_level: Level | None
+    chosen_level: Level | None = None
     if every_level:
         for lv in bsearch.all_levels(ladder_axes):
             evaluate(lv)
@@ -203,16 +227,27 @@ def fit(
         chosen_level = Level.of(r.finest_level())
         evaluate(chosen_level, force_exact=True)
     else:
-        res = bsearch.search(ladder_axes, b.order, lambda lv: bool(evaluate(lv).fits))
-        chosen_level = Level.of(res.chosen) if res.chosen is not None else None
-        if chosen_level is None:
-            evaluate(res.coarsest, force_exact=True)
+        # Search on the evidence at hand, then measure the level found exactly. An estimate
+        # that was wrong (a sample said it fits; the exact bytes do not) makes that level's
+        # verdict exact, and the search runs again on it: every round turns one estimated
+        # verdict into an exact one, so this ends.
+        for _ in range(len(bsearch.all_levels(ladder_axes)) + 1):
+            res = bsearch.search(ladder_axes, b.order, lambda lv: bool(evaluate(lv).fits))
+            target = Level.of(res.chosen if res.chosen is not None else res.coarsest)
+            if res.chosen is None:  # the smallest payload is measured exactly for the message
+                if not evaluate(target, force_exact=True).fits:
+                    break
+                continue  # an estimate said over; it fits: search again
+            # Its whole payload first (a cheap check when an estimate was wrong), then every
+            # measure exactly.
+            if evaluate(target, full=True).fits and evaluate(target, force_exact=True).fits:
+                chosen_level = target
+                break
+        else:  # pragma: no cover - every round makes one verdict exact
+            return fit(r, exact=True, every_level=every_level, progress=progress, reducer=red)
     chosen = None
     if chosen_level is not None:
         chosen = evaluate(chosen_level, force_exact=True)
-        if b is not None and not chosen.fits:
-            # A quick judgement was wrong (never seen in practice): measure everything.
-            return fit(r, exact=True, every_level=every_level, progress=progress, reducer=red)
         if b is not None:
             chosen_level = _confirm_neighbours(
                 ladder_axes, chosen_level, cands, evaluate, b.on, b.max
@@ -273,7 +308,7 @@ def _confirm_neighbours(
                 continue  # not evaluated, or its verdict came from an exact compression
             if c.guess is not None and c.guess > (1 + NEIGHBOUR_MARGIN) * limit:
                 continue
-            if evaluate(finer, force_exact=True).fits:
+            if evaluate(finer, verify=True).fits:
                 current = finer
                 moved = True
                 break

@@ -149,14 +149,21 @@ def quick_verdict(on: Measure, limit: int, fast: int, mid: int | None = None) ->
     return QuickLook(None, floor, fast, mid)
 
 
+def fast_length(data: bytes, on: Measure) -> int:
+    """The length of ``data`` at the fast setting of a measure (zlib level 1 in gzip framing,
+    brotli quality 5; raw is its length)."""
+    if on == "raw":
+        return len(data)
+    if on == "gzip":
+        return len(zlib.compress(data, 1)) + 18 - 6  # gzip framing instead of zlib framing
+    return len(brotli.compress(data, quality=5))
+
+
 def quick_look(data: bytes, on: Measure, limit: int) -> QuickLook:
     """Whether a fast compression settles that ``data`` fits ``limit`` on ``on``."""
     if on == "raw":
         return QuickLook(len(data) <= limit, len(data))
-    if on == "gzip":
-        fast = len(zlib.compress(data, 1)) + 18 - 6  # gzip framing instead of zlib framing
-    else:
-        fast = len(brotli.compress(data, quality=5))
+    fast = fast_length(data, on)
     look = quick_verdict(on, limit, fast)
     if look.fits is None and on == "gzip":
         # Too close to call at level 1: level 6 takes a fraction of level 9's time and comes
