@@ -54,7 +54,11 @@ def payload_columns(recipe: Recipe, df: pl.DataFrame) -> list[str]:
 
 
 def sort_rows(recipe: Recipe, df: pl.DataFrame) -> pl.DataFrame:
-    """Deterministic row order: by keys, with a group's remainder row after its categories."""
+    """Deterministic row order: by keys, with a group's remainder row after its categories.
+
+    (Measured: sorting text keys through integer codes in label order was no faster, since
+    polars' multi-column sort and the gather of the rows dominate; the labels are sorted as
+    they are.)"""
     keys = [k for k in recipe.key_names if k in df.columns]
     if not keys:
         return df

@@ -201,6 +201,9 @@ def partials(draw: st.DrawFn) -> pl.DataFrame:
     )
     n = len(keys)
     counts = draw(st.lists(st.integers(1, 4), min_size=n, max_size=n))  # many ties
+    # a float sum's fixed-point total and its count of values (0: the sum is null)
+    sums = draw(st.lists(st.sampled_from([-(2**41), 0, 2**40, 3 * 2**40]), min_size=n, max_size=n))
+    values = draw(st.lists(st.integers(0, 2), min_size=n, max_size=n))
     start = dt.datetime(2025, 1, 1, tzinfo=dt.UTC)
     return pl.DataFrame(
         {
@@ -210,6 +213,8 @@ def partials(draw: st.DrawFn) -> pl.DataFrame:
             "hex": pl.Series([k[1] for k in keys], dtype=pl.UInt64),
             "kind": pl.Series([k[2] for k in keys], dtype=pl.String),
             "__n": pl.Series(counts, dtype=pl.Int64),
+            "__fsum_total": pl.Series(sums, dtype=pl.Int128),
+            "__cnt_total": pl.Series(values, dtype=pl.Int64),
         }
     )
 
@@ -231,7 +236,7 @@ def ranked_recipe(tmp_path_factory: pytest.TempPathFactory) -> Recipe:
     text = (
         RECIPE.replace('region = { column = "region" }\n', "")
         .replace('low = { min = "who" }', "")
-        .replace('total = { sum = "value" }\naverage = { mean = "value" }\n', "")
+        .replace('average = { mean = "value" }\n', "")
     )
     (folder / "recipe.toml").write_text(text)
     return load_recipe(folder / "recipe.toml")
@@ -239,15 +244,19 @@ def ranked_recipe(tmp_path_factory: pytest.TempPathFactory) -> Recipe:
 
 @settings(max_examples=200, deadline=None)
 @given(
-    table=partials(), k=st.integers(1, 4), within=st.sampled_from([("hex", "time"), ("time",), ()])
+    table=partials(),
+    k=st.integers(1, 4),
+    within=st.sampled_from([("hex", "time"), ("time",), ()]),
+    by=st.sampled_from(["events", "total"]),
 )
 def test_ranks_top_k_and_row_order_equal_the_reference(
-    ranked_recipe: Recipe, table: pl.DataFrame, k: int, within: tuple[str, ...]
+    ranked_recipe: Recipe, table: pl.DataFrame, k: int, within: tuple[str, ...], by: str
 ) -> None:
+    """Ranked by a count (one packed integer key) or by a float sum with nulls and ties
+    (the columns sorted as they are), within every key, one key or none."""
     assert ranked_recipe.top is not None
-    r = dataclasses.replace(
-        ranked_recipe, top=dataclasses.replace(ranked_recipe.top, within=within)
-    )
+    top = dataclasses.replace(ranked_recipe.top, within=within, by=by)
+    r = dataclasses.replace(ranked_recipe, top=top)
     p = _partial(r, table)
     ranks = prune.rank_rows(r, p)
     assert ranks.to_list() == prune_v1.rank_rows(r, p).to_list()
