@@ -125,12 +125,15 @@ def _dictionary(s: pl.Series) -> tuple[bytes, bytes] | None:
     order is code-point order, so polars' sort agrees with Python's); a null stays null in
     the indexes. Both sizes are counted from each label's number of rows and the length of
     its JSON text, without writing out the plain column."""
+    import numpy as np
+
     n = s.len()
-    counts = s.drop_nulls().value_counts(name="__count").sort(s.name)
-    if counts.height == n:
+    distinct = s.drop_nulls().unique().sort()
+    if distinct.len() == n:
         return None
-    labels = counts.get_column(s.name).to_list()
-    rows = counts.get_column("__count").to_list()
+    labels = distinct.to_list()
+    codes = s.cast(pl.Enum(labels)).to_physical()
+    rows = np.bincount(codes.drop_nulls().to_numpy(), minlength=len(labels)).tolist()
     nulls = s.null_count()
     commas = max(n - 1, 0)
     plain = 2 + commas + 4 * nulls + sum(c * len(orjson.dumps(v)) for v, c in zip(labels, rows))
@@ -138,24 +141,21 @@ def _dictionary(s: pl.Series) -> tuple[bytes, bytes] | None:
     index_text = 2 + commas + 4 * nulls + sum(c * len(str(i)) for i, c in enumerate(rows))
     if len(labels_json) + index_text >= plain:
         return None
-    codes = s.cast(pl.Enum(labels)).to_physical()
     return labels_json, _ints_json(codes)
 
 
 # --------------------------------------------------------------------- columns as JSON arrays
 #
-# Each payload column is written as one JSON array (bytes) and placed in the document as an
-# ``orjson.Fragment``, so no column becomes a Python list. Every writer gives the bytes
-# ``orjson.dumps(series.to_list())`` gives (the property tests compare them on random
-# columns): numbers through orjson's NumPy path, whose float text is the same as for Python
+# Each payload column is written as one JSON array (bytes) and joined into the document, so
+# no column becomes a Python list (the rows layout splits the arrays into value texts). Every
+# writer gives the bytes ``orjson.dumps(series.to_list())`` gives (tests/test_encode_
+# equivalence.py compares them on random columns): numbers through orjson's NumPy path, whose float text is the same as for Python
 # floats (float64 only: a float32 column is widened first, as ``to_list`` does); strings
 # joined by polars when none needs a JSON escape (orjson escapes only ``"``, ``\`` and
 # U+0000..U+001F); anything else through ``to_list``.
 
 _NUMPY = orjson.OPT_SERIALIZE_NUMPY
 _NEEDS_ESCAPE = r'[\x00-\x1f"\\]'
-# "00".."ff" as 2-byte units: byte b of a big-endian integer becomes _HEX_PAIRS[b]
-_HEX_PAIRS = bytes("".join(f"{i:02x}" for i in range(256)), "ascii")
 H3_DIGITS = 15  # characters of an H3 cell's text: cells lie in [16^14, 16^15)
 
 
@@ -189,16 +189,22 @@ def _cells_json(s: pl.Series) -> bytes | None:
         return None
     if not n:
         return b"[]"
+    import binascii
+
     import numpy as np
 
-    pairs = np.frombuffer(_HEX_PAIRS, dtype=np.uint16)
-    big_endian = s.to_numpy().astype(">u8").view(np.uint8)
-    text = np.take(pairs, big_endian).view(np.uint8).reshape(n, 16)
-    out = np.empty((n, H3_DIGITS + 3), dtype=np.uint8)
-    out[:, 0] = out[:, H3_DIGITS + 1] = ord('"')
-    out[:, H3_DIGITS + 2] = ord(",")
-    out[:, 1 : H3_DIGITS + 1] = text[:, 16 - H3_DIGITS :]
-    return b"[" + out.tobytes()[:-1] + b"]"
+    # The big-endian bytes of each cell in hex: 16 digits, the first always 0 (a cell is
+    # below 16^15), whose place the opening quote takes.
+    digits = binascii.hexlify(s.to_numpy().astype(">u8").tobytes())
+    width = H3_DIGITS + 3  # "…", per cell
+    out = np.empty(n * width + 1, dtype=np.uint8)
+    rows = out[1:].reshape(n, width)
+    rows[:, :16] = np.frombuffer(digits, dtype=np.uint8).reshape(n, 16)
+    rows[:, 0] = rows[:, H3_DIGITS + 1] = ord('"')
+    rows[:, H3_DIGITS + 2] = ord(",")
+    out[0] = ord("[")
+    out[-1] = ord("]")  # in place of the last comma
+    return out.tobytes()
 
 
 def _column_json(s: pl.Series) -> bytes:
@@ -328,7 +334,7 @@ def encode(
     if layout == "rows":
         body = _rows_json(plain)
         return inline_safe(body) if recipe.output.inline else body
-    columns: dict[str, orjson.Fragment] = {}
+    columns: dict[str, bytes] = {}
     dictionaries: dict[str, orjson.Fragment] = {}
     string_keys = {recipe.region.column} if recipe.region else set()
     if recipe.region and recipe.region.label_column:
@@ -339,30 +345,35 @@ def encode(
         if c == HEX and recipe.hex and s.dtype.is_integer():
             cells = _cells_json(s)
             if cells is not None:
-                columns[c] = orjson.Fragment(cells)
+                columns[c] = cells
                 continue
             s = plain.select(plh3.int_to_str(c)).get_column(c)
         if c in string_keys and s.dtype == pl.String:
             coded = _dictionary(s)
             if coded is not None:
-                labels, indexes = coded
+                labels, columns[c] = coded
                 dictionaries[c] = orjson.Fragment(labels)
-                columns[c] = orjson.Fragment(indexes)
                 continue
-        columns[c] = orjson.Fragment(_column_json(s))
-    doc: dict[str, Any] = {
+        columns[c] = _column_json(s)
+    head: dict[str, Any] = {
         "format": FORMAT,
         "recipe": recipe.name,
         "level": dict(level),
         "rows": plain.height,
-        "columns": columns,
     }
+    tail: dict[str, Any] = {}
     if dictionaries:
-        doc["dictionaries"] = dictionaries
-    doc["accounting"] = dict(accounting)
+        tail["dictionaries"] = dictionaries
+    tail["accounting"] = dict(accounting)
     if meta:
-        doc["meta"] = dict(meta)
-    body = orjson.dumps(doc)
+        tail["meta"] = dict(meta)
+    # The document orjson would write for {**head, "columns": columns, **tail}, joined from
+    # its parts (the columns are most of the bytes: each is copied once).
+    parts = [orjson.dumps(head)[:-1], b',"columns":{']
+    for i, (name, array) in enumerate(columns.items()):
+        parts += [b"," if i else b"", orjson.dumps(name), b":", array]
+    parts += [b"},", orjson.dumps(tail)[1:]]
+    body = b"".join(parts)
     return inline_safe(body) if recipe.output.inline else body
 
 
