@@ -159,12 +159,20 @@ _NEEDS_ESCAPE = r'[\x00-\x1f"\\]'
 H3_DIGITS = 15  # characters of an H3 cell's text: cells lie in [16^14, 16^15)
 
 
+def _bracketed(joined: pl.Series, quote: str = "") -> bytes:
+    """``[`` + quote + the one joined text + quote + ``]``, as bytes made by polars (no
+    round trip through a Python str)."""
+    text = pl.concat_str([pl.lit("[" + quote), pl.lit(joined), pl.lit(quote + "]")])
+    out: bytes = pl.select(text.cast(pl.Binary)).item()
+    return out
+
+
 def _ints_json(s: pl.Series) -> bytes:
     """An integer column (values within ±2^53, see ``_check_ints``) as a JSON array."""
     if not s.null_count():
         return orjson.dumps(s.cast(pl.Int64).to_numpy(), option=_NUMPY)
-    text: str = s.cast(pl.Int64).cast(pl.String).fill_null("null").str.join(",").item()
-    return b"[" + text.encode() + b"]"
+    text = s.cast(pl.Int64).cast(pl.String).fill_null("null").str.join(",")
+    return _bracketed(text)
 
 
 def _floats_json(s: pl.Series) -> bytes:
@@ -175,8 +183,7 @@ def _floats_json(s: pl.Series) -> bytes:
 def _strings_json(s: pl.Series) -> bytes:
     """A string column as a JSON array."""
     if s.len() and not s.null_count() and not s.str.contains(_NEEDS_ESCAPE).any():
-        text: str = s.str.join('","').item()
-        return ('["' + text + '"]').encode()
+        return _bracketed(s.str.join('","'), '"')
     return orjson.dumps(s.to_list())
 
 
@@ -239,17 +246,27 @@ def _value_texts(s: pl.Series) -> pl.Series:
 def _rows_json(plain: pl.DataFrame) -> bytes:
     """The rows layout: a JSON array of one object per row, members in column order (the
     bytes ``orjson.dumps(plain.to_dicts())`` gives), assembled by polars from each column's
-    value texts."""
+    value texts; a text column that needs no escape and has no null is quoted in place."""
     if not plain.height:
         return b"[]"
+    texts: dict[str, pl.Series] = {}
     parts: list[pl.Expr] = []
+    pending = ""
     for i, c in enumerate(plain.columns):
-        name = orjson.dumps(c).decode()
-        parts.append(pl.lit(("{" if i == 0 else ",") + name + ":"))
-        parts.append(pl.lit(_value_texts(plain.get_column(c))))
-    parts.append(pl.lit("}"))
-    body: str = pl.select(pl.concat_str(parts).str.join(",")).item()
-    return b"[" + body.encode() + b"]"
+        s = plain.get_column(c)
+        pending += ("{" if i == 0 else ",") + orjson.dumps(c).decode() + ":"
+        if s.dtype == pl.String and not s.null_count() and not s.str.contains(_NEEDS_ESCAPE).any():
+            texts[c] = s
+            parts += [pl.lit(pending + '"'), pl.col(c)]
+            pending = '"'
+        else:
+            texts[c] = _value_texts(s)
+            parts += [pl.lit(pending), pl.col(c)]
+            pending = ""
+    row = pl.concat_str([*parts, pl.lit(pending + "}")])
+    body = pl.concat_str([pl.lit("["), row.str.join(","), pl.lit("]")]).cast(pl.Binary)
+    out: bytes = pl.DataFrame(texts).select(body).item()
+    return out
 
 
 def inline_safe(data: bytes) -> bytes:

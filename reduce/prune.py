@@ -76,9 +76,9 @@ def check_rest_label(recipe: Recipe, p: Partial | pl.LazyFrame) -> None:
 
 
 def label_codes(s: pl.Series) -> pl.Series:
-    """A category column as UInt32 codes in its sort order (code-point order for text, as
-    polars sorts strings; a null stays null), so that ordering rows by codes orders them as
-    by the labels, with integer comparisons only."""
+    """A text category column as UInt32 codes in label order (code-point order, as polars
+    sorts strings; a null stays null), so that ordering rows by codes orders them as by the
+    labels, with integer comparisons only. Any other column is returned as it is."""
     if s.dtype != pl.String:
         return s
     labels = s.drop_nulls().unique().sort()
