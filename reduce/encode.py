@@ -54,7 +54,11 @@ def payload_columns(recipe: Recipe, df: pl.DataFrame) -> list[str]:
 
 
 def sort_rows(recipe: Recipe, df: pl.DataFrame) -> pl.DataFrame:
-    """Deterministic row order: by keys, with a group's remainder row after its categories."""
+    """Deterministic row order: by keys, with a group's remainder row after its categories.
+
+    (Measured: sorting text keys through integer codes in label order was no faster, since
+    polars' multi-column sort and the gather of the rows dominate; the labels are sorted as
+    they are.)"""
     keys = [k for k in recipe.key_names if k in df.columns]
     if not keys:
         return df
@@ -69,16 +73,19 @@ def sort_rows(recipe: Recipe, df: pl.DataFrame) -> pl.DataFrame:
     return df.sort(keys)
 
 
-def _plain(recipe: Recipe, df: pl.DataFrame, digits: int) -> pl.DataFrame:
+def _plain(
+    recipe: Recipe, df: pl.DataFrame, digits: int, *, cells_as_text: bool = True
+) -> pl.DataFrame:
     """Turn rows into plain JSON-able columns: cells as strings, times as epoch seconds,
-    floats rounded (NaN and infinities become null)."""
+    floats rounded (NaN and infinities become null). With ``cells_as_text=False`` the hex
+    column stays UInt64, for :func:`_cells_json` to write."""
     per_col = dict(recipe.output.column_digits)
     exprs = []
     for c in payload_columns(recipe, df):
         dtype = df.schema[c]
         e = pl.col(c)
         if c == HEX and recipe.hex:
-            e = plh3.int_to_str(c)
+            e = plh3.int_to_str(c) if cells_as_text else e
         elif c == TIME and recipe.time:
             e = e.dt.epoch("s")
         elif dtype.is_float():
@@ -96,6 +103,8 @@ def _plain(recipe: Recipe, df: pl.DataFrame, digits: int) -> pl.DataFrame:
 
 def _check_ints(df: pl.DataFrame, recipe: Recipe) -> None:
     for c in df.columns:
+        if c == HEX and recipe.hex:
+            continue  # cells, written as text
         s = df.get_column(c)
         if s.dtype.is_integer() and s.len() and s.null_count() < s.len():
             lo, hi = s.min(), s.max()
@@ -109,16 +118,155 @@ def _check_ints(df: pl.DataFrame, recipe: Recipe) -> None:
                 )
 
 
-def _dictionary(values: list[Any]) -> tuple[list[str], list[int]] | None:
-    """Sorted labels and indexes for a string column, or None if not smaller."""
-    labels = sorted({v for v in values if v is not None})
-    if len(labels) == len(values):
+def _dictionary(s: pl.Series) -> tuple[bytes, bytes] | None:
+    """A string column as (labels, indexes) JSON arrays, or None if that is not smaller.
+
+    The labels are the column's distinct non-null values in code-point order (UTF-8 byte
+    order is code-point order, so polars' sort agrees with Python's); a null stays null in
+    the indexes. Both sizes are counted from each label's number of rows and the length of
+    its JSON text, without writing out the plain column."""
+    import numpy as np
+
+    n = s.len()
+    distinct = s.drop_nulls().unique().sort()
+    if distinct.len() == n:
         return None
-    pos = {v: i for i, v in enumerate(labels)}
-    idx = [pos[v] if v is not None else None for v in values]
-    plain = len(orjson.dumps(values))
-    coded = len(orjson.dumps(labels)) + len(orjson.dumps(idx))
-    return (labels, idx) if coded < plain else None  # type: ignore[return-value]
+    labels = distinct.to_list()
+    codes = s.cast(pl.Enum(labels)).to_physical()
+    rows = np.bincount(codes.drop_nulls().to_numpy(), minlength=len(labels)).tolist()
+    nulls = s.null_count()
+    commas = max(n - 1, 0)
+    plain = 2 + commas + 4 * nulls + sum(c * len(orjson.dumps(v)) for v, c in zip(labels, rows))
+    labels_json = orjson.dumps(labels)
+    index_text = 2 + commas + 4 * nulls + sum(c * len(str(i)) for i, c in enumerate(rows))
+    if len(labels_json) + index_text >= plain:
+        return None
+    return labels_json, _ints_json(codes)
+
+
+# --------------------------------------------------------------------- columns as JSON arrays
+#
+# Each payload column is written as one JSON array (bytes) and joined into the document, so
+# no column becomes a Python list (the rows layout splits the arrays into value texts). Every
+# writer gives the bytes ``orjson.dumps(series.to_list())`` gives (tests/test_encode_
+# equivalence.py compares them on random columns): numbers through orjson's NumPy path, whose float text is the same as for Python
+# floats (float64 only: a float32 column is widened first, as ``to_list`` does); strings
+# joined by polars when none needs a JSON escape (orjson escapes only ``"``, ``\`` and
+# U+0000..U+001F); anything else through ``to_list``.
+
+_NUMPY = orjson.OPT_SERIALIZE_NUMPY
+_NEEDS_ESCAPE = r'[\x00-\x1f"\\]'
+H3_DIGITS = 15  # characters of an H3 cell's text: cells lie in [16^14, 16^15)
+
+
+def _bracketed(joined: pl.Series, quote: str = "") -> bytes:
+    """``[`` + quote + the one joined text + quote + ``]``, as bytes made by polars (no
+    round trip through a Python str)."""
+    text = pl.concat_str([pl.lit("[" + quote), pl.lit(joined), pl.lit(quote + "]")])
+    out: bytes = pl.select(text.cast(pl.Binary)).item()
+    return out
+
+
+def _ints_json(s: pl.Series) -> bytes:
+    """An integer column (values within ±2^53, see ``_check_ints``) as a JSON array."""
+    if not s.null_count():
+        return orjson.dumps(s.cast(pl.Int64).to_numpy(), option=_NUMPY)
+    text = s.cast(pl.Int64).cast(pl.String).fill_null("null").str.join(",")
+    return _bracketed(text)
+
+
+def _floats_json(s: pl.Series) -> bytes:
+    """A float column as a JSON array: NaN, infinities and nulls become null."""
+    return orjson.dumps(s.cast(pl.Float64).to_numpy(), option=_NUMPY)
+
+
+def _strings_json(s: pl.Series) -> bytes:
+    """A string column as a JSON array."""
+    if s.len() and not s.null_count() and not s.str.contains(_NEEDS_ESCAPE).any():
+        return _bracketed(s.str.join('","'), '"')
+    return orjson.dumps(s.to_list())
+
+
+def _cells_json(s: pl.Series) -> bytes | None:
+    """A column of H3 cells (UInt64) as a JSON array of their 15-character lowercase texts,
+    written with NumPy; None when a value is null or not a valid cell (``plh3.int_to_str``
+    writes those as null: the caller falls back to it)."""
+    n = s.len()
+    if s.null_count() or not pl.select(plh3.is_valid_cell(pl.lit(s)).all()).item():
+        return None
+    if not n:
+        return b"[]"
+    import binascii
+
+    import numpy as np
+
+    # The big-endian bytes of each cell in hex: 16 digits, the first always 0 (a cell is
+    # below 16^15), whose place the opening quote takes.
+    digits = binascii.hexlify(s.to_numpy().astype(">u8").tobytes())
+    width = H3_DIGITS + 3  # "…", per cell
+    out = np.empty(n * width + 1, dtype=np.uint8)
+    rows = out[1:].reshape(n, width)
+    rows[:, :16] = np.frombuffer(digits, dtype=np.uint8).reshape(n, 16)
+    rows[:, 0] = rows[:, H3_DIGITS + 1] = ord('"')
+    rows[:, H3_DIGITS + 2] = ord(",")
+    out[0] = ord("[")
+    out[-1] = ord("]")  # in place of the last comma
+    return out.tobytes()
+
+
+def _column_json(s: pl.Series) -> bytes:
+    """Any plain payload column as a JSON array (see above)."""
+    dtype = s.dtype
+    if dtype.is_integer():
+        return _ints_json(s)
+    if dtype.is_float():
+        return _floats_json(s)
+    if dtype == pl.String:
+        return _strings_json(s)
+    return orjson.dumps(s.to_list())
+
+
+def _value_texts(s: pl.Series) -> pl.Series:
+    """Each value of a plain column as its JSON text (a String series without nulls)."""
+    dtype = s.dtype
+    if dtype.is_integer():
+        return s.cast(pl.Int64).cast(pl.String).fill_null("null")
+    if dtype.is_float():
+        if not s.len():
+            return pl.Series(s.name, [], dtype=pl.String)
+        # number texts hold no comma: split orjson's array text back into its values
+        array = _floats_json(s)[1:-1].decode()
+        return pl.Series(s.name, [array]).str.split(",").explode()
+    if dtype == pl.String and not s.str.contains(_NEEDS_ESCAPE).any():
+        quoted = pl.concat_str([pl.lit('"'), pl.lit(s), pl.lit('"')]).fill_null("null")
+        return pl.select(quoted.alias(s.name)).to_series()
+    return pl.Series(s.name, [orjson.dumps(v).decode() for v in s.to_list()], dtype=pl.String)
+
+
+def _rows_json(plain: pl.DataFrame) -> bytes:
+    """The rows layout: a JSON array of one object per row, members in column order (the
+    bytes ``orjson.dumps(plain.to_dicts())`` gives), assembled by polars from each column's
+    value texts; a text column that needs no escape and has no null is quoted in place."""
+    if not plain.height:
+        return b"[]"
+    texts: dict[str, pl.Series] = {}
+    parts: list[pl.Expr] = []
+    pending = ""
+    for i, c in enumerate(plain.columns):
+        s = plain.get_column(c)
+        pending += ("{" if i == 0 else ",") + orjson.dumps(c).decode() + ":"
+        if s.dtype == pl.String and not s.null_count() and not s.str.contains(_NEEDS_ESCAPE).any():
+            texts[c] = s
+            parts += [pl.lit(pending + '"'), pl.col(c)]
+            pending = '"'
+        else:
+            texts[c] = _value_texts(s)
+            parts += [pl.lit(pending), pl.col(c)]
+            pending = ""
+    row = pl.concat_str([*parts, pl.lit(pending + "}")])
+    body = pl.concat_str([pl.lit("["), row.str.join(","), pl.lit("]")]).cast(pl.Binary)
+    out: bytes = pl.DataFrame(texts).select(body).item()
+    return out
 
 
 def inline_safe(data: bytes) -> bytes:
@@ -174,9 +322,9 @@ def encode(
     geometry: Callable[[pl.DataFrame], list[Any]] | None = None,
 ) -> bytes:
     """Encode finalized, sorted rows in the recipe's layout."""
-    plain = _with_labels(recipe, _plain(recipe, df, digits))
-    _check_ints(plain, recipe)
     layout = recipe.output.layout
+    plain = _with_labels(recipe, _plain(recipe, df, digits, cells_as_text=layout != "columns"))
+    _check_ints(plain, recipe)
     if layout == "geojson":
         if geometry is None:
             raise ValueError("the geojson layout needs a geometry provider")
@@ -201,34 +349,48 @@ def encode(
         plain.write_csv(buf, line_terminator="\n")
         return buf.getvalue()
     if layout == "rows":
-        body = orjson.dumps(plain.to_dicts())
+        body = _rows_json(plain)
         return inline_safe(body) if recipe.output.inline else body
-    columns: dict[str, list[Any]] = {}
-    dictionaries: dict[str, list[str]] = {}
+    columns: dict[str, bytes] = {}
+    dictionaries: dict[str, orjson.Fragment] = {}
     string_keys = {recipe.region.column} if recipe.region else set()
     if recipe.region and recipe.region.label_column:
         string_keys.add(recipe.region.label_column)
     string_keys |= set(recipe.categories)
     for c in plain.columns:
-        values = plain.get_column(c).to_list()
-        if c in string_keys and plain.schema[c] == pl.String:
-            coded = _dictionary(values)
+        s = plain.get_column(c)
+        if c == HEX and recipe.hex and s.dtype.is_integer():
+            cells = _cells_json(s)
+            if cells is not None:
+                columns[c] = cells
+                continue
+            s = plain.select(plh3.int_to_str(c)).get_column(c)
+        if c in string_keys and s.dtype == pl.String:
+            coded = _dictionary(s)
             if coded is not None:
-                dictionaries[c], values = coded
-        columns[c] = values
-    doc: dict[str, Any] = {
+                labels, columns[c] = coded
+                dictionaries[c] = orjson.Fragment(labels)
+                continue
+        columns[c] = _column_json(s)
+    head: dict[str, Any] = {
         "format": FORMAT,
         "recipe": recipe.name,
         "level": dict(level),
         "rows": plain.height,
-        "columns": columns,
     }
+    tail: dict[str, Any] = {}
     if dictionaries:
-        doc["dictionaries"] = dictionaries
-    doc["accounting"] = dict(accounting)
+        tail["dictionaries"] = dictionaries
+    tail["accounting"] = dict(accounting)
     if meta:
-        doc["meta"] = dict(meta)
-    body = orjson.dumps(doc)
+        tail["meta"] = dict(meta)
+    # The document orjson would write for {**head, "columns": columns, **tail}, joined from
+    # its parts (the columns are most of the bytes: each is copied once).
+    parts = [orjson.dumps(head)[:-1], b',"columns":{']
+    for i, (name, array) in enumerate(columns.items()):
+        parts += [b"," if i else b"", orjson.dumps(name), b":", array]
+    parts += [b"},", orjson.dumps(tail)[1:]]
+    body = b"".join(parts)
     return inline_safe(body) if recipe.output.inline else body
 
 

@@ -16,6 +16,8 @@ This module owns both ways a payload gives up rows:
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import polars as pl
 
 from reduce.aggregate import N, Partial, finalize, regroup, relabel, take
@@ -73,10 +75,47 @@ def check_rest_label(recipe: Recipe, p: Partial | pl.LazyFrame) -> None:
         )
 
 
+def label_codes(s: pl.Series) -> pl.Series:
+    """A text category column as UInt32 codes in label order (code-point order, as polars
+    sorts strings; a null stays null), so that ordering rows by codes orders them as by the
+    labels, with integer comparisons only. Any other column is returned as it is."""
+    if s.dtype != pl.String:
+        return s
+    labels = s.drop_nulls().unique().sort()
+    return s.cast(pl.Enum(labels.to_list())).to_physical()
+
+
+def _order_key(by: pl.Series, codes: list[pl.Series]) -> pl.Series | None:
+    """One UInt64 per row ordering rows as (``by`` descending, then each code ascending),
+    or None when the values do not pack into 63 bits (a float or null ``by``, a null code):
+    then the columns are sorted as they are."""
+    if not by.dtype.is_integer() or by.null_count() or not by.len():
+        return None
+    if any(not c.dtype.is_integer() or c.null_count() for c in codes):
+        return None
+    hi = int(by.max())  # type: ignore[arg-type]
+    span = hi - int(by.min()) + 1  # type: ignore[arg-type]
+    lows = [int(c.min()) for c in codes]  # type: ignore[arg-type]
+    widths = [int(c.max()) - lo + 1 for c, lo in zip(codes, lows)]  # type: ignore[arg-type]
+    total = span
+    for w in widths:
+        total *= w
+    if total >= 2**63:
+        return None
+    key = (pl.lit(hi, dtype=pl.Int64) - pl.lit(by).cast(pl.Int64)).cast(pl.UInt64)
+    for c, lo, w in zip(codes, lows, widths):
+        key = key * w + (pl.lit(c).cast(pl.Int64) - lo).cast(pl.UInt64)
+    return pl.select(key.alias("__order")).to_series()
+
+
 def rank_rows(recipe: Recipe, p: Partial) -> pl.Series:
     """Each row's category rank within its group (0 = first), aligned with ``p.table``.
 
-    The rank does not depend on k, so one ranking serves every k of the ladder.
+    Within a group, categories are ordered by ``prune.top.by`` descending, ties broken by the
+    category labels (nulls last). The rows are sorted once by the group's columns and that
+    order (packed into one integer key when it fits); a row's rank is its position after its
+    group's first row. The rank does not depend on k, so one ranking serves every k of the
+    ladder.
     """
     top = recipe.top
     assert top is not None
@@ -84,42 +123,72 @@ def rank_rows(recipe: Recipe, p: Partial) -> pl.Series:
     cats = list(recipe.categories)
     ranked_keys = [*within, *cats]
     rank_src = p if list(p.keys) == ranked_keys else regroup(recipe, p, [], ranked_keys)
-    scores = (
-        finalize(recipe, rank_src, only=[top.by])
-        .select([*ranked_keys, pl.col(top.by).alias("__by")])
-        .with_row_index("__row")
+    scores = finalize(recipe, rank_src, only=[top.by])
+    by = scores.get_column(top.by)
+    codes = [label_codes(scores.get_column(c)).alias(f"__code{i}") for i, c in enumerate(cats)]
+    packed = _order_key(by, codes)
+    frame = pl.DataFrame(
+        [
+            *(scores.get_column(c) for c in within),
+            *([packed] if packed is not None else [by.alias("__by"), *codes]),
+        ]
     )
-    order = scores.sort(["__by", *cats], descending=[True] + [False] * len(cats), nulls_last=True)
-    ranked = order.with_columns(
-        (pl.int_range(pl.len()).over(within) if within else pl.int_range(pl.len()))
-        .cast(pl.UInt32)
-        .alias("__rank")
-    ).drop("__by")
+    order = ["__order"] if packed is not None else ["__by", *(c.name for c in codes)]
+    ranked = frame.with_row_index("__row").sort(
+        [*within, *order],
+        descending=[False] * len(within) + [packed is None] + [False] * (len(order) - 1),
+        nulls_last=packed is None,  # (a packed key has no nulls; it sorts twice as fast)
+    )
+    idx = pl.int_range(pl.len(), dtype=pl.UInt32)
+    if within:
+        first = pl.any_horizontal([pl.col(c).ne_missing(pl.col(c).shift(1)) for c in within])
+        rank = idx - pl.when(first | (idx == 0)).then(idx).forward_fill()
+    else:
+        rank = idx
+    ranked = ranked.select("__row", *within, rank.alias("__rank"))
+    # Scatter the ranks back to the order of the ranked rows.
+    out = pl.zeros(rank_src.table.height, dtype=pl.UInt32, eager=True).alias("__rank")
+    out = out.scatter(ranked.get_column("__row"), ranked.get_column("__rank"))
     if rank_src is p:
-        # Scatter the ranks back to the table's row order.
-        out = pl.zeros(p.table.height, dtype=pl.UInt32, eager=True).alias("__rank")
-        return out.scatter(ranked.get_column("__row"), ranked.get_column("__rank"))
-    ranked = ranked.drop("__row")
+        return out
     # Every row of a (within, category) group shares that category's rank.
+    ranks = scores.select(ranked_keys).with_columns(out)
     return (
         p.table.select(ranked_keys)
-        .join(ranked, on=ranked_keys, how="left", nulls_equal=True, maintain_order="left")
+        .join(ranks, on=ranked_keys, how="left", nulls_equal=True, maintain_order="left")
         .get_column("__rank")
     )
 
 
 def top_k(recipe: Recipe, p: Partial, k: int, ranks: pl.Series | None = None) -> Partial:
-    """Keep the top ``k`` categories per group; fold the rest into one row per group."""
+    """Keep the top ``k`` categories per group; fold the rest into one row per group.
+
+    Only the rows that change are regrouped (those outside the top k, and any row already
+    labelled rest): every other row stays one group of its own, since its keys are unique in
+    the partial and no folded row can take them (a folded row's categories become the rest
+    label, which no category equals: see :func:`check_rest_label`)."""
     assert recipe.top is not None
     ranks = rank_rows(recipe, p) if ranks is None else ranks
     fold = ranks >= k
     if not fold.any():
         return p
     rest = recipe.top.rest
-    mapped = p.table.with_columns(
-        [pl.when(fold).then(pl.lit(rest)).otherwise(pl.col(c)).alias(c) for c in recipe.categories]
-    )
-    return relabel(recipe, p, mapped)
+    cats = recipe.categories
+    if p.pairs:  # distinct pairs are renumbered with every row: relabel the whole table
+        mapped = p.table.with_columns(
+            [pl.when(fold).then(pl.lit(rest)).otherwise(pl.col(c)).alias(c) for c in cats]
+        )
+        return relabel(recipe, p, mapped)
+    moved = (
+        fold
+        | pl.select(
+            pl.all_horizontal([pl.lit(p.table.get_column(c)) == rest for c in cats])
+        ).to_series()
+    ).fill_null(fold)
+    changed = p.table.filter(moved).with_columns([pl.lit(rest).alias(c) for c in cats])
+    merged = relabel(recipe, replace(p, table=p.table.filter(moved)), changed)
+    kept = p.table.filter(~moved)
+    return replace(merged, table=pl.concat([kept, merged.table.select(kept.columns)]))
 
 
 def suppress(recipe: Recipe, p: Partial) -> tuple[Partial, int, int]:
