@@ -326,7 +326,11 @@ def a_payload(d: Path) -> Path:
 
 
 def a_manifest(d: Path) -> Path:
-    return a_payload(d).with_name("hex_time_kind.manifest.json")
+    """(a)'s manifest: ``x.json.manifest.json`` beside the payload (``x.manifest.json`` for
+    versions of reduce before the manifest took the payload's full name)."""
+    new = a_payload(d).with_name("hex_time_kind.json.manifest.json")
+    old = a_payload(d).with_name("hex_time_kind.manifest.json")
+    return new if new.exists() or not old.exists() else old
 
 
 def cprime_payload(d: Path) -> Path:

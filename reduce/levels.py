@@ -10,7 +10,10 @@ A *record* holds what a level's verdict and manifest need: its rows and drawn el
 exact raw, gzip and brotli lengths where they were measured (or lower bounds where a
 compression stopped early or a fast compression settled it), the payload's sha256, the
 accounting and the normalisation report. The chosen level's payload bytes are kept too, when
-small (:data:`PAYLOAD_MAX`), so publishing it again needs no roll-up.
+small (:data:`PAYLOAD_MAX`), so publishing it again needs no roll-up. Levels counted but not
+measured keep their row count, and levels judged by a sample of their cells keep what the
+sample showed (its fast length scaled to the level's rows), so a re-fit replays those
+verdicts too; the exact/sample ratio of levels that have both calibrates later estimates.
 
 A store belongs to one cache entry (one scan of one version of the source) and one recipe
 *besides its budget*: its file name carries a hash of everything else that shapes a payload

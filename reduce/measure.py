@@ -9,7 +9,8 @@ candidate of the budget search, and records what it measured.
 
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterable, Mapping
+from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
 from typing import Any
 
@@ -26,14 +27,22 @@ from reduce.sizes import (
     Measure,
     fast_length,
     fits_on,
-    measure_all,
     quick_look,
     quick_verdict,
+    size_on,
 )
 from reduce.tables import LevelTables, Progress
 
 # The note of a verdict taken from a fast compression (an estimate, marked so in manifests).
 QUICK_NOTE = "judged by a fast compression"
+
+# A close call that a fast compression does not settle, judged during the search by its best
+# guess: the middle setting's length times this (zlib level 6 for gzip, brotli quality 5).
+# For gzip the guess is level 6's length itself, which level 9 never exceeds in practice, so
+# the close call counts as over: the search settles on the coarser level, and the close call,
+# when it is a finer neighbour of that level, is measured exactly beside it
+# (Measurer.prefetch) and taken if it fits. Brotli 11 against 5: about 0.85 (common practice).
+CLOSE_GUESS: dict[str, float] = {"raw": 1.0, "gzip": 1.0, "brotli": 0.85}
 
 # A sample's fast length, scaled to the level's rows, times the exact/fast ratio of the
 # measure is the estimate of a level's size; it settles a verdict only when at least this
@@ -58,6 +67,9 @@ class Measurer(LevelTables):
         self._boundaries: Any = None
         self._fast: dict[tuple[Any, ...], tuple[Any, int | None, int | None]] = {}
         self._store: levels.Store | None = None
+        # exact compressions started ahead (see prefetch), by (level key, measure)
+        self._exact: dict[tuple[Any, ...], Future[int]] = {}
+        self._pool: ThreadPoolExecutor | None = None
 
     # -- the store of measured levels -------------------------------------------------------
     @property
@@ -231,16 +243,21 @@ class Measurer(LevelTables):
         limit: int | None = None,
         brotli: bool | None = None,
         quick: bool = True,
+        defer: bool = False,
     ) -> bsearch.Candidate:
         """Encode a level and measure it: every measure (``exact``), or only whether it fits
         ``limit`` on ``on`` (compression stops once the output is over the limit; first, when
-        ``quick``, a fast compression may settle it). A level
+        ``quick``, a fast compression may settle it; with ``defer``, a close call it does not
+        settle is judged by its best guess, to be measured exactly later if it matters: see
+        :data:`CLOSE_GUESS`). A level
         measured before (the store kept with the cache entry) is not measured again when what
         was kept settles the question."""
         c = self._from_store(level, exact=exact, on=on, limit=limit, brotli=brotli, quick=quick)
         if c is not None:
             return c
-        c = self._measure(level, exact=exact, on=on, limit=limit, brotli=brotli, quick=quick)
+        c = self._measure(
+            level, exact=exact, on=on, limit=limit, brotli=brotli, quick=quick, defer=defer
+        )
         self.remember(c, on=on, limit=limit)
         return c
 
@@ -301,6 +318,7 @@ class Measurer(LevelTables):
         limit: int | None,
         brotli: bool | None,
         quick: bool = True,
+        defer: bool = False,
     ) -> bsearch.Candidate:
         data = self.payload(level)
         rec = self.record(level)
@@ -308,12 +326,27 @@ class Measurer(LevelTables):
             level=Level.of(level), rows=rec.rows, elements=rec.elements, raw=len(data)
         )
         if exact or on is None or limit is None:
-            s = measure_all(data, brotli=True if on == "brotli" else brotli)
-            c.gzip, c.brotli = s.gzip, s.brotli
+            want_brotli = (
+                on == "brotli"
+                or brotli is True
+                or (brotli is None and len(data) <= BROTLI_AUTO_MAX)
+            )
+            if want_brotli:
+                self._start_exact(level, data, "brotli")  # beside gzip, on another thread
+            c.gzip = self._exact_length(level, data, "gzip")
+            c.brotli = self._exact_length(level, data, "brotli") if want_brotli else None
             if on is not None and limit is not None:
-                c.fits = s.on(on) <= limit
-                c.floor = s.on(on)
+                size = c.size(on)
+                assert size is not None
+                c.fits = size <= limit
+                c.floor = size
         else:
+            started = self._exact.get((bsearch.level_key(level), on))
+            if on != "raw" and started is not None:
+                size = started.result()  # started beside other exact checks (see prefetch)
+                c.fits, c.floor = size <= limit, size
+                setattr(c, on, size)
+                return c
             if quick:
                 look = quick_look(data, on, limit)
                 c.floor = look.floor
@@ -321,6 +354,11 @@ class Measurer(LevelTables):
                 self._fast[bsearch.level_key(level)] = (on, look.fast, look.mid)
                 if look.fits is not None:
                     c.fits = look.fits
+                    c.note = QUICK_NOTE
+                    return c
+                if defer:
+                    c.guess = int((look.mid or look.fast or 0) * CLOSE_GUESS[on])
+                    c.fits = c.guess <= limit
                     c.note = QUICK_NOTE
                     return c
             ok, size = fits_on(data, on, limit)
@@ -332,6 +370,32 @@ class Measurer(LevelTables):
             else:
                 c.floor = size
         return c
+
+    # -- exact compressions side by side ----------------------------------------------------
+    def prefetch(self, levels_: Iterable[Mapping[str, Any]], on: Measure) -> None:
+        """Start the exact compressions (on ``on``) of levels about to be checked exactly, each
+        on its own thread: zlib and brotli release the interpreter lock, so on two cores the
+        chosen level and a close neighbour are measured side by side. Levels whose exact size
+        is kept in the store are skipped; payloads are built here, one after another."""
+        if on == "raw":
+            return
+        for level in levels_:
+            rec = self.store.get(level)
+            if rec is not None and rec.size(on) is not None:
+                continue
+            self._start_exact(level, self.payload(level), on)
+
+    def _start_exact(self, level: Mapping[str, Any], data: bytes, on: Measure) -> None:
+        k = (bsearch.level_key(level), on)
+        if k not in self._exact:
+            if self._pool is None:
+                self._pool = ThreadPoolExecutor(max_workers=2, thread_name_prefix="reduce-size")
+            self._exact[k] = self._pool.submit(size_on, data, on)
+
+    def _exact_length(self, level: Mapping[str, Any], data: bytes, on: Measure) -> int:
+        """The exact length on ``on``: from a compression started before, or computed now."""
+        started = self._exact.pop((bsearch.level_key(level), on), None)
+        return started.result() if started is not None else size_on(data, on)
 
     def sampled(
         self, level: Mapping[str, Any], on: Measure, limit: int

@@ -212,6 +212,7 @@ def fit(
             on=b.on if b else None,
             limit=b.max if b else None,
             quick=not verify,
+            defer=use_estimates and not (force_exact or verify or full),
         )
         cands[k] = c
         counted.append((level, c.rows))
@@ -238,9 +239,12 @@ def fit(
                 if not evaluate(target, force_exact=True).fits:
                     break
                 continue  # an estimate said over; it fits: search again
-            # Its whole payload first (a cheap check when an estimate was wrong), then every
-            # measure exactly.
-            if evaluate(target, full=True).fits and evaluate(target, force_exact=True).fits:
+            # Exactly on the budget's measure, side by side with the finer neighbours that
+            # will be checked exactly if it fits; then every measure exactly.
+            red.prefetch(
+                [target, *_close_neighbours(ladder_axes, target, cands, b.on, b.max)], b.on
+            )
+            if evaluate(target, verify=True).fits and evaluate(target, force_exact=True).fits:
                 chosen_level = target
                 break
         else:  # pragma: no cover - every round makes one verdict exact
@@ -298,21 +302,37 @@ def _confirm_neighbours(
     moved = True
     while moved:
         moved = False
-        for axis, lv in ladder.items():
-            i = list(lv).index(current[axis])
-            if i == 0:
-                continue
-            finer = current.with_(axis, lv[i - 1])
-            c = cands.get(bsearch.level_key(finer))
-            if c is None or c.size(on) is not None or c.note.startswith(">"):
-                continue  # not evaluated, or its verdict came from an exact compression
-            if c.guess is not None and c.guess > (1 + NEIGHBOUR_MARGIN) * limit:
-                continue
+        for finer in _close_neighbours(ladder, current, cands, on, limit):
             if evaluate(finer, verify=True).fits:
                 current = finer
                 moved = True
                 break
     return current
+
+
+def _close_neighbours(
+    ladder: Mapping[str, Sequence[Any]],
+    level: Level,
+    cands: Mapping[tuple[Any, ...], bsearch.Candidate],
+    on: Measure,
+    limit: int,
+) -> list[Level]:
+    """The one-step-finer neighbours of ``level`` judged only by cheap evidence (a fast
+    compression, a sample or a row count) whose best guess is within 10% of the budget (or
+    unknown): those are measured exactly before a choice stands."""
+    out = []
+    for axis, lv in ladder.items():
+        i = list(lv).index(level[axis])
+        if i == 0:
+            continue
+        finer = level.with_(axis, lv[i - 1])
+        c = cands.get(bsearch.level_key(finer))
+        if c is None or c.size(on) is not None or c.note.startswith(">"):
+            continue  # not evaluated, or its verdict came from an exact compression
+        if c.guess is not None and c.guess > (1 + NEIGHBOUR_MARGIN) * limit:
+            continue
+        out.append(finer)
+    return out
 
 
 def _same_levels(a: Recipe, b: Recipe) -> bool:

@@ -41,7 +41,9 @@ def _no_building(monkeypatch: pytest.MonkeyPatch) -> None:
         raise AssertionError("a level was built, though the store settles it")
 
     monkeypatch.setattr(tables.LevelTables, "rows", fail)
-    monkeypatch.setattr(measure, "measure_all", fail)
+    monkeypatch.setattr(measure, "size_on", fail)
+    monkeypatch.setattr(measure, "fits_on", fail)
+    monkeypatch.setattr(measure, "fast_length", fail)
     monkeypatch.setattr(measure, "quick_look", fail)
     monkeypatch.setattr(manifest, "measure_all", fail)
 

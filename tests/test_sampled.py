@@ -153,3 +153,30 @@ def test_store_keeps_samples_and_learns_the_exact_to_estimate_ratio(tmp_path: Pa
     back = levels.Store(tmp_path, "x")
     assert back.sample({"hex": 9, "digits": 4}) == {"every": 8, "sample_rows": 10, "gzip": 1000}
     assert back.ratio("gzip", 0.5) == pytest.approx(0.75)
+
+
+@pytest.mark.parametrize("budget", ["30KB", "100KB", "150KB"])
+def test_close_finer_neighbours_of_the_choice_are_measured_exactly(
+    tmp_path: Path, budget: str
+) -> None:
+    path = _case(tmp_path)
+    res = reduce.fit(path, budget=budget, use_cache=False)
+    assert res.level is not None
+    limit = parse_size(budget)
+    ladder = reduce.load_recipe(path).ladder()
+    by_key = {level_key(c.level): c for c in res.candidates}
+    exact = _exact_sizes(path)
+    for axis, lv in ladder.items():
+        i = list(lv).index(res.level[axis])
+        if i == 0:
+            continue
+        finer = res.level.with_(axis, lv[i - 1])
+        c = by_key.get(level_key(finer))
+        assert c is not None, f"the finer neighbour on {axis} was not evaluated"
+        if c.gzip is None and not c.note.startswith(">"):
+            # judged by cheap evidence only: allowed when its guess is clearly over
+            assert c.guess is not None and c.guess > 1.1 * limit, (axis, c.note)
+        if exact[level_key(finer)] <= limit:
+            # A finer neighbour that fits can only be missed by evidence clearly over (the
+            # search's estimates steer; the 10% rule bounds how far they can mislead).
+            assert c.gzip is None and c.guess is not None and c.guess > 1.1 * limit, axis
