@@ -18,7 +18,7 @@ from typing import Any
 import pytest
 from click.testing import CliRunner, Result
 
-from reduce.audit.cli import audit
+from reduce.cli import main
 
 _spec = importlib.util.spec_from_file_location(
     "audit_builders", Path(__file__).parent / "fixtures_audit" / "builders.py"
@@ -31,7 +31,7 @@ SAFE = "outside the JavaScript safe range ±(2^53-1)"
 
 
 def run(*args: object) -> Result:
-    return CliRunner().invoke(audit, [str(a) for a in args], catch_exceptions=False)
+    return CliRunner().invoke(main, ["audit", *(str(a) for a in args)], catch_exceptions=False)
 
 
 def stderr_lines(result: Result) -> list[str]:

@@ -25,7 +25,7 @@ from pathlib import Path
 import pytest
 from click.testing import CliRunner
 
-from reduce.audit.cli import audit
+from reduce.cli import main
 from reduce.publish import folder_lock, manifest_path, publish, reading
 from tests._builders import project
 
@@ -229,7 +229,7 @@ def test_audit_completes_an_interrupted_commit_and_says_so(tmp_path: Path) -> No
     out = tmp_path / "out"
     out.mkdir()
     new = _interrupted_commit(out)
-    res = CliRunner().invoke(audit, [str(out), "--quiet"])
+    res = CliRunner().invoke(main, ["audit", str(out), "--quiet"])
     assert res.stderr.splitlines() == [
         f"{out / '.p.json.reduce-commit'}: completed an interrupted commit of p.json before "
         "auditing"
@@ -247,7 +247,7 @@ def test_audit_reports_a_refused_journal_as_one_finding(tmp_path: Path) -> None:
     journal.write_bytes(
         json.dumps({"moves": [["../x", "p.json"], ["y", "p.json.manifest.json"]]}).encode()
     )
-    res = CliRunner().invoke(audit, [str(out), "--quiet"])
+    res = CliRunner().invoke(main, ["audit", str(out), "--quiet"])
     assert res.exit_code == 1
     assert journal.exists()
     lines = [line for line in res.stderr.splitlines() if line.startswith(str(journal))]
@@ -268,7 +268,7 @@ def test_audit_waits_for_a_run_holding_the_lock_then_says_so(
     holder = hold_lock(out)
     try:
         monkeypatch.setenv("REDUCE_LOCK_WAIT", "0.1")
-        res = CliRunner().invoke(audit, [str(out / "p.json"), "--quiet"])
+        res = CliRunner().invoke(main, ["audit", str(out / "p.json"), "--quiet"])
     finally:
         release(holder)
     journal = out / ".p.json.reduce-commit"
