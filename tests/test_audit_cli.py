@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import gzip
 import hashlib
-import importlib.util
 import json
 import os
 from pathlib import Path
@@ -19,13 +18,7 @@ import pytest
 from click.testing import CliRunner, Result
 
 from reduce.cli import main
-
-_spec = importlib.util.spec_from_file_location(
-    "audit_builders", Path(__file__).parent / "fixtures_audit" / "builders.py"
-)
-assert _spec is not None and _spec.loader is not None
-builders = importlib.util.module_from_spec(_spec)
-_spec.loader.exec_module(builders)
+from tests import _builders as builders
 
 SAFE = "outside the JavaScript safe range ±(2^53-1)"
 

@@ -8,7 +8,6 @@ report. A link to a regular file in the same folder is audited like the file its
 
 from __future__ import annotations
 
-import importlib.util
 import os
 import subprocess
 import sys
@@ -20,14 +19,9 @@ from click.testing import CliRunner
 from reduce import audit as audit_mod
 from reduce.audit import files as audit_files
 from reduce.cli import main
+from tests import _builders as builders
 
 REPO = Path(__file__).resolve().parents[1]
-_spec = importlib.util.spec_from_file_location(
-    "audit_builders", Path(__file__).parent / "fixtures_audit" / "builders.py"
-)
-assert _spec is not None and _spec.loader is not None
-builders = importlib.util.module_from_spec(_spec)
-_spec.loader.exec_module(builders)
 
 
 def run_cli(*args: str) -> subprocess.CompletedProcess[str]:

@@ -6,10 +6,9 @@ import json
 from pathlib import Path
 
 import pytest
-from conftest import invoke
 
 from reduce.cli import main
-from tests._builders import HEX_RECIPE, REGION_RECIPE, events, project, write_recipe
+from tests._builders import HEX_RECIPE, REGION_RECIPE, events, invoke, project, write_recipe
 
 
 @pytest.fixture(autouse=True)

@@ -27,6 +27,7 @@ from click.testing import CliRunner
 
 from reduce.cli import main
 from reduce.publish import folder_lock, manifest_path, publish, reading
+from tests import _builders as builders
 from tests._builders import project
 
 REPO = Path(__file__).resolve().parents[1]
@@ -196,26 +197,13 @@ def test_publish_waits_for_the_lock_and_then_publishes(tmp_path: Path) -> None:
     assert check_pair(out, "p.json") == data
 
 
-def _builders():  # type: ignore[no-untyped-def]
-    import importlib.util
-
-    spec = importlib.util.spec_from_file_location(
-        "audit_builders", Path(__file__).parent / "fixtures_audit" / "builders.py"
-    )
-    assert spec is not None and spec.loader is not None
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
-
-
 def _interrupted_commit(out: Path) -> bytes:
     """A folder where a publish died between its two renames (its pid no longer runs)."""
-    b = _builders()
-    b.write_payload(out / "p.json", b.columns_payload(meta={"source": "old"}))
-    new = b.dump(b.columns_payload(meta={"source": "new"}))
+    builders.write_payload(out / "p.json", builders.columns_payload(meta={"source": "old"}))
+    new = builders.dump(builders.columns_payload(meta={"source": "new"}))
     (out / "p.json").write_bytes(new)  # the payload's rename happened
     tm = ".p.json.manifest.json.999999999.tmp"
-    (out / tm).write_bytes(b.dump(b.manifest_for(out / "p.json")))
+    (out / tm).write_bytes(builders.dump(builders.manifest_for(out / "p.json")))
     (out / ".p.json.reduce-commit").write_bytes(
         json.dumps(
             {"moves": [[".p.json.999999999.tmp", "p.json"], [tm, "p.json.manifest.json"]]}
