@@ -20,25 +20,58 @@ import click
 import orjson
 
 from reduce._version import __version__
-from reduce.errors import RecipeError, ReduceError
-from reduce.sizes import MEASURES, parse_size
+from reduce.errors import OptionError, RecipeError, ReduceError
+from reduce.sizes import MEASURES, parse_measure, parse_size
+
+
+def _option_name(param: click.Parameter | None) -> str:
+    """How an error names the option: its longest flag (``--budget``), else its name."""
+    if isinstance(param, click.Option) and param.opts:
+        return max(param.opts, key=len)
+    return (param.name if param is not None else None) or "value"
 
 
 class _SizeType(click.ParamType):  # type: ignore[type-arg]
-    """A byte size: 300KB, 1.5MB (decimal), 200KiB (IEC 80000-13), or plain bytes."""
+    """A byte size: 300KB, 1.5MB (decimal), 200KiB (IEC 80000-13), or plain bytes.
+
+    A bad value raises :class:`OptionError`, so it is one ``error: --budget: ...`` line and
+    exit code 2 like every other bad input, not click's multi-line usage error."""
 
     name = "size"
 
     def convert(self, value: Any, param: click.Parameter | None, ctx: click.Context | None) -> int:
-        if isinstance(value, int):
+        if isinstance(value, int) and not isinstance(value, bool):
             return value
         try:
             return parse_size(value)
         except ValueError as e:
-            self.fail(str(e), param, ctx)
+            raise OptionError(f"{_option_name(param)}: {e}") from None
+
+
+class _MeasureType(click.ParamType):  # type: ignore[type-arg]
+    """A size measure: raw, gzip or brotli (a bad one is one line, as for :data:`SIZE`)."""
+
+    name = "measure"
+
+    def get_metavar(self, param: click.Parameter, ctx: click.Context) -> str:
+        return "[" + "|".join(MEASURES) + "]"
+
+    def convert(self, value: Any, param: click.Parameter | None, ctx: click.Context | None) -> str:
+        try:
+            return parse_measure(value)
+        except ValueError as e:
+            raise OptionError(f"{_option_name(param)}: {e}") from None
+
+    def shell_complete(
+        self, ctx: click.Context, param: click.Parameter, incomplete: str
+    ) -> list[Any]:
+        from click.shell_completion import CompletionItem
+
+        return [CompletionItem(m) for m in MEASURES if m.startswith(incomplete)]
 
 
 SIZE = _SizeType()
+MEASURE = _MeasureType()
 
 
 class Terminated(KeyboardInterrupt):
@@ -192,7 +225,7 @@ _BUDGET_OPTS = [
     ),
     click.option(
         "--on",
-        type=click.Choice(MEASURES),
+        type=MEASURE,
         default=None,
         help="Measure the budget applies to (overrides budget.on).",
     ),

@@ -65,6 +65,10 @@ class BudgetError(ReduceError):
     exit_code = 1
 
 
+class OptionError(ReduceError, ValueError):
+    """A command-line option has a bad value (``--budget 3XB``, ``--on foo``)."""
+
+
 class AuditError(ReduceError):
     """A payload file cannot be read by the audit (exit 2); findings are not errors."""
 

@@ -15,6 +15,8 @@ from typing import Literal
 
 import brotli
 
+from reduce.errors import did_you_mean
+
 Measure = Literal["raw", "gzip", "brotli"]
 MEASURES: tuple[Measure, ...] = ("raw", "gzip", "brotli")
 
@@ -52,6 +54,14 @@ def parse_size(value: object) -> int:
     if n <= 0:
         raise ValueError(f"{value!r} is not a positive size; a budget must be above zero bytes")
     return n
+
+
+def parse_measure(value: object) -> Measure:
+    """``raw``, ``gzip`` or ``brotli``; anything else raises ``ValueError`` naming them."""
+    if isinstance(value, str) and value in MEASURES:
+        return value
+    hint = did_you_mean(value, MEASURES) if isinstance(value, str) else ""
+    raise ValueError(f"{value!r} is not a measure{hint}; use raw, gzip or brotli")
 
 
 def format_size(n: int) -> str:

@@ -11,7 +11,6 @@ from __future__ import annotations
 import csv
 import gzip
 import hashlib
-import importlib.util
 import io
 import json
 import os
@@ -41,13 +40,7 @@ from reduce.audit import (
     transfer_seconds,
 )
 from reduce.errors import AuditError
-
-_spec = importlib.util.spec_from_file_location(
-    "audit_builders", Path(__file__).parent / "fixtures_audit" / "builders.py"
-)
-assert _spec is not None and _spec.loader is not None
-builders = importlib.util.module_from_spec(_spec)
-_spec.loader.exec_module(builders)
+from tests import _builders as builders
 
 columns_payload = builders.columns_payload
 dump = builders.dump

@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import gzip
 import hashlib
-import importlib.util
 import json
 import os
 from pathlib import Path
@@ -18,20 +17,14 @@ from typing import Any
 import pytest
 from click.testing import CliRunner, Result
 
-from reduce.audit.cli import audit
-
-_spec = importlib.util.spec_from_file_location(
-    "audit_builders", Path(__file__).parent / "fixtures_audit" / "builders.py"
-)
-assert _spec is not None and _spec.loader is not None
-builders = importlib.util.module_from_spec(_spec)
-_spec.loader.exec_module(builders)
+from reduce.cli import main
+from tests import _builders as builders
 
 SAFE = "outside the JavaScript safe range ±(2^53-1)"
 
 
 def run(*args: object) -> Result:
-    return CliRunner().invoke(audit, [str(a) for a in args], catch_exceptions=False)
+    return CliRunner().invoke(main, ["audit", *(str(a) for a in args)], catch_exceptions=False)
 
 
 def stderr_lines(result: Result) -> list[str]:

@@ -8,7 +8,6 @@ report. A link to a regular file in the same folder is audited like the file its
 
 from __future__ import annotations
 
-import importlib.util
 import os
 import subprocess
 import sys
@@ -19,15 +18,10 @@ from click.testing import CliRunner
 
 from reduce import audit as audit_mod
 from reduce.audit import files as audit_files
-from reduce.audit.cli import audit
+from reduce.cli import main
+from tests import _builders as builders
 
 REPO = Path(__file__).resolve().parents[1]
-_spec = importlib.util.spec_from_file_location(
-    "audit_builders", Path(__file__).parent / "fixtures_audit" / "builders.py"
-)
-assert _spec is not None and _spec.loader is not None
-builders = importlib.util.module_from_spec(_spec)
-_spec.loader.exec_module(builders)
 
 
 def run_cli(*args: str) -> subprocess.CompletedProcess[str]:
@@ -73,7 +67,7 @@ def test_link_to_a_file_outside_the_folder_shows_no_content(tmp_path: Path, fmt:
     data.mkdir()
     (data / "users.csv").symlink_to(outside / "accounts")
     (data / "users.json").symlink_to(outside / "accounts")
-    res = CliRunner().invoke(audit, [str(data), *fmt])
+    res = CliRunner().invoke(main, ["audit", str(data), *fmt])
     assert res.exit_code == 0, res.output
     assert "SECRET" not in res.stdout and "SECRET" not in res.stderr
     assert "a link to a file outside its folder: sizes only" in res.stdout
@@ -90,7 +84,7 @@ def test_file_over_the_size_cap_is_refused(tmp_path: Path, monkeypatch: pytest.M
     path = builders.write_payload(tmp_path / "x.json")
     monkeypatch.setattr(audit_files, "READ_MAX_BYTES", 100)
     size = path.stat().st_size
-    res = CliRunner().invoke(audit, [str(path)])
+    res = CliRunner().invoke(main, ["audit", str(path)])
     assert res.exit_code == 2
     assert res.stderr.splitlines() == [
         f"error: {path}: {size:,} bytes, over the audit's limit of 100 bytes per file; is it "

@@ -28,9 +28,8 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 import pytest
-from conftest import invoke
 
-from tests._builders import FIXTURES, events
+from tests._builders import FIXTURES, events, invoke
 
 GOOD = (FIXTURES / "recipes" / "base.toml").read_text(encoding="utf-8")
 POPULATION = (FIXTURES / "population.csv").read_text(encoding="utf-8")

@@ -20,7 +20,6 @@ import numpy as np
 import polars as pl
 import pytest
 from click.testing import CliRunner
-from conftest import random_events, write_case
 
 import reduce
 from reduce import cache
@@ -28,6 +27,7 @@ from reduce.aggregate import Spilled
 from reduce.budget import all_levels
 from reduce.cli import main
 from reduce.pipeline import Reducer
+from tests._builders import random_events, write_case
 
 REPO = Path(__file__).resolve().parents[1]
 

@@ -6,10 +6,9 @@ import json
 from pathlib import Path
 
 import pytest
-from conftest import invoke
 
 from reduce.cli import main
-from tests._builders import HEX_RECIPE, REGION_RECIPE, events, project, write_recipe
+from tests._builders import HEX_RECIPE, REGION_RECIPE, events, invoke, project, write_recipe
 
 
 @pytest.fixture(autouse=True)
@@ -159,11 +158,65 @@ def test_write_anyway_writes_smallest_and_still_exits_1(tmp_path: Path) -> None:
     assert payload["level"] == {"hex": 5, "time": "1w", "top": 1, "digits": 4}
 
 
-def test_bad_budget_option_is_a_usage_error(tmp_path: Path) -> None:
+_NOT_A_SIZE = "is not a size; use e.g. 300KB, 1.5MB, 200KiB or 250000"
+
+
+@pytest.mark.parametrize(
+    ("args", "line"),
+    [
+        (["run", "R", "--budget", "lots"], f"error: --budget: 'lots' {_NOT_A_SIZE}"),
+        (["run", "R", "--budget", "3XB"], f"error: --budget: '3XB' {_NOT_A_SIZE}"),
+        (
+            ["run", "R", "--budget", "0"],
+            "error: --budget: '0' is not a positive size; a budget must be above zero bytes",
+        ),
+        (["ladder", "R", "--budget", "3XB"], f"error: --budget: '3XB' {_NOT_A_SIZE}"),
+        (["audit", "P", "--budget", "3XB"], f"error: --budget: '3XB' {_NOT_A_SIZE}"),
+        (["audit", "P", "--total", "abc"], f"error: --total: 'abc' {_NOT_A_SIZE}"),
+        (
+            ["audit", "P", "--total", "-5KB"],
+            f"error: --total: '-5KB' {_NOT_A_SIZE}",
+        ),
+        (
+            ["run", "R", "--on", "gzp"],
+            "error: --on: 'gzp' is not a measure (did you mean 'gzip'?); use raw, gzip or brotli",
+        ),
+        (
+            ["ladder", "R", "--on", "foo"],
+            "error: --on: 'foo' is not a measure; use raw, gzip or brotli",
+        ),
+        (
+            ["audit", "P", "--on", "brotly"],
+            "error: --on: 'brotly' is not a measure (did you mean 'brotli'?); use raw, gzip or "
+            "brotli",
+        ),
+    ],
+)
+def test_bad_size_or_measure_option_is_one_error_line_exit_2(
+    tmp_path: Path, args: list[str], line: str
+) -> None:
     recipe = project(tmp_path)
-    code, _, err = invoke("run", str(recipe), "--budget", "lots")
+    (tmp_path / "payload.json").write_bytes(b"{}")
+    given = [{"R": str(recipe), "P": str(tmp_path / "payload.json")}.get(a, a) for a in args]
+    code, out, err = invoke(*given)
     assert code == 2
-    assert "'lots' is not a size; use e.g. 300KB, 1.5MB, 200KiB or 250000" in err
+    assert out == ""
+    assert one_error_line(err) == line
+    assert not (tmp_path / "out").exists()  # nothing ran
+
+
+def test_size_and_measure_options_accept_every_documented_form(tmp_path: Path) -> None:
+    recipe = project(tmp_path)
+    for budget in ("300KB", "1.5MB", "200KiB", "250000"):
+        code, _, err = invoke("ladder", str(recipe), "--budget", budget, "--on", "raw", "--quiet")
+        assert code == 0, (budget, err)
+
+
+def test_help_shows_the_measure_choices() -> None:
+    for cmd in ("run", "ladder", "audit"):
+        code, out, _ = invoke(cmd, "--help")
+        assert code == 0
+        assert "--on [raw|gzip|brotli]" in out, cmd
 
 
 def test_set_overrides_are_validated_like_the_file(tmp_path: Path) -> None:

@@ -16,12 +16,11 @@ import numpy as np
 import polars as pl
 import pytest
 from click.testing import CliRunner
-from conftest import random_events, to_toml
 
 import reduce
 from reduce import cluster
 from reduce.cli import main
-from tests._builders import FIXTURES
+from tests._builders import FIXTURES, random_events, to_toml
 
 distributed = pytest.importorskip("distributed")
 

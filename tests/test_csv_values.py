@@ -14,7 +14,8 @@ import duckdb
 import numpy as np
 import polars as pl
 import pytest
-from conftest import invoke, to_toml
+
+from tests._builders import invoke, to_toml
 
 
 @pytest.fixture(autouse=True)

@@ -24,12 +24,12 @@ import h3
 import numpy as np
 import polars as pl
 import pytest
-from conftest import payload_frame, write_case
 
 import reduce
 from reduce import aggregate
 from reduce.budget import all_levels
 from reduce.pipeline import Reducer
+from tests._builders import payload_frame, write_case
 
 LEVELS = [9, 7, 5]
 KINDS = ("a", "b", "c", "d")

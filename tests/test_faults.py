@@ -23,11 +23,11 @@ from pathlib import Path
 import numpy as np
 import pytest
 from click.testing import CliRunner
-from conftest import random_events, write_case
 
 from reduce.cli import main
 from reduce.errors import OutputError
 from reduce.publish import LOCK_NAME, manifest_path, publish
+from tests._builders import random_events, write_case
 
 REPO = Path(__file__).resolve().parents[1]
 

@@ -19,7 +19,8 @@ from zoneinfo import ZoneInfo
 import duckdb
 import polars as pl
 import pytest
-from conftest import invoke, write_case
+
+from tests._builders import invoke, write_case
 
 CHI = "America/Chicago"
 

@@ -12,11 +12,11 @@ import numpy as np
 import orjson
 import polars as pl
 import pytest
-from conftest import random_events, to_toml
 
 import reduce
 from reduce import cache
 from reduce.pipeline import Reducer
+from tests._builders import random_events, to_toml
 
 
 def _recipe(folder: Path, *, distinct: bool = True, budget: bool = False) -> Path:

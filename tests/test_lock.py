@@ -25,8 +25,9 @@ from pathlib import Path
 import pytest
 from click.testing import CliRunner
 
-from reduce.audit.cli import audit
+from reduce.cli import main
 from reduce.publish import folder_lock, manifest_path, publish, reading
+from tests import _builders as builders
 from tests._builders import project
 
 REPO = Path(__file__).resolve().parents[1]
@@ -196,26 +197,13 @@ def test_publish_waits_for_the_lock_and_then_publishes(tmp_path: Path) -> None:
     assert check_pair(out, "p.json") == data
 
 
-def _builders():  # type: ignore[no-untyped-def]
-    import importlib.util
-
-    spec = importlib.util.spec_from_file_location(
-        "audit_builders", Path(__file__).parent / "fixtures_audit" / "builders.py"
-    )
-    assert spec is not None and spec.loader is not None
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
-
-
 def _interrupted_commit(out: Path) -> bytes:
     """A folder where a publish died between its two renames (its pid no longer runs)."""
-    b = _builders()
-    b.write_payload(out / "p.json", b.columns_payload(meta={"source": "old"}))
-    new = b.dump(b.columns_payload(meta={"source": "new"}))
+    builders.write_payload(out / "p.json", builders.columns_payload(meta={"source": "old"}))
+    new = builders.dump(builders.columns_payload(meta={"source": "new"}))
     (out / "p.json").write_bytes(new)  # the payload's rename happened
     tm = ".p.json.manifest.json.999999999.tmp"
-    (out / tm).write_bytes(b.dump(b.manifest_for(out / "p.json")))
+    (out / tm).write_bytes(builders.dump(builders.manifest_for(out / "p.json")))
     (out / ".p.json.reduce-commit").write_bytes(
         json.dumps(
             {"moves": [[".p.json.999999999.tmp", "p.json"], [tm, "p.json.manifest.json"]]}
@@ -229,7 +217,7 @@ def test_audit_completes_an_interrupted_commit_and_says_so(tmp_path: Path) -> No
     out = tmp_path / "out"
     out.mkdir()
     new = _interrupted_commit(out)
-    res = CliRunner().invoke(audit, [str(out), "--quiet"])
+    res = CliRunner().invoke(main, ["audit", str(out), "--quiet"])
     assert res.stderr.splitlines() == [
         f"{out / '.p.json.reduce-commit'}: completed an interrupted commit of p.json before "
         "auditing"
@@ -247,7 +235,7 @@ def test_audit_reports_a_refused_journal_as_one_finding(tmp_path: Path) -> None:
     journal.write_bytes(
         json.dumps({"moves": [["../x", "p.json"], ["y", "p.json.manifest.json"]]}).encode()
     )
-    res = CliRunner().invoke(audit, [str(out), "--quiet"])
+    res = CliRunner().invoke(main, ["audit", str(out), "--quiet"])
     assert res.exit_code == 1
     assert journal.exists()
     lines = [line for line in res.stderr.splitlines() if line.startswith(str(journal))]
@@ -268,7 +256,7 @@ def test_audit_waits_for_a_run_holding_the_lock_then_says_so(
     holder = hold_lock(out)
     try:
         monkeypatch.setenv("REDUCE_LOCK_WAIT", "0.1")
-        res = CliRunner().invoke(audit, [str(out / "p.json"), "--quiet"])
+        res = CliRunner().invoke(main, ["audit", str(out / "p.json"), "--quiet"])
     finally:
         release(holder)
     journal = out / ".p.json.reduce-commit"

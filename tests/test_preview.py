@@ -305,7 +305,8 @@ def test_ladder_page_shows_every_candidate_with_its_picture_and_marks_the_chosen
     import re
 
     import numpy as np
-    from conftest import random_events
+
+    from tests._builders import random_events
 
     events = random_events(np.random.default_rng(3), 3000)
     recipe = case(

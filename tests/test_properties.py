@@ -17,13 +17,13 @@ from typing import Any
 
 import h3
 import polars as pl
-from conftest import fit_payload, scan, write_case
 from hypothesis import HealthCheck, example, given, settings
 from hypothesis import strategies as st
 
 import reduce
 from reduce import aggregate, prune
 from reduce.recipe import parse_time_bin
+from tests._builders import fit_payload, scan, write_case
 
 SETTINGS = settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 

@@ -18,11 +18,11 @@ import duckdb
 import numpy as np
 import polars as pl
 import pytest
-from conftest import fit_payload, payload_frame, random_events, scan, write_case
 
 import reduce
 from reduce import aggregate
 from reduce.recipe import parse_time_bin
+from tests._builders import fit_payload, payload_frame, random_events, scan, write_case
 
 MEASURES = {
     "n": "count",

@@ -20,10 +20,10 @@ import h3
 import numpy as np
 import polars as pl
 import pytest
-from conftest import fit_payload, payload_frame, scan, write_case
 
 import reduce
 from reduce import aggregate
+from tests._builders import fit_payload, payload_frame, scan, write_case
 
 HEX_STRING = re.compile(r"^[0-9a-f]{15}$")
 

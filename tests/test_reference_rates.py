@@ -18,9 +18,9 @@ from typing import Any
 
 import polars as pl
 import pytest
-from conftest import payload_frame, write_case
 
 import reduce
+from tests._builders import payload_frame, write_case
 
 
 def _no_nan_loads(data: bytes) -> dict[str, Any]:

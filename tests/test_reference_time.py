@@ -26,10 +26,10 @@ from zoneinfo import ZoneInfo
 
 import polars as pl
 import pytest
-from conftest import write_case
 
 import reduce
 from reduce.pipeline import Reducer
+from tests._builders import write_case
 
 NY = "America/New_York"
 H = 3600

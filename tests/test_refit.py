@@ -11,11 +11,11 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from conftest import random_events, write_case
 
 import reduce
 from reduce import levels, manifest, measure, pipeline, tables
 from reduce.budget import all_levels
+from tests._builders import random_events, write_case
 
 
 def _case(tmp: Path) -> Path:

@@ -12,9 +12,8 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 import pytest
-from conftest import invoke
 
-from tests._builders import FIXTURES, write_recipe
+from tests._builders import FIXTURES, invoke, write_recipe
 
 NAMES = {"A": "Avra", "B": "Brell", "C": "Cosk", "D": "Dunmere"}
 

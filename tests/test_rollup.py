@@ -21,11 +21,11 @@ import h3
 import numpy as np
 import polars as pl
 import pytest
-from conftest import random_events, scan, write_case
 
 import reduce
 from reduce import aggregate
 from reduce.recipe import Recipe, parse_time_bin
+from tests._builders import random_events, scan, write_case
 
 ZONE = "America/New_York"
 MEASURES = {

@@ -26,9 +26,8 @@ from typing import Any
 
 import polars as pl
 import pytest
-from conftest import invoke
 
-from tests._builders import events
+from tests._builders import events, invoke
 
 PAYLOAD_RECIPE = """
 name = "safe"

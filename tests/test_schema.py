@@ -15,13 +15,13 @@ from typing import Any
 import jsonschema
 import pytest
 from click.testing import CliRunner
-from conftest import to_toml
 
 from reduce import recipe as R
 from reduce.cli import main
 from reduce.demo import RECIPES
 from reduce.publish import manifest_path
 from reduce.schema import SCHEMAS, recipe_schema
+from tests._builders import to_toml
 
 Validator = jsonschema.Draft202012Validator
 

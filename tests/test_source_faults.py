@@ -19,13 +19,13 @@ import numpy as np
 import polars as pl
 import pytest
 from click.testing import CliRunner
-from conftest import random_events, write_case
 
 import reduce
 from reduce import aggregate
 from reduce.cli import main
 from reduce.errors import SourceError
 from reduce.source import file_state, open_source
+from tests._builders import random_events, write_case
 
 
 def _case(tmp: Path) -> Path:

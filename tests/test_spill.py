@@ -18,13 +18,13 @@ from typing import Any
 import numpy as np
 import polars as pl
 import pytest
-from conftest import random_events, write_case
 
 import reduce
 from reduce import aggregate, tables
 from reduce.aggregate import Partial, Spilled
 from reduce.budget import all_levels
 from reduce.pipeline import Reducer
+from tests._builders import random_events, write_case
 
 MEASURES = {
     "n": "count",

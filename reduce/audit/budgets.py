@@ -11,11 +11,7 @@ from pathlib import Path
 from typing import Any
 
 from reduce.errors import AuditError, did_you_mean
-from reduce.sizes import (
-    MEASURES,
-    Measure,
-    parse_size,
-)
+from reduce.sizes import Measure, parse_measure, parse_size
 
 # --------------------------------------------------------------------------------------------
 # Budgets
@@ -141,10 +137,10 @@ def _budget_size(value: object, where: str) -> int:
 
 
 def _budget_measure(value: object, where: str) -> Measure:
-    if isinstance(value, str) and value in MEASURES:
-        return value
-    hint = did_you_mean(value, MEASURES) if isinstance(value, str) else ""
-    raise AuditError(f"{where}: {value!r} is not a measure{hint}; use raw, gzip or brotli")
+    try:
+        return parse_measure(value)
+    except ValueError as exc:
+        raise AuditError(f"{where}: {exc}") from None
 
 
 def _glob_regex(glob: str) -> re.Pattern[str]:

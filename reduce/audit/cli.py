@@ -6,7 +6,8 @@ completed first is one ``JOURNAL: completed ...`` line there too. Exit codes: 0 
 1 a file is inconsistent, a file or total is over budget, or an interrupted commit could not
 be completed; 2 bad input (missing or unreadable path, a FIFO, device or file over the size
 cap, malformed budgets file, bad size or measure). Errors are one ``error: ...`` line on
-stderr, never a traceback.
+stderr, never a traceback: ``--budget``/``--total``/``--on`` use the shared option types of
+:mod:`reduce.cli`, and every ``ReduceError`` is printed by the one handler there.
 """
 
 from __future__ import annotations
@@ -14,7 +15,8 @@ from __future__ import annotations
 import click
 
 from reduce.audit import audit_paths, render_markdown, render_table, report_to_json
-from reduce.errors import AuditError, ReduceError
+from reduce.cli import MEASURE, SIZE
+from reduce.errors import AuditError
 
 __all__ = ["audit"]
 
@@ -23,15 +25,16 @@ __all__ = ["audit"]
 @click.argument("paths", nargs=-1, metavar="PATH...")
 @click.option(
     "--budget",
+    type=SIZE,
     metavar="SIZE",
     help="Byte budget for every file, e.g. 300KB, 1.5MB, 200KiB.",
 )
 @click.option(
     "--on",
     "on",
+    type=MEASURE,
     default="gzip",
     show_default=True,
-    metavar="[raw|gzip|brotli]",
     help="Measure that --budget and --total apply to.",
 )
 @click.option(
@@ -40,7 +43,9 @@ __all__ = ["audit"]
     metavar="FILE",
     help="TOML file of [[file]] glob/max/on entries and an optional [total].",
 )
-@click.option("--total", metavar="SIZE", help="Budget for the sum over all audited files.")
+@click.option(
+    "--total", type=SIZE, metavar="SIZE", help="Budget for the sum over all audited files."
+)
 @click.option(
     "--brotli",
     "force_brotli",
@@ -67,10 +72,10 @@ __all__ = ["audit"]
 def audit(
     ctx: click.Context,
     paths: tuple[str, ...],
-    budget: str | None,
+    budget: int | None,
     on: str,
     budgets_file: str | None,
-    total: str | None,
+    total: int | None,
     force_brotli: bool,
     as_json: bool,
     markdown: bool,
@@ -85,35 +90,31 @@ def audit(
     link (1 Mbit/s assumed); checks reduce.columns/1 payloads against their contract and
     manifest; applies byte budgets.
     """
+    # A ReduceError (bad input) propagates to reduce.cli's group: one line, its exit code.
     measured: dict[str, dict[str, object]] = {}
-    try:
-        if as_json and markdown:
-            raise AuditError("--json and --markdown cannot be combined; choose one")
-        if max_draw_ms is not None and not measure:
-            raise AuditError("--max-draw-ms needs --measure (the pages are drawn to time them)")
-        if measure:
-            from reduce.browser import browser_paths
+    if as_json and markdown:
+        raise AuditError("--json and --markdown cannot be combined; choose one")
+    if max_draw_ms is not None and not measure:
+        raise AuditError("--max-draw-ms needs --measure (the pages are drawn to time them)")
+    if measure:
+        from reduce.browser import browser_paths
 
-            browser_paths()  # no browser: the line saying how to install it, exit 2
-        report = audit_paths(
-            paths,
-            budget=budget,
-            on=on,
-            budgets_file=budgets_file,
-            total=total,
-            brotli=force_brotli,
-        )
-        if measure:
-            from pathlib import Path
+        browser_paths()  # no browser: the line saying how to install it, exit 2
+    report = audit_paths(
+        paths,
+        budget=budget,
+        on=on,
+        budgets_file=budgets_file,
+        total=total,
+        brotli=force_brotli,
+    )
+    if measure:
+        from pathlib import Path
 
-            from reduce.browser import measure_payloads
+        from reduce.browser import measure_payloads
 
-            got = measure_payloads([Path(f.path) for f in report.files])
-            measured = {str(p): m for p, m in got.items()}
-    except ReduceError as err:
-        click.echo(f"error: {err.message}", err=True)
-        ctx.exit(err.exit_code)
-        return
+        got = measure_payloads([Path(f.path) for f in report.files])
+        measured = {str(p): m for p, m in got.items()}
 
     slow = [
         (path, m)
