@@ -14,13 +14,13 @@ from pathlib import Path
 import numpy as np
 import polars as pl
 import pytest
-from conftest import random_events, write_case
 
 import reduce
 from reduce import levels, measure, pipeline, tables
 from reduce.budget import all_levels, level_key
 from reduce.levels import Level
 from reduce.sizes import gzip_bytes, parse_size
+from tests._builders import random_events, write_case
 
 
 @pytest.fixture(autouse=True)
