@@ -252,7 +252,9 @@ class Measurer(LevelTables):
         :data:`CLOSE_GUESS`). A level
         measured before (the store kept with the cache entry) is not measured again when what
         was kept settles the question."""
-        c = self._from_store(level, exact=exact, on=on, limit=limit, brotli=brotli, quick=quick)
+        c = self._from_store(
+            level, exact=exact, on=on, limit=limit, brotli=brotli, quick=quick, defer=defer
+        )
         if c is not None:
             return c
         c = self._measure(
@@ -270,6 +272,7 @@ class Measurer(LevelTables):
         limit: int | None,
         brotli: bool | None,
         quick: bool = True,
+        defer: bool = False,
     ) -> bsearch.Candidate | None:
         rec = self.store.get(level)
         if rec is None:
@@ -304,7 +307,11 @@ class Measurer(LevelTables):
             return None
         look = quick_verdict(on, limit, fast, rec.gzip_mid if on == "gzip" else None)
         if look.fits is None:
-            return None
+            if not defer:
+                return None
+            c.guess = int((look.mid or look.fast or 0) * CLOSE_GUESS[on])  # as in _measure
+            c.fits, c.floor, c.note = c.guess <= limit, look.floor, QUICK_NOTE
+            return c
         c.fits, c.floor, c.note = look.fits, look.floor, QUICK_NOTE
         c.guess = look.mid or look.fast
         return c
@@ -331,10 +338,21 @@ class Measurer(LevelTables):
                 or brotli is True
                 or (brotli is None and len(data) <= BROTLI_AUTO_MAX)
             )
-            if want_brotli:
+            known = self.store.get(level)  # exact lengths measured before are not taken again
+            if want_brotli and (known is None or known.brotli is None):
                 self._start_exact(level, data, "brotli")  # beside gzip, on another thread
-            c.gzip = self._exact_length(level, data, "gzip")
-            c.brotli = self._exact_length(level, data, "brotli") if want_brotli else None
+            c.gzip = (
+                known.gzip
+                if known is not None and known.gzip is not None
+                else self._exact_length(level, data, "gzip")
+            )
+            c.brotli = None
+            if want_brotli:
+                c.brotli = (
+                    known.brotli
+                    if known is not None and known.brotli is not None
+                    else self._exact_length(level, data, "brotli")
+                )
             if on is not None and limit is not None:
                 size = c.size(on)
                 assert size is not None

@@ -34,6 +34,7 @@ from reduce.measure import Measurer
 from reduce.publish import manifest_path, resolve_output
 from reduce.recipe import Budget, Recipe, load_recipe, with_budget
 from reduce.sizes import (
+    BROTLI_AUTO_MAX,
     MEASURES,
     Measure,
     parse_size,
@@ -156,12 +157,11 @@ def fit(
         """Whether a candidate evaluated before answers as asked: ``force_exact``, every
         measure exact; ``verify``, the budget's measure exact (or an exact compression
         stopped over the limit); ``full``, judged on the level's whole payload."""
-        if force_exact:
-            return (
-                not c.estimated
-                and c.gzip is not None
-                and not (c.brotli is None and b is not None and b.on == "brotli")
+        if force_exact:  # brotli as measure_all takes it: on a brotli budget, or small
+            want_brotli = (b is not None and b.on == "brotli") or (
+                c.raw is not None and c.raw <= BROTLI_AUTO_MAX
             )
+            return not c.estimated and c.gzip is not None and not (c.brotli is None and want_brotli)
         if verify and b is not None:
             return not c.estimated and (c.size(b.on) is not None or c.note.startswith(">"))
         return not (full and c.estimated)

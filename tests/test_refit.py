@@ -127,3 +127,17 @@ def test_a_changed_denominators_file_is_not_served_from_the_store(tmp_path: Path
     assert warm.path is not None and cold.path is not None
     assert warm.path.read_bytes() == cold.path.read_bytes()
     assert warm.path.read_bytes() != first.path.read_bytes()
+
+
+def test_a_second_run_at_the_same_budget_compresses_nothing(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # The chosen level's brotli length (taken for payloads up to 4 MB raw) is kept with its
+    # gzip length, so publishing it again measures nothing.
+    path = _case(tmp_path)
+    first = reduce.run(path, out_dir=tmp_path / "a", budget="40KB")
+    assert first.fit.chosen is not None and first.fit.chosen.brotli is not None
+    _no_building(monkeypatch)
+    again = reduce.run(path, out_dir=tmp_path / "b", budget="40KB")
+    assert first.path is not None and again.path is not None
+    assert again.path.read_bytes() == first.path.read_bytes()
