@@ -18,6 +18,9 @@ from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
+# numpy is imported here, by Python: otherwise polars' to_numpy imports it from inside its own
+# code, where the exception of a SIGTERM arriving then cannot unwind (a panic, exit 1).
+import numpy as np
 import orjson
 import polars as pl
 import polars_h3 as plh3
@@ -125,7 +128,6 @@ def _dictionary(s: pl.Series) -> tuple[bytes, bytes] | None:
     order is code-point order, so polars' sort agrees with Python's); a null stays null in
     the indexes. Both sizes are counted from each label's number of rows and the length of
     its JSON text, without writing out the plain column."""
-    import numpy as np
 
     n = s.len()
     distinct = s.drop_nulls().unique().sort()
@@ -197,8 +199,6 @@ def _cells_json(s: pl.Series) -> bytes | None:
     if not n:
         return b"[]"
     import binascii
-
-    import numpy as np
 
     # The big-endian bytes of each cell in hex: 16 digits, the first always 0 (a cell is
     # below 16^15), whose place the opening quote takes.
