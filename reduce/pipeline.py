@@ -153,10 +153,10 @@ def fit(
             default=0,
         )
 
-    def settled(c: bsearch.Candidate, force_exact: bool, verify: bool, full: bool) -> bool:
+    def settled(c: bsearch.Candidate, force_exact: bool, verify: bool) -> bool:
         """Whether a candidate evaluated before answers as asked: ``force_exact``, every
         measure exact; ``verify``, the budget's measure exact (or an exact compression
-        stopped over the limit); ``full``, judged on the level's whole payload."""
+        stopped over the limit); otherwise any verdict."""
         if force_exact:  # brotli as measure_all takes it: on a brotli budget, or small
             want_brotli = (b is not None and b.on == "brotli") or (
                 c.raw is not None and c.raw <= BROTLI_AUTO_MAX
@@ -164,21 +164,20 @@ def fit(
             return not c.estimated and c.gzip is not None and not (c.brotli is None and want_brotli)
         if verify and b is not None:
             return not c.estimated and (c.size(b.on) is not None or c.note.startswith(">"))
-        return not (full and c.estimated)
+        return True
 
     def evaluate(
         level: Mapping[str, Any],
         *,
         force_exact: bool = False,
         verify: bool = False,
-        full: bool = False,
     ) -> bsearch.Candidate:
         level = Level.of(level)
         k = bsearch.level_key(level)
         c = cands.get(k)
-        if c is not None and settled(c, force_exact, verify, full):
+        if c is not None and settled(c, force_exact, verify):
             return c
-        if use_estimates and not (force_exact or verify or full) and b is not None:
+        if use_estimates and not (force_exact or verify) and b is not None:
             per_row = [
                 x.floor / x.rows
                 for x in cands.values()
@@ -212,7 +211,7 @@ def fit(
             on=b.on if b else None,
             limit=b.max if b else None,
             quick=not verify,
-            defer=use_estimates and not (force_exact or verify or full),
+            defer=use_estimates and not (force_exact or verify),
         )
         cands[k] = c
         counted.append((level, c.rows))

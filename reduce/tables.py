@@ -98,14 +98,15 @@ class LevelTables:
         self._visibles: dict[tuple[Any, Any], Partial] = {}
         self._rows: dict[tuple[Any, ...], LevelRows] = {}
         self._den: pl.DataFrame | None = None
-        self._ranks: dict[tuple[Any, Any], pl.Series] = {}
+        self._ranks: dict[Any, pl.Series] = {}
         self._row_counts: dict[tuple[Any, ...], int] = {}
         self._histograms: dict[tuple[Any, Any], pl.DataFrame] = {}
         # distinct keys per part of levels counted from spilled rows, when small enough
         self._keysets: dict[tuple[Any, Any], list[pl.DataFrame]] = {}
         self._split: dict[int | None, pl.Series | None] = {}
         self._sample_partials: dict[tuple[Any, Any, int], Partial] = {}
-        self._sample_ranks: dict[tuple[Any, Any, int], pl.Series] = {}
+        self._sample_ranks: dict[Any, pl.Series] = {}
+        self._cells: dict[int | None, int] = {}  # distinct cells per resolution
         n = recipe.normalize
         if n is not None and n.denominators is not None:
             self._den = normalize.load_denominators(n.denominators)
@@ -378,18 +379,28 @@ class LevelTables:
         r = self.recipe
         k = (level.get("hex"), level.get("time"), level.get("top"))
         if k not in self._rows:
-            p = self._visible(level.get("hex"), level.get("time"))
+            h, t = level.get("hex"), level.get("time")
+            p = self._visible(h, t)
             if r.top is not None:
-                rk = (level.get("hex"), level.get("time"))
-                if rk not in self._ranks:
-                    self._ranks[rk] = prune.rank_rows(r, p)
-                p = prune.top_k(r, p, int(level["top"]), self._ranks[rk])
-            p, sup_rows, sup_cells = prune.suppress(r, p)
-            final = aggregate.finalize(r, p)
-            final, report = normalize.apply(r, final, den=self._den, hex_res=level.get("hex"))
-            final = encode.sort_rows(r, final)
-            self._rows[k] = LevelRows(final, sup_rows, sup_cells, report)
+                p = self._top_k(p, int(level["top"]), self._ranks, (h, t))
+            self._rows[k] = self._finish(p, h)
         return self._rows[k]
+
+    def _top_k(
+        self, p: Partial, k: int, ranks: dict[Any, pl.Series], key: tuple[Any, ...]
+    ) -> Partial:
+        """Top-k of ``p``, its ranks computed once per ``key`` (they do not depend on k)."""
+        if key not in ranks:
+            ranks[key] = prune.rank_rows(self.recipe, p)
+        return prune.top_k(self.recipe, p, k, ranks[key])
+
+    def _finish(self, p: Partial, hex_res: int | None) -> LevelRows:
+        """Suppress, finalize, normalize and sort a level's partial into its rows."""
+        r = self.recipe
+        p, sup_rows, sup_cells = prune.suppress(r, p)
+        final = aggregate.finalize(r, p)
+        final, report = normalize.apply(r, final, den=self._den, hex_res=hex_res)
+        return LevelRows(encode.sort_rows(r, final), sup_rows, sup_cells, report)
 
     def sample_every(self, level: Mapping[str, Any], rows: int) -> int:
         """How thinly a level of ``rows`` rows is sampled: 1 in ``every`` of its hex cells (of
@@ -400,8 +411,7 @@ class LevelTables:
         col = HEX if r.hex else TIME if r.time else None
         if col is None or rows < SAMPLE_MIN_LEVEL_ROWS:
             return 1
-        keys = self._visible(level.get("hex"), level.get("time")).table.get_column(col)
-        most = min(rows // SAMPLE_ROWS, keys.n_unique() // SAMPLE_MIN_KEYS)
+        most = min(rows // SAMPLE_ROWS, self._distinct_keys(level) // SAMPLE_MIN_KEYS)
         every = 1
         while every * 2 <= min(most, SAMPLE_MAX_EVERY):
             every *= 2
@@ -415,25 +425,35 @@ class LevelTables:
         r = self.recipe
         col = HEX if r.hex else TIME
         h, t = level.get("hex"), level.get("time")
+        k = int(level["top"]) if r.top is not None else 0
         if r.top is not None and col not in prune.within_columns(r, r.top.within):
             # Ranks span sampled and unsampled cells: rank the whole level, then sample.
-            p = self._visible(h, t)
-            rk = (h, t)
-            if rk not in self._ranks:
-                self._ranks[rk] = prune.rank_rows(r, p)
-            p = prune.top_k(r, p, int(level["top"]), self._ranks[rk])
+            p = self._top_k(self._visible(h, t), k, self._ranks, (h, t))
             p = aggregate.take(p, sample_mask(p.table, col, every))
         else:
             p = self._sampled_partial(h, t, every)
             if r.top is not None:
-                sk = (h, t, every)
-                if sk not in self._sample_ranks:
-                    self._sample_ranks[sk] = prune.rank_rows(r, p)
-                p = prune.top_k(r, p, int(level["top"]), self._sample_ranks[sk])
-        p, _, _ = prune.suppress(r, p)
-        final = aggregate.finalize(r, p)
-        final, _ = normalize.apply(r, final, den=self._den, hex_res=level.get("hex"))
-        return encode.sort_rows(r, final)
+                p = self._top_k(p, k, self._sample_ranks, (h, t, every))
+        return self._finish(p, h).frame
+
+    def _distinct_keys(self, level: Mapping[str, Any]) -> int:
+        """Distinct cells of the level's resolution, from the finest partial's cell column
+        (one column of it, not the level's roll-up); without hex, the level's time bins
+        (from its roll-up, which a time-only sample is taken from anyway)."""
+        r = self.recipe
+        h, t = level.get("hex"), level.get("time")
+        if not r.hex or h is None:
+            return self._visible(h, t).table.get_column(TIME).n_unique()
+        if h not in self._cells:
+            finest = self.finest()
+            col = HEX if h == finest.hex_res else hidden_hex(h)
+            if isinstance(finest, Partial):
+                self._cells[h] = finest.table.get_column(col).n_unique()
+            else:
+                self._cells[h] = int(
+                    finest.frame().select(pl.col(col).n_unique()).collect(engine="streaming").item()
+                )
+        return self._cells[h]
 
     def _sampled_partial(self, h: int | None, t: str | None, every: int) -> Partial:
         """The partial at (hex, time) grouped by its keys, restricted to the sampled cells
