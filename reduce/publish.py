@@ -532,6 +532,9 @@ def _commit(
                 for t, f in moves[renamed:]:
                     os.replace(t, f)
                     renamed += 1
+        if renamed == len(moves):  # the commit is complete: its journal has done its work
+            with contextlib.suppress(OSError):
+                journal.unlink(missing_ok=True)
         if renamed == 0:
             for p in (*(t for t, _ in moves), jtmp, *((journal,) if journalled else ())):
                 with contextlib.suppress(OSError):
