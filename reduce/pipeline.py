@@ -30,7 +30,7 @@ from reduce import levels
 from reduce.errors import BudgetError, RecipeError
 from reduce.levels import Level
 from reduce.manifest import build_manifest
-from reduce.measure import Measurer
+from reduce.measure import QUICK_NOTE, Measurer
 from reduce.publish import manifest_path, resolve_output
 from reduce.recipe import Budget, Recipe, load_recipe, with_budget
 from reduce.sizes import (
@@ -301,7 +301,7 @@ def _confirm_neighbours(
     moved = True
     while moved:
         moved = False
-        for finer in _close_neighbours(ladder, current, cands, on, limit):
+        for finer in _close_neighbours(ladder, current, cands, on, limit, evaluate):
             if evaluate(finer, verify=True).fits:
                 current = finer
                 moved = True
@@ -315,10 +315,12 @@ def _close_neighbours(
     cands: Mapping[tuple[Any, ...], bsearch.Candidate],
     on: Measure,
     limit: int,
+    evaluate: Callable[..., bsearch.Candidate] | None = None,
 ) -> list[Level]:
-    """The one-step-finer neighbours of ``level`` judged only by cheap evidence (a fast
-    compression, a sample or a row count) whose best guess is within 10% of the budget (or
-    unknown): those are measured exactly before a choice stands."""
+    """The one-step-finer neighbours of ``level`` judged only by cheap evidence that could
+    still fit: a fast compression whose certain lower bound is within the budget, or a sample
+    or row count whose best guess is within 10% of it (or unknown). Those are measured exactly
+    before a choice stands."""
     out = []
     for axis, lv in ladder.items():
         i = list(lv).index(level[axis])
@@ -326,10 +328,21 @@ def _close_neighbours(
             continue
         finer = level.with_(axis, lv[i - 1])
         c = cands.get(bsearch.level_key(finer))
+        if c is None and evaluate is not None:
+            # A neighbour of a level moved to after the search: new evidence, judged here.
+            c = evaluate(finer)
+            if c.fits or c.estimated or c.note == QUICK_NOTE:
+                out.append(finer)
+            continue
         if c is None or c.size(on) is not None or c.note.startswith(">"):
             continue  # not evaluated, or its verdict came from an exact compression
-        if c.guess is not None and c.guess > (1 + NEIGHBOUR_MARGIN) * limit:
-            continue
+        if c.note == QUICK_NOTE:
+            # A fast compression's verdict carries a certain lower bound: measure the
+            # neighbour exactly whenever that bound leaves room to fit.
+            if c.floor is not None and c.floor > limit:
+                continue
+        elif c.guess is not None and c.guess > (1 + NEIGHBOUR_MARGIN) * limit:
+            continue  # a sample or a row count far enough over
         out.append(finer)
     return out
 
