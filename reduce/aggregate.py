@@ -23,6 +23,7 @@ from pathlib import Path
 
 import polars as pl
 
+from reduce import cells
 from reduce.contract import INVALID_REASONS
 from reduce.errors import OutputError, SourceError, shown_path
 from reduce.keys import (
@@ -299,10 +300,12 @@ def scan_partial(
     ]
     by = [*keys, *hidden, *([INVALID] if reason is not None else []), *dnames]
     aggs = _scan_aggs(renamed, floats)
+    input_rows = src.count_rows()
+    rows = _keyed_rows(recipe, src, select, hidden, input_rows, label)
 
     def scan(frame: pl.LazyFrame) -> pl.DataFrame:
         try:
-            out = frame.select(select).group_by(by).agg(aggs).collect(engine="streaming")
+            out = rows(frame).group_by(by).agg(aggs).collect(engine="streaming")
         except pl.exceptions.PolarsError as e:
             raise _scan_error(recipe, src, label, e) from None
         if reason is None:
@@ -324,7 +327,6 @@ def scan_partial(
         except pl.exceptions.PolarsError as e:
             raise _scan_error(recipe, src, label, e) from None
 
-    input_rows = src.count_rows()
     probe = probe or probe_rows()
     can_spill = spill_dir is not None and not dnames and src.format == "parquet"
     always = always_spill and can_spill
@@ -350,15 +352,15 @@ def scan_partial(
                     "(events too sparse to group in memory)"
                 )
             folder = spill_dir()
-            rows = lf.select(select)
+            keyed = rows(lf)
             if reason is None:
-                rows = rows.with_columns(reason_of_groups(list(keys)))
+                keyed = keyed.with_columns(reason_of_groups(list(keys)))
             n_parts = parts or max(1, min(64, -(-input_rows // PART_ROWS)))
             target = pl.PartitionBy(
                 folder / "rows", include_key=False, key={"__part": _part_of(recipe, keys, n_parts)}
             )
             try:
-                rows.sink_parquet(target, compression="lz4", statistics=False, mkdir=True)
+                keyed.sink_parquet(target, compression="lz4", statistics=False, mkdir=True)
             except (pl.exceptions.PolarsError, OSError) as e:
                 full = _disk_full(e)
                 if full is None and isinstance(e, pl.exceptions.PolarsError):
@@ -409,6 +411,56 @@ def scan_partial(
         time_bin=recipe.time.levels[0] if recipe.time else None,
         accounting=acc,
     )
+
+
+def _keyed_rows(
+    recipe: Recipe,
+    src: OpenSource,
+    select: Sequence[pl.Expr],
+    hidden: Sequence[str],
+    input_rows: int,
+    label: str,
+) -> Callable[[pl.LazyFrame], pl.LazyFrame]:
+    """How the scan turns source rows into keyed rows: ``select``, except that on a source
+    of at least ``cells.FAST_MIN_ROWS`` rows the coarser exact cells (the hidden columns)
+    come from :func:`reduce.cells.with_coarse` instead of indexing every point at every
+    resolution. Both give the same cells (see :mod:`reduce.cells`); the columns and their
+    order are the same too, only the row order may differ (the scan groups them)."""
+    if not hidden or input_rows < cells.FAST_MIN_ROWS:
+        return lambda frame: frame.select(select)
+    assert recipe.hex is not None and recipe.source.lat and recipe.source.lon
+    lat, lon = recipe.source.lat, recipe.source.lon
+    try:
+        fine = cells.sample_cells(
+            src.rows_frame(0, cells.TABLE_ROWS), lat, lon, recipe.hex.levels[0]
+        )
+    except pl.exceptions.PolarsError as e:
+        raise _scan_error(recipe, src, label, e) from None
+    res = {r: hidden_hex(r) for r in recipe.hex.levels[1:] if hidden_hex(r) in hidden}
+    tables = cells.tables(fine, sorted(res, reverse=True))
+    order = [e.meta.output_name() for e in select]
+    plain = [e for e in select if e.meta.output_name() not in res.values()]
+    # Raw coordinates suffice: an invalid row's finest cell is null, and so are its others.
+    helpers = [
+        pl.col(lat).cast(pl.Float64).alias(_LAT),
+        pl.col(lon).cast(pl.Float64).alias(_LON),
+    ]
+
+    def rows(frame: pl.LazyFrame) -> pl.LazyFrame:
+        out = cells.with_coarse(
+            frame.select([*plain, *helpers]),
+            fine=HEX,
+            lat=_LAT,
+            lon=_LON,
+            tables=tables,
+            names=res,
+        )
+        return out.select(order)
+
+    return rows
+
+
+_LAT, _LON = "__scan_lat", "__scan_lon"
 
 
 def _check_overflow(

@@ -14,10 +14,12 @@ counts rows per code.
 - Every hex level is exact: a point counts in the cell that contains it at that resolution
   (what ``h3.latlng_to_cell`` gives), not in the H3 parent of its finest cell, because parents
   do not contain their children (a point near a coarse cell's edge can lie in the neighbour of
-  its finest cell's parent). The scan therefore indexes each point at every resolution of the
-  ladder: the finest cell is the ``hex`` key, the coarser ones ride along as hidden key
+  its finest cell's parent). The scan therefore finds each point's cell at every resolution
+  of the ladder: the finest cell is the ``hex`` key, the coarser ones ride along as hidden key
   columns ``__hex<r>`` (see :func:`hidden_hex`), and a roll-up to resolution ``r`` takes its
-  cell from ``__hex<r>``. A finest group rarely splits on them (only where its cell straddles
+  cell from ``__hex<r>``. :func:`scan_keys` indexes every point at every resolution; on large
+  sources the scan instead confirms most points inside their finest cell's parent by
+  geometry and indexes the rest again (:mod:`reduce.cells`), with the same cells. A finest group rarely splits on them (only where its cell straddles
   a coarser cell's edge), so the partial barely grows.
 - time bins are the start of the bin in the declared IANA zone, truncated on the local clock
   so a day bin starts at local midnight across DST changes and a week bin on Monday

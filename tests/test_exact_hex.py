@@ -26,7 +26,7 @@ import polars as pl
 import pytest
 
 import reduce
-from reduce import aggregate
+from reduce import aggregate, cells
 from reduce.budget import all_levels
 from reduce.pipeline import Reducer
 from tests._builders import payload_frame, write_case
@@ -153,6 +153,19 @@ def _level_frame(red: Reducer, level: dict[str, Any]) -> pl.DataFrame:
 @pytest.fixture(scope="module")
 def points() -> pl.DataFrame:
     return _edge_points(5)
+
+
+@pytest.fixture(autouse=True, params=["indexed", "tabled"])
+def coarse_cells(request: pytest.FixtureRequest, monkeypatch: pytest.MonkeyPatch) -> str:
+    """Each test runs twice: with the scan indexing every point at every resolution, and with
+    the coarser cells found from the tables of parents (reduce.cells), tabled from the first
+    half of the rows only, so that some points' parents are missing from the tables too."""
+    if request.param == "tabled":
+        monkeypatch.setattr(cells, "FAST_MIN_ROWS", 0)
+        monkeypatch.setattr(cells, "TABLE_ROWS", _edge_points(5).height // 2)
+    else:
+        monkeypatch.setattr(cells, "FAST_MIN_ROWS", 10**12)
+    return str(request.param)
 
 
 def test_edge_points_are_where_h3_parents_go_wrong(points: pl.DataFrame) -> None:
