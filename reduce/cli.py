@@ -337,6 +337,12 @@ def run_cmd(
     help="Comma-separated axes, first gives up detail first (overrides budget.order).",
 )
 @click.option("--all", "every", is_flag=True, help="Evaluate every combination of levels.")
+@click.option(
+    "--exact",
+    is_flag=True,
+    help="Measure raw, gzip and brotli bytes of every level shown (slower; by default a "
+    "level the search judged from cheap evidence shows that estimate, marked ~).",
+)
 @click.option("--json", "as_json", is_flag=True, help="Print the frontier as JSON.")
 @click.option(
     "--page",
@@ -350,6 +356,7 @@ def ladder_cmd(
     recipe: Path,
     order: str | None,
     every: bool,
+    exact: bool,
     as_json: bool,
     budget_max: int | None,
     on: str | None,
@@ -358,7 +365,12 @@ def ladder_cmd(
     quiet: bool,
     page: Path | None = None,
 ) -> None:
-    """Show every candidate level evaluated: rows, drawn elements, bytes, fits or not."""
+    """Show every candidate level evaluated: rows, drawn elements, bytes, fits or not.
+
+    Levels the search judged from cheap evidence (a sample, a fast compression, rows times
+    bytes per row) show that estimate, marked ~; the chosen level is always exact. On a warm
+    cache the figures come from the store of measured levels, without measuring again.
+    --exact measures every level shown."""
     from reduce import report
     from reduce.pipeline import ladder
 
@@ -378,6 +390,7 @@ def ladder_cmd(
             overrides=_overrides(sets),
             use_cache=not no_cache,
             every_level=every,
+            exact=exact,
             progress=progress,
         )
     if page is not None:

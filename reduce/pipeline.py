@@ -356,10 +356,11 @@ def _same_levels(a: Recipe, b: Recipe) -> bool:
     return strip(a) == strip(b)
 
 
-def ladder(recipe: Recipe | str | Path, **kw: Any) -> FitResult:
-    """Like :func:`fit`, measuring raw, gzip and brotli bytes of every candidate."""
-    kw.setdefault("exact", True)
-    return fit(recipe, **kw)
+def ladder(recipe: Recipe | str | Path, *, exact: bool = True, **kw: Any) -> FitResult:
+    """Like :func:`fit`, measuring raw, gzip and brotli bytes of every candidate
+    (``exact=False``: as :func:`fit` does, estimates steering and the chosen level exact;
+    what ``reduce ladder`` shows without ``--exact``)."""
+    return fit(recipe, exact=exact, **kw)
 
 
 def smallest_message(result: FitResult) -> str:

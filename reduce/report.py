@@ -117,17 +117,22 @@ def ladder_table(result: FitResult) -> str:
     cands: list[Candidate] = sorted(
         result.candidates, key=lambda c: [_rank(result, a, c.level[a]) for a in axes]
     )
+    on = result.budget.on if result.budget else None
     for c in cands:
+        sizes = {m: _num(c.size(m)) for m in ("raw", "gzip", "brotli")}
+        if on is not None and c.size(on) is None and c.guess is not None:
+            sizes[on] = f"~{c.guess:,}"  # the estimate the search went by
+        verdict = "-" if c.fits is None else ("yes" if c.fits else "no")
         rows.append(
             [
                 "*" if c.chosen else "",
                 *[str(c.level[a]) for a in axes],
                 _num(c.rows),
                 _num(c.elements),
-                _num(c.raw),
-                _num(c.gzip),
-                _num(c.brotli),
-                "-" if c.fits is None else ("yes" if c.fits else "no"),
+                sizes["raw"],
+                sizes["gzip"],
+                sizes["brotli"],
+                f"~{verdict}" if c.estimated and c.fits is not None else verdict,
             ]
         )
     widths = [max(len(r[i]) for r in [head, *rows]) for i in range(len(head))]
@@ -139,6 +144,11 @@ def ladder_table(result: FitResult) -> str:
         ).rstrip()
 
     lines = [fmt(head), fmt(["-" * w for w in widths]), *map(fmt, rows)]
+    if any(c.estimated for c in cands):
+        lines.append(
+            "~: not measured exactly (a sample of the level's cells, a fast compression or "
+            "its rows times bytes per row); --exact measures every level shown"
+        )
     b = result.budget
     if b:
         lines.append(
@@ -174,6 +184,8 @@ def ladder_json(result: FitResult) -> bytes:
                 "brotli": c.brotli,
                 "fits": c.fits,
                 "chosen": c.chosen,
+                "estimated": c.estimated,
+                "guess": c.guess if c.estimated else None,
             }
             for c in result.candidates
         ],

@@ -235,13 +235,99 @@ def test_ladder_table_marks_chosen_and_json_lists_candidates(tmp_path: Path) -> 
     assert code == 0, err
     chosen = [ln for ln in out.splitlines() if ln.startswith("*")]
     assert len(chosen) == 1
-    code, out, err = invoke("ladder", str(recipe), "--json", "--budget", "20KB")
+    code, out, err = invoke("ladder", str(recipe), "--json", "--budget", "20KB", "--exact")
     assert code == 0, err
     doc = json.loads(out)
     assert doc["budget"]["max"] == 20000
     assert sum(c["chosen"] for c in doc["candidates"]) == 1
     for c in doc["candidates"]:
         assert c["fits"] == (c["gzip"] <= 20000)
+        assert c["brotli"] is not None and not c["estimated"]
+
+
+def _sampling(monkeypatch: pytest.MonkeyPatch) -> None:
+    from reduce import tables
+
+    monkeypatch.setattr(tables, "SAMPLE_MIN_LEVEL_ROWS", 2000)
+    monkeypatch.setattr(tables, "SAMPLE_ROWS", 400)
+    monkeypatch.setattr(tables, "SAMPLE_MIN_KEYS", 20)
+
+
+def test_ladder_shows_the_searchs_estimates_marked_and_exact_measures_them(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    _sampling(monkeypatch)
+    recipe = project(tmp_path, df=events(20_000, seed=3))
+    args = ("ladder", str(recipe), "--budget", "40KB", "--no-cache", "-q")
+    code, out, err = invoke(*args, "--json")
+    assert code == 0, err
+    quick = json.loads(out)["candidates"]
+    estimated = [c for c in quick if c["estimated"]]
+    assert estimated, "the search judged some level from cheap evidence"
+    assert not [c for c in quick if c["chosen"] and (c["estimated"] or c["gzip"] is None)]
+    code, table, _ = invoke(*args)
+    assert code == 0
+    marked = [ln for ln in table.splitlines() if ln.rstrip().endswith(("~no", "~yes"))]
+    assert len(marked) == sum(c["fits"] is not None for c in estimated)
+    assert "~: not measured exactly" in table
+    for c in estimated:
+        if c["gzip"] is None and c["guess"] is not None:
+            assert f"~{c['guess']:,}" in table
+    code, out, _ = invoke(*args, "--json", "--exact")
+    exact = json.loads(out)["candidates"]
+    assert code == 0 and not [c for c in exact if c["estimated"] or c["gzip"] is None]
+    # Whatever the quick ladder shows without ~ is what --exact measures for that level.
+    by_level = {json.dumps(c["level"], sort_keys=True): c for c in exact}
+    shared = [c for c in quick if json.dumps(c["level"], sort_keys=True) in by_level]
+    assert shared  # the coarsest level is evaluated by both
+    for c in shared:
+        e = by_level[json.dumps(c["level"], sort_keys=True)]
+        assert c["rows"] == e["rows"]
+        for m in ("raw", "gzip", "brotli"):
+            assert c[m] is None or c[m] == e[m], (c["level"], m)
+
+
+def test_warm_ladder_after_a_run_prints_the_figures_without_measuring(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from reduce import sizes
+
+    _sampling(monkeypatch)
+    recipe = project(tmp_path, df=events(20_000, seed=3))
+    code, _, err = invoke("run", str(recipe), "--budget", "40KB", "-q", "--json")
+    assert code == 0, err
+    code, cold, _ = invoke("ladder", str(recipe), "--budget", "40KB", "--json")
+    assert code == 0
+
+    def no(*a: object, **kw: object) -> object:
+        raise AssertionError("measured again")
+
+    from reduce import manifest, measure, pipeline
+
+    for module in (sizes, measure, pipeline, manifest):  # where the names are imported
+        for name in (
+            "gzip_bytes",
+            "brotli_bytes",
+            "fast_length",
+            "quick_look",
+            "measure_all",
+            "fits_on",
+            "size_on",
+        ):
+            if hasattr(module, name):
+                monkeypatch.setattr(module, name, no)
+    code, warm, err = invoke("ladder", str(recipe), "--budget", "40KB", "--json")
+    assert code == 0, err
+    before = {json.dumps(c["level"]): c for c in json.loads(cold)["candidates"]}
+    after = json.loads(warm)["candidates"]
+    assert [c["level"] for c in after if c["chosen"]] == [
+        c["level"] for c in before.values() if c["chosen"]
+    ]
+    for c in after:  # every figure shown was known before (exact ones unchanged)
+        b = before[json.dumps(c["level"])]
+        assert c["rows"] == b["rows"]
+        for m in ("raw", "gzip", "brotli"):
+            assert c[m] is None or c[m] == b[m]
 
 
 def test_every_command_has_help() -> None:
