@@ -490,4 +490,7 @@ def _store_name(recipe: Recipe) -> str:
     modification time of its denominators file."""
     n = recipe.normalize
     den = n.denominators.path if n is not None and n.denominators is not None else None
-    return levels.store_hash(recipe.document, f"{recipe.file.parent}\0{cache.file_stamp(den)}")
+    # The folder resolved: the same recipe named by a relative or an absolute path (or through
+    # a symbolic link) shares its store.
+    folder = recipe.file.parent.resolve()
+    return levels.store_hash(recipe.document, f"{folder}\0{cache.file_stamp(den)}")

@@ -141,3 +141,19 @@ def test_a_second_run_at_the_same_budget_compresses_nothing(
     again = reduce.run(path, out_dir=tmp_path / "b", budget="40KB")
     assert first.path is not None and again.path is not None
     assert again.path.read_bytes() == first.path.read_bytes()
+
+
+def test_the_same_recipe_by_a_relative_absolute_or_linked_path_shares_its_store(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    path = _case(tmp_path / "project").resolve()
+    reduce.run(path, out_dir=tmp_path / "a")
+    link = tmp_path / "linked"
+    link.symlink_to(path.parent, target_is_directory=True)
+    monkeypatch.chdir(path.parent.parent)
+    relative = Path(path.parent.name) / path.name
+    _no_building(monkeypatch)  # the runs below find every figure in the first run's store
+    for p in (relative, link / path.name, Path(".") / relative):
+        again = reduce.run(p, out_dir=tmp_path / "b")
+        assert again.path is not None
+        assert again.path.read_bytes() == (tmp_path / "a" / again.path.name).read_bytes()
