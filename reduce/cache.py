@@ -5,9 +5,11 @@ Re-fitting a recipe with another budget, measure or order (``reduce ladder --bud
 under a key made of the recipe's scan-relevant content (source, grouping keys, measures) and
 the source fingerprint (every input file's path, size and modification time), so changing
 either makes a new entry; storing it removes the entries of the same recipe over older
-versions of the source, so a nightly job keeps one entry. A large, sparse source's entry
-holds its spilled keyed rows (see ``aggregate.Spilled``). Entries are plain parquet and JSON
-files; the whole folder is safe to delete at any time (not while a run is using it).
+versions of the source, so a nightly job keeps one entry. A merged entry records the keys of
+its files; before it is replaced, a run over more files (only added ones) reads what the
+earlier entry measured (:func:`earlier`). A large, sparse source's entry holds its spilled
+keyed rows (see ``aggregate.Spilled``). Entries are plain parquet and JSON files; the whole
+folder is safe to delete at any time (not while a run is using it).
 
 Entries prove themselves: every file of an entry has its sha256 in the entry's
 ``sums.json``, written last (:func:`write_file`, :func:`seal`) and checked whenever a file
@@ -37,8 +39,9 @@ import shutil
 import stat
 import warnings
 import weakref
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
+from typing import TypeVar
 
 import orjson
 import polars as pl
@@ -53,6 +56,8 @@ from reduce.source import FileState
 SUMS = "sums.json"
 SUMS_FORMAT = "reduce.cache-sums/1"
 _LOCK = ".lock"
+
+T = TypeVar("T")
 
 
 class CacheWarning(UserWarning):
@@ -488,7 +493,12 @@ def _parquet_bytes(df: pl.DataFrame) -> bytes:
 
 
 def store(
-    key: str, p: Partial | Spilled, *, recipe: str = "", drop_others: bool = True
+    key: str,
+    p: Partial | Spilled,
+    *,
+    recipe: str = "",
+    drop_others: bool = True,
+    files: list[str] | None = None,
 ) -> Partial | Spilled | None:
     """Store a partial; returns it as stored (a spilled partial's files move into the
     entry, locked for reading while the returned object lives) or None on failure, which is
@@ -497,8 +507,10 @@ def store(
     ``recipe`` (the recipe's scan-relevant hash) is recorded, and the entries of the same
     recipe over other versions of the source are removed (unless a run is reading them): a
     nightly job keeps one entry, not one per night. ``drop_others=False`` keeps them (the
-    entries of one file each, pruned by :func:`drop_except`).
+    entries of one file each, pruned by :func:`drop_except`). ``files``: the keys of the
+    source files merged into ``p`` (:func:`file_key`), recorded sorted (see :func:`earlier`).
     """
+    listed = {} if files is None else {"files": sorted(files)}
     root = cache_dir()
     final = root / key
     if final.exists() and not _remove_if_damaged(final):
@@ -514,6 +526,7 @@ def store(
             meta = {
                 **_meta(p),
                 "recipe": recipe,
+                **listed,
                 "parts": [list(part) for part in p.parts],
                 "rows": p.rows,
             }
@@ -540,7 +553,7 @@ def store(
             for i, name in enumerate(names):
                 write_file(tmp, f"pairs-{i}.parquet", _parquet_bytes(p.pairs[name]))
                 write_file(tmp, f"values-{i}.parquet", _parquet_bytes(p.values[name].to_frame("v")))
-            meta = {**_meta(p), "recipe": recipe, "pairs": names}
+            meta = {**_meta(p), "recipe": recipe, **listed, "pairs": names}
             write_file(tmp, "meta.json", orjson.dumps(meta))
     except OSError:
         return None
@@ -616,6 +629,53 @@ def mark_files(key: str, files: list[str], *, recipe: str) -> Path | None:
         return None
     _drop_others(root, key, recipe)
     return final
+
+
+def earlier(
+    recipe: str, files: Sequence[str], key: str, read: Callable[[Path], T | None]
+) -> tuple[T, int] | None:
+    """What ``read`` takes from the entry of ``recipe`` over an earlier set of files: one
+    whose recorded files (``meta.json``'s "files", see :func:`store` and :func:`mark_files`)
+    are a strict subset of ``files``, i.e. files were only added since (a changed, removed or
+    renamed file has another key, so its old key is not among ``files``). Entries over more
+    of the files are tried first (ties by name); ``read`` is called under the entry's shared
+    lock and returns None when the entry holds nothing usable, and then the next is tried.
+    Returns what ``read`` returned and how many files that entry covered, or None. An entry
+    that cannot be read or verified is skipped without a word: it is no evidence, and it is
+    removed when this run stores its own entry of ``recipe``."""
+    root = cache_dir()
+    today = set(files)
+    found: list[tuple[int, str, Path]] = []
+    try:
+        listing = sorted(root.iterdir())
+    except OSError:
+        return None
+    for d in listing:
+        if d.name == key or d.name.startswith(".") or d.is_symlink() or not d.is_dir():
+            continue
+        try:
+            meta = orjson.loads(read_file(d, "meta.json"))
+        except (OSError, DamagedEntry, orjson.JSONDecodeError):
+            continue
+        if not isinstance(meta, dict) or meta.get("recipe") != recipe:
+            continue
+        listed = meta.get("files")
+        if not isinstance(listed, list) or not all(isinstance(f, str) for f in listed):
+            continue
+        older = set(listed)
+        if older and older < today:
+            found.append((-len(older), d.name, d))
+    for size, _, d in sorted(found):
+        fd = _lock_shared(d)
+        if fd is None:
+            continue  # removed meanwhile
+        try:
+            out = read(d)
+        finally:
+            os.close(fd)
+        if out is not None:
+            return out, -size
+    return None
 
 
 def remove(key: str) -> bool:

@@ -4,16 +4,20 @@ steers the search), and the store of what every level measured, kept with the ca
 
 A :class:`Measurer` is the level tables of :mod:`reduce.tables` plus bytes: it encodes a
 level's rows (with GeoJSON geometry where the layout asks for it), measures them as a
-candidate of the budget search, and records what it measured.
+candidate of the budget search, and records what it measured. When files were only added
+to the source since the last run, what that run measured over fewer files (:class:`Earlier`)
+judges levels far over the budget without counting or sampling them.
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable, Iterable, Mapping
 from concurrent.futures import Future, ThreadPoolExecutor
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+import orjson
 import polars as pl
 
 from reduce import budget as bsearch
@@ -54,6 +58,74 @@ SAMPLE_MARGIN = 0.15
 SAMPLE_RATIO: dict[str, float] = {"raw": 1.0, "gzip": 0.75, "brotli": 0.85}
 
 
+# The note of a level judged over the budget by what an earlier run over fewer files measured.
+EARLIER_NOTE = "judged by an earlier run over fewer files"
+
+
+@dataclass(frozen=True)
+class Earlier:
+    """What an earlier run measured over a strict subset of this run's files (files were
+    only added since: see ``cache.earlier``), copied from its store of measured levels.
+
+    Adding events never removes a group (finer cells and bins split groups, top-k keeps up
+    to k + 1 rows per group, suppression passes more cells as counts grow), so an earlier
+    row count is a lower bound of today's, and a size of the earlier payload well over the
+    limit says the level is over. Evidence that steers the search only: it never says that
+    a level fits."""
+
+    store: levels.Store  # in memory (no folder): never written
+    files: int  # how many of this run's files the earlier run covered
+    total: int  # this run's files
+
+    def size(self, level: Mapping[str, Any], on: Measure) -> int | None:
+        """The earlier size of a level on ``on``: the exact length if measured, else the
+        best of its certain lower bound and its estimate (a fast compression of the level,
+        or, without one, a sample of its cells, each as :class:`Measurer` reads them)."""
+        rec = self.store.get(level)
+        if rec is not None and rec.size(on) is not None:
+            return rec.size(on)
+        ratio = self.store.ratio(on, SAMPLE_RATIO[on])
+        seen: list[int] = []
+        guess: int | None = None
+        if rec is not None:
+            floor = rec.floor(on)
+            if floor is not None:
+                seen.append(floor)
+            fast = rec.gzip_fast if on == "gzip" else rec.brotli_fast if on == "brotli" else None
+            mid = rec.gzip_mid if on == "gzip" else None
+            if mid is not None:
+                guess = int(mid * CLOSE_GUESS[on])
+            elif fast is not None:
+                guess = int(fast * ratio)
+        sample = self.store.sample(level)
+        if guess is None and sample is not None and on in sample:
+            guess = int(sample[on] * ratio)
+        if guess is not None:
+            seen.append(guess)
+        return max(seen) if seen else None
+
+    def rows(self, level: Mapping[str, Any]) -> int | None:
+        """The earlier row count of a level (a lower bound of today's), if counted."""
+        return self.store.count(level)
+
+    def counted(self) -> list[tuple[Level, int]]:
+        """Every level the earlier run counted, with its rows (lower bounds of today's)."""
+        out: dict[str, tuple[Level, int]] = {}
+        for k, rec in sorted(self.store.records.items()):
+            try:
+                out[k] = (Level.of(rec.level), rec.rows)
+            except (ValueError, TypeError):
+                continue
+        for k, n in sorted(self.store.counts.items()):
+            if k in out:
+                continue
+            try:
+                out[k] = (Level.of(dict(orjson.loads(k))), n)
+            except (ValueError, TypeError, orjson.JSONDecodeError):
+                continue
+        return list(out.values())
+
+
 class Measurer(LevelTables):
     """The levels of one recipe, encoded and measured (see the module docstring)."""
 
@@ -70,6 +142,8 @@ class Measurer(LevelTables):
         # exact compressions started ahead (see prefetch), by (level key, measure)
         self._exact: dict[tuple[Any, ...], Future[int]] = {}
         self._pool: ThreadPoolExecutor | None = None
+        self._earlier: Earlier | None = None
+        self._earlier_looked = False
 
     # -- the store of measured levels -------------------------------------------------------
     @property
@@ -98,6 +172,62 @@ class Measurer(LevelTables):
     def _entry_stored(self, entry: Path) -> None:
         if self._store is not None and self._store.folder is None:
             self._store.folder = entry  # measurements go with the new entry
+
+    def _before_store(self) -> None:
+        _ = self.earlier  # read before the new entry removes the earlier one
+
+    @property
+    def earlier(self) -> Earlier | None:
+        """What an earlier run over fewer of these files measured (see :class:`Earlier`),
+        found once, before this run's entry replaces that run's: None without the cache,
+        when this file set has an entry of its own, or when no usable earlier store exists
+        (a damaged one is no evidence)."""
+        if not self._earlier_looked:
+            self._earlier_looked = True
+            self._earlier = self._find_earlier()
+        return self._earlier
+
+    def _find_earlier(self) -> Earlier | None:
+        if not self.use_cache:
+            return None
+        key = self.entry()
+        if (cache.cache_dir() / key).is_dir():
+            return None  # this file set's own entry (and store) serves
+        name = _store_name(self.recipe)
+
+        def read(folder: Path) -> levels.Store | None:
+            found = levels.Store(folder, name, read=cache.read_file, errors=(cache.DamagedEntry,))
+            if not (found.records or found.counts or found.samples):
+                return None
+            copy = levels.Store(None, name)  # in memory: the entry goes away
+            copy.records, copy.counts, copy.samples = found.records, found.counts, found.samples
+            return copy
+
+        got = cache.earlier(self.recipe.scan_hash, self._file_keys, key, read)
+        if got is None:
+            return None
+        return Earlier(store=got[0], files=got[1], total=len(set(self._file_keys)))
+
+    def judged_earlier(
+        self, level: Mapping[str, Any], on: Measure, limit: int, *, rows: int = 0
+    ) -> bsearch.Candidate | None:
+        """A level judged over ``limit`` by what an earlier run over fewer files measured:
+        its earlier size on ``on`` over (1 + :data:`SAMPLE_MARGIN`) times the limit (the
+        margin of sampled verdicts). None otherwise: earlier evidence never says "fits".
+        ``rows``: a lower bound of the level's rows known already."""
+        ev = self.earlier
+        if ev is None:
+            return None
+        size = ev.size(level, on)
+        if size is None or size <= (1 + SAMPLE_MARGIN) * limit:
+            return None
+        n = max(rows, ev.rows(level) or 0)
+        c = bsearch.Candidate(level=Level.of(level), rows=n, elements=n, raw=None)
+        c.fits = False
+        c.estimated = True
+        c.guess = size
+        c.note = EARLIER_NOTE
+        return c
 
     def record(self, level: Mapping[str, Any]) -> levels.Record:
         """What a level measured: from the store, or from the level built now."""

@@ -142,6 +142,20 @@ def fit(
     # in rare cases hold a few rows fewer; the bound only steers, with the 1.5 margin.)
     position = {a: {v: i for i, v in enumerate(lv)} for a, lv in ladder_axes.items()}
     counted: list[tuple[Level, int]] = []
+    # An earlier run over fewer of these files (files added since, none changed): its row
+    # counts are lower bounds of today's, and a level it measured well over the budget is
+    # judged over without counting or sampling it (see measure.Earlier).
+    earlier = red.earlier if use_estimates else None
+    if earlier is not None:
+        red.progress(
+            f"using the measurements of an earlier run over {earlier.files:,} of these "
+            f"{earlier.total:,} files"
+        )
+        counted.extend(
+            (lv, n)
+            for lv, n in earlier.counted()
+            if set(lv) == set(axes) and all(lv[a] in position[a] for a in axes)
+        )
 
     def rows_at_least(level: Level) -> int:
         return max(
@@ -189,6 +203,10 @@ def fit(
                     c = red.estimate(level, b.on, min(per_row), b.max, rows=bound)
                     cands[k] = c
                     return c
+            judged = red.judged_earlier(level, b.on, b.max, rows=rows_at_least(level))
+            if judged is not None:
+                cands[k] = judged
+                return judged
             if red.known_count(level) is None:
                 red.progress(f"counting rows of {bsearch.describe_level(level)}")
             rows = red.row_count(level)

@@ -122,6 +122,10 @@ class LevelTables:
     def _entry_stored(self, entry: Path) -> None:
         """The finest partial was stored in the cache entry ``entry``."""
 
+    def _before_store(self) -> None:
+        """The merged entry of this file set is about to be stored, which removes the
+        entries of the recipe over other file sets (and what they hold)."""
+
     # -- the finest partial -----------------------------------------------------------------
     def finest(self) -> Partial | Spilled:
         """The finest partial: from the cache, or one scan of the source (kept on disk when
@@ -160,7 +164,11 @@ class LevelTables:
                 n = len(self.source.files)
                 self._files = {"total": n, "scanned": n, "reused": 0}
                 if self.use_cache:
-                    p = cache.store(key, p, recipe=self.recipe.scan_hash) or p
+                    self._before_store()
+                    p = (
+                        cache.store(key, p, recipe=self.recipe.scan_hash, files=self._file_keys)
+                        or p
+                    )
                     entry = cache.cache_dir() / key
                     if entry.is_dir():
                         self._entry_stored(entry)
@@ -248,21 +256,24 @@ class LevelTables:
         aggregate.check_merged(self.recipe, _label(src), acc)
         out: Partial | Spilled
         entry: Path | None = None
+        scan_hash, file_keys = self.recipe.scan_hash, self._file_keys
+        if self.use_cache:
+            self._before_store()
         if n == 1:  # the file's partial is the source's: one entry, under the merged key
             out = parts[0]
             if self.use_cache:
-                out = cache.store(key, out, recipe=self.recipe.scan_hash) or out
+                out = cache.store(key, out, recipe=scan_hash, files=file_keys) or out
                 entry = cache.cache_dir() / key
         elif all(isinstance(p, Partial) for p in parts):
             self.progress(f"merging the partials of {n:,} files")
             out = aggregate.merge_all(self.recipe, [p for p in parts if isinstance(p, Partial)])
             if self.use_cache:
-                out = cache.store(key, out, recipe=self.recipe.scan_hash) or out
+                out = cache.store(key, out, recipe=scan_hash, files=file_keys) or out
                 entry = cache.cache_dir() / key
         else:
             out = aggregate.merge_spilled([p for p in parts if isinstance(p, Spilled)])
             if self.use_cache:
-                entry = cache.mark_files(key, self._file_keys, recipe=self.recipe.scan_hash)
+                entry = cache.mark_files(key, file_keys, recipe=scan_hash)
         if self.use_cache:
             cache.drop_except(tag, set(self._file_keys))
             if entry is not None and entry.is_dir():
