@@ -256,6 +256,10 @@ class Store:
         # levels judged by a sample: {"rows", "sample_rows", "every", "<measure>": the
         # sample's fast length scaled to the level's rows} (evidence only, see measure.py)
         self.samples: dict[str, dict[str, int]] = {}
+        # levels this run judged over by what an earlier run over fewer files measured:
+        # {"rows": a lower bound, "<measure>": the earlier size}. Read only as earlier
+        # evidence by a later run over more files (see measure.Earlier), never replayed.
+        self.carried: dict[str, dict[str, int]] = {}
         self.dirty = False
         if folder is not None:
             self._load()
@@ -276,13 +280,17 @@ class Store:
                 return
             records = {level_id(r["level"]): Record(**r) for r in doc["records"]}
             counts = {str(k): int(v) for k, v in doc.get("counts", {}).items()}
-            samples = {
-                str(k): {str(m): int(n) for m, n in v.items()}
-                for k, v in doc.get("samples", {}).items()
-            }
+            samples, carried = (
+                {
+                    str(k): {str(m): int(n) for m, n in v.items()}
+                    for k, v in doc.get(section, {}).items()
+                }
+                for section in ("samples", "carried")
+            )
         except self._bad_store:
             return
         self.records, self.counts, self.samples = records, counts, samples
+        self.carried = carried
 
     def get(self, level: Mapping[str, Any]) -> Record | None:
         return self.records.get(level_id(level))
@@ -315,6 +323,14 @@ class Store:
         new = {**self.samples.get(k, {}), **figures}
         if self.samples.get(k) != new:
             self.samples[k] = new
+            self.dirty = True
+
+    def put_carried(self, level: Mapping[str, Any], figures: Mapping[str, int]) -> None:
+        """Keep the earlier figures a level was judged by (see ``carried``)."""
+        k = level_id(level)
+        new = {**self.carried.get(k, {}), **figures}
+        if self.carried.get(k) != new:
+            self.carried[k] = new
             self.dirty = True
 
     def ratio(self, on: str, default: float) -> float:
@@ -371,6 +387,7 @@ class Store:
             "records": [asdict(r) for _, r in sorted(self.records.items())],
             "counts": dict(sorted(self.counts.items())),
             "samples": dict(sorted(self.samples.items())),
+            "carried": dict(sorted(self.carried.items())),
         }
         try:
             self._write(self.folder, self.file_name, orjson.dumps(doc))

@@ -100,13 +100,20 @@ class Earlier:
         sample = self.store.sample(level)
         if guess is None and sample is not None and on in sample:
             guess = int(sample[on] * ratio)
+        if guess is None and rec is None:
+            # Judged the same way by the earlier run itself, from a run before it (over
+            # fewer files still): carried forward, so that every night keeps the evidence.
+            guess = self.store.carried.get(levels.level_id(level), {}).get(on)
         if guess is not None:
             seen.append(guess)
         return max(seen) if seen else None
 
     def rows(self, level: Mapping[str, Any]) -> int | None:
         """The earlier row count of a level (a lower bound of today's), if counted."""
-        return self.store.count(level)
+        n = self.store.count(level)
+        if n is None:
+            n = self.store.carried.get(levels.level_id(level), {}).get("rows")
+        return n
 
     def counted(self) -> list[tuple[Level, int]]:
         """Every level the earlier run counted, with its rows (lower bounds of today's)."""
@@ -116,7 +123,8 @@ class Earlier:
                 out[k] = (Level.of(rec.level), rec.rows)
             except (ValueError, TypeError):
                 continue
-        for k, n in sorted(self.store.counts.items()):
+        carried = {k: v["rows"] for k, v in self.store.carried.items() if "rows" in v}
+        for k, n in sorted({**carried, **self.store.counts}.items()):
             if k in out:
                 continue
             try:
@@ -197,10 +205,11 @@ class Measurer(LevelTables):
 
         def read(folder: Path) -> levels.Store | None:
             found = levels.Store(folder, name, read=cache.read_file, errors=(cache.DamagedEntry,))
-            if not (found.records or found.counts or found.samples):
+            if not (found.records or found.counts or found.samples or found.carried):
                 return None
             copy = levels.Store(None, name)  # in memory: the entry goes away
             copy.records, copy.counts, copy.samples = found.records, found.counts, found.samples
+            copy.carried = found.carried
             return copy
 
         got = cache.earlier(self.recipe.scan_hash, self._file_keys, key, read)
@@ -227,6 +236,8 @@ class Measurer(LevelTables):
         c.estimated = True
         c.guess = size
         c.note = EARLIER_NOTE
+        # Into this run's store as carried evidence (for the next run over more files only).
+        self.store.put_carried(level, {on: size, **({"rows": n} if n else {})})
         return c
 
     def record(self, level: Mapping[str, Any]) -> levels.Record:

@@ -325,3 +325,32 @@ def test_run_json_reports_the_files_of_an_incremental_run(tmp_path: Path) -> Non
     again, lines, _, _ = _run(recipe, tmp_path / "n3", "60KB")
     assert again.fit.reducer is not None and again.fit.reducer.earlier is None
     assert not any("earlier run" in line for line in lines)
+
+
+def test_evidence_is_carried_from_night_to_night(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Night 2 judges levels by night 1's sizes; night 3 (one more file) finds those
+    # levels' figures in night 2's store, carried, and judges them the same way instead of
+    # counting or sampling them again. Every night's payload equals a fresh full run.
+    spy = _Spy(monkeypatch)
+    recipe = _recipe(tmp_path)
+    for i in range(3):
+        _write(tmp_path, i)
+    _run(recipe, tmp_path / "n1", "60KB")
+    settled: list[set[Any]] = []
+    for night in (3, 4):
+        _write(tmp_path, night)
+        inc, lines, counted, sampled = _run(recipe, tmp_path / f"n{night}", "60KB", spy=spy)
+        full, _, _, _ = _run(recipe, tmp_path / f"full{night}", "60KB", use_cache=False)
+        assert inc.path is not None and full.path is not None
+        assert inc.path.read_bytes() == full.path.read_bytes(), night
+        assert (
+            f"using the measurements of an earlier run over {night} of these {night + 1} files"
+            in lines
+        )
+        by_earlier = _by_earlier(inc)
+        assert not by_earlier & (counted | sampled)
+        settled.append(by_earlier)
+    assert settled[0], "night 2 judged some level by night 1's sizes"
+    assert settled[0] <= settled[1], "night 3 lost the evidence night 2 went by"
