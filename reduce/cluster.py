@@ -12,10 +12,12 @@ the same disk for a local cluster). No user code is sent: the recipe is data, an
 comes back as Arrow tables (pyarrow; Int128 sums as decimal text, which Arrow cannot hold)
 with a small JSON-like header.
 
-On a cluster a file's partial is always built in memory (a worker's spill files would live
-on that worker's disk): each file's partial must fit a worker's memory, and the merged
-partial the client's. The merge, the fit and the publishing happen on the client, exactly
-as for a local run, so the payload's bytes are the same.
+A file too sparse to group in memory is spilled by its worker, as a local scan would spill
+it (same probe, same parts), into a temporary folder on the worker; its keyed rows come back
+as the bytes of the parquet files written there, which the client writes into its own spill
+folder (in the cache when it is used) and removes from the worker: neither a worker nor the
+client holds a sparse file's groups in memory. The merge, the fit and the publishing happen
+on the client, exactly as for a local run, so the payload's bytes are the same.
 
 The extra is optional: ``pip install 'reduce[cluster]'`` (``dask[distributed]``).
 """
@@ -159,11 +161,18 @@ def scan_files(
     files: Sequence[Any],
     *,
     progress: Callable[[str], None] | None = None,
+    spill: Sequence[tuple[int | None, int]] | None = None,
+    spill_dir: Callable[[int], Path] | None = None,
 ) -> list[Any]:
     """The finest partial of each of ``files`` (``source.FileState``: each file as the
     client saw it, which the worker checks before it scans) of ``recipe``'s source, scanned by
-    the cluster's workers, in the order given."""
-    from reduce.aggregate import Partial
+    the cluster's workers, in the order given.
+
+    With ``spill`` (per file: the number of parts and the probe rows, as a local scan of that
+    file would use them) a file too sparse to group in memory is spilled by its worker, and
+    its keyed rows come back as the parquet files the worker wrote, into ``spill_dir(i)`` (a
+    fresh folder for file ``i``): the result is then a :class:`~reduce.aggregate.Spilled`."""
+    from reduce.aggregate import Partial, Spilled
 
     overrides = [list(kv) for kv in recipe.overrides]
     recipe_path = str(Path(recipe.file).resolve())
@@ -176,12 +185,13 @@ def scan_files(
                 str(Path(f.path).resolve()),
                 recipe.scan_hash,
                 [f.size, f.mtime_ns, f.digest],
+                list(spill[i]) if spill is not None else None,
                 pure=False,
                 key=f"reduce-scan-{i}-{os.getpid()}-{id(files)}",
             )
             for i, f in enumerate(files)
         ]
-        out: list[Partial] = []
+        out: list[Partial | Spilled] = []
         for i, fut in enumerate(futures, start=1):
             try:
                 doc = fut.result()
@@ -193,20 +203,36 @@ def scan_files(
                     f"{Path(files[i - 1].path).name} ({_first(e)}); check the "
                     "workers and run again"
                 ) from None
-            out.append(from_wire(doc))
+            if "spilled" in doc:
+                assert spill_dir is not None
+                out.append(spilled_from_wire(doc, spill_dir(i - 1)))
+            else:
+                out.append(from_wire(doc))
+            del doc
+            fut.release()  # the worker's copy goes: one file's rows held at a time
             if progress:
                 progress(f"cluster: {i:,} of {len(files):,} files scanned")
         return out
 
 
 def scan_file_task(
-    recipe_path: str, overrides: list[list[str]], path: str, scan_hash: str, seen: list[Any]
+    recipe_path: str,
+    overrides: list[list[str]],
+    path: str,
+    scan_hash: str,
+    seen: list[Any],
+    spill: list[int | None] | None = None,
 ) -> dict[str, Any]:
     """Runs on a worker: the finest partial of one source file, as Arrow tables (see the
     module docstring). The recipe is loaded from its path (shared storage) and must be the
     one the client loaded (same scan-relevant content); the file must be as the client saw
     it (``seen``: size, modification time, content digest), since the client caches the
-    partial under that state."""
+    partial under that state. ``spill`` (parts, probe rows): a file too sparse to group in
+    memory is spilled into a temporary folder of the worker instead, and its keyed rows are
+    sent as the bytes of the parquet files written there (removed before returning)."""
+    import shutil
+    import tempfile
+
     from reduce import aggregate
     from reduce.errors import RecipeError, SourceError, shown_path
     from reduce.recipe import load_recipe
@@ -227,13 +253,84 @@ def scan_file_task(
         )
     src = open_source(recipe)
     fsrc = file_source(src, state)
+    folders: list[Path] = []
+
+    def spill_dir() -> Path:
+        folders.append(Path(tempfile.mkdtemp(prefix="reduce-worker-spill-")))
+        return folders[-1]
+
     try:
-        p = aggregate.scan_partial(recipe, fsrc, whole=False)
-    except pl.exceptions.PolarsError as e:
-        raise (fsrc.read_error(e) or e) from None
-    fsrc.check_unchanged()
-    assert isinstance(p, aggregate.Partial)  # no spill_dir: never spilled
-    return to_wire(p)
+        try:
+            p = aggregate.scan_partial(
+                recipe,
+                fsrc,
+                whole=False,
+                spill_dir=spill_dir if spill is not None else None,
+                parts=spill[0] if spill is not None else None,
+                probe=spill[1] if spill is not None else None,
+            )
+        except pl.exceptions.PolarsError as e:
+            raise (fsrc.read_error(e) or e) from None
+        fsrc.check_unchanged()
+        if isinstance(p, aggregate.Spilled):
+            return spilled_to_wire(p)
+        return to_wire(p)
+    finally:
+        for d in folders:
+            shutil.rmtree(d, ignore_errors=True)
+
+
+def _accounting_wire(a: Any) -> list[Any]:
+    return [a.input_rows, a.filtered_rows, a.invalid_rows, dict(a.invalid_by_reason)]
+
+
+def _accounting_of(doc: dict[str, Any]) -> Any:
+    from reduce.aggregate import Accounting
+
+    inp, filt, inv, by = doc["accounting"]
+    return Accounting(int(inp), int(filt), int(inv), {str(k): int(n) for k, n in by.items()})
+
+
+def spilled_to_wire(p: Any) -> dict[str, Any]:
+    """A :class:`~reduce.aggregate.Spilled` partial as plain data: its parquet files' bytes
+    by part (paths relative to its folder)."""
+    return {
+        "spilled": True,
+        "keys": list(p.keys),
+        "hex_res": p.hex_res,
+        "time_bin": p.time_bin.text if p.time_bin else None,
+        "accounting": _accounting_wire(p.accounting),
+        "rows": p.rows,
+        "parts": [[[f, (p.root / f).read_bytes()] for f in part] for part in p.parts],
+    }
+
+
+def spilled_from_wire(doc: dict[str, Any], folder: Path) -> Any:
+    """The partial sent by :func:`spilled_to_wire`, its files written under ``folder``."""
+    from reduce.aggregate import Spilled
+    from reduce.recipe import parse_time_bin
+
+    parts: list[tuple[str, ...]] = []
+    for part in doc["parts"]:
+        names: list[str] = []
+        for rel, data in part:
+            rel_path = Path(rel)
+            if rel_path.is_absolute() or ".." in rel_path.parts:
+                raise ClusterError(f"a worker sent a spill file outside its folder: {rel!r}")
+            target = folder / rel_path
+            target.parent.mkdir(parents=True, exist_ok=True)
+            target.write_bytes(data)
+            names.append(rel_path.as_posix())
+        parts.append(tuple(names))
+    return Spilled(
+        keys=tuple(doc["keys"]),
+        root=folder,
+        parts=tuple(parts),
+        rows=int(doc["rows"]),
+        hex_res=doc["hex_res"],
+        time_bin=parse_time_bin(doc["time_bin"]) if doc["time_bin"] else None,
+        accounting=_accounting_of(doc),
+    )
 
 
 def _arrow(df: pl.DataFrame) -> tuple[Any, list[str]]:

@@ -226,7 +226,12 @@ class LevelTables:
         if todo and address is not None:
             self.progress(f"scanning {len(todo):,} of {n:,} files on the cluster {address}")
             scanned = cluster.scan_files(
-                address, self.recipe, [src.states[i] for i in todo], progress=self.progress
+                address,
+                self.recipe,
+                [src.states[i] for i in todo],
+                progress=self.progress,
+                spill=[self._spill_plan(i) for i in todo],
+                spill_dir=lambda k: self._spill_folder(todo[k]),
             )
             for i, p in zip(todo, scanned):
                 got[i] = self._keep_file(i, p, tag)
@@ -294,34 +299,47 @@ class LevelTables:
             return p
         return cache.store(self._file_keys[i], p, recipe=tag, drop_others=False) or p
 
+    def _spill_folder(self, i: int) -> Path:
+        """A fresh folder for source file ``i``'s spilled rows (in the cache when it is used,
+        else a temporary one), removed with this object unless the cache takes it."""
+        assert self.source is not None
+        fk = self._file_keys[i] if len(self.source.files) > 1 else self.entry()
+        d = (cache.spill_dir(fk) if self.use_cache else None) or cache.temp_spill_dir()
+        weakref.finalize(self, shutil.rmtree, d, True)
+        return d
+
+    def _spill_plan(self, i: int) -> tuple[int | None, int]:
+        """How source file ``i`` is scanned when it may spill: the number of parts of its
+        keyed rows (:data:`FILE_PARTS` when the source has several files, so that their
+        parts line up) and the rows it is probed on."""
+        from reduce.source import file_source
+
+        assert self.source is not None
+        n = len(self.source.files)
+        probe = aggregate.probe_rows()
+        if n > 1 and self._source_rows() > probe:
+            # The source is large enough to be probed: so is each of its files, however small
+            # (on half its rows at most), so that a source of many small sparse files spills
+            # file by file instead of merging into one partial the size of the source.
+            fsrc = file_source(self.source, self.source.states[i])
+            probe = min(probe, max(1, fsrc.count_rows() // 2))
+        return (FILE_PARTS if n > 1 else None), probe
+
     def _scan_file(self, i: int, tag: str, *, always_spill: bool) -> Partial | Spilled:
         """Scan source file ``i`` alone (spilled rows in :data:`FILE_PARTS` parts)."""
         from reduce.source import file_source
 
         assert self.source is not None
         fsrc = file_source(self.source, self.source.states[i])
-        fk = self._file_keys[i] if len(self.source.files) > 1 else self.entry()
-
-        def spill() -> Path:  # made only if the file has to spill
-            d = (cache.spill_dir(fk) if self.use_cache else None) or cache.temp_spill_dir()
-            weakref.finalize(self, shutil.rmtree, d, True)
-            return d
-
-        n = len(self.source.files)
-        probe = None
-        if n > 1 and self._source_rows() > aggregate.probe_rows():
-            # The source is large enough to be probed: so is each of its files, however small
-            # (on half its rows at most), so that a source of many small sparse files spills
-            # file by file instead of merging into one partial the size of the source.
-            probe = min(aggregate.probe_rows(), max(1, fsrc.count_rows() // 2))
+        parts, probe = self._spill_plan(i)
         try:
             p = aggregate.scan_partial(
                 self.recipe,
                 fsrc,
-                spill_dir=spill,
+                spill_dir=lambda: self._spill_folder(i),
                 whole=False,
                 always_spill=always_spill,
-                parts=FILE_PARTS if n > 1 else None,
+                parts=parts,
                 probe=probe,
             )
         except pl.exceptions.PolarsError as e:  # e.g. a malformed NDJSON line

@@ -150,6 +150,41 @@ def test_a_source_that_spills_locally_matches_on_the_cluster(
     assert isinstance(red.finest(), reduce.aggregate.Spilled)  # the premise
     local, remote = _local_and_cluster(recipe, tmp_path, address)
     assert local == remote
+    # The workers spilled too: the keyed rows came back as their parquet files, so the
+    # client never held the files' groups in memory.
+    with cluster.using(address):
+        red = reduce.pipeline.Reducer(reduce.load_recipe(recipe), use_cache=False)
+        finest = red.finest()
+        assert isinstance(finest, reduce.aggregate.Spilled)
+        assert all(f.is_file() for f in finest.files)
+    # Cached per file: a second run on the cluster reuses them, a new file is scanned alone.
+    with cluster.using(address):
+        first = reduce.run(recipe, out_dir=tmp_path / "c1")
+        random_events(np.random.default_rng(7), 1500, span_days=4).write_parquet(
+            tmp_path / "ev" / "part-9.parquet"
+        )
+        second = reduce.run(recipe, out_dir=tmp_path / "c2")
+    assert first.path is not None and first.path.read_bytes() == local
+    assert second.manifest is not None
+    assert second.manifest["files"] == {"total": 4, "scanned": 1, "reused": 3}
+    fresh = reduce.run(recipe, out_dir=tmp_path / "c3", use_cache=False)
+    assert second.path is not None and fresh.path is not None
+    assert second.path.read_bytes() == fresh.path.read_bytes()
+
+
+def test_spill_files_from_a_worker_stay_inside_the_folder(tmp_path: Path) -> None:
+    doc = {
+        "spilled": True,
+        "keys": ["hex"],
+        "hex_res": 8,
+        "time_bin": None,
+        "accounting": [1, 0, 0, {}],
+        "rows": 1,
+        "parts": [[["../escape.parquet", b"x"]]],
+    }
+    with pytest.raises(cluster.ClusterError, match="outside its folder"):
+        cluster.spilled_from_wire(doc, tmp_path / "in")
+    assert not (tmp_path / "escape.parquet").exists()
 
 
 def test_cluster_partials_are_cached_per_file(tmp_path: Path, address: str) -> None:
