@@ -430,14 +430,21 @@ def _keyed_rows(
         return lambda frame: frame.select(select)
     assert recipe.hex is not None and recipe.source.lat and recipe.source.lon
     lat, lon = recipe.source.lat, recipe.source.lon
-    try:
-        fine = cells.sample_cells(
-            src.rows_frame(0, cells.TABLE_ROWS), lat, lon, recipe.hex.levels[0]
-        )
-    except pl.exceptions.PolarsError as e:
-        raise _scan_error(recipe, src, label, e) from None
     res = {r: hidden_hex(r) for r in recipe.hex.levels[1:] if hidden_hex(r) in hidden}
-    tables = cells.tables(fine, sorted(res, reverse=True))
+    # The files of one source share the tables built from the first file scanned (any
+    # tables give the same cells; a parent missing from them only costs an indexing).
+    shared = (recipe.scan_hash, recipe.hex.levels[0], tuple(sorted(res)))
+    tables = _TABLES.get(shared)
+    if tables is None:
+        try:
+            fine = cells.sample_cells(
+                src.rows_frame(0, cells.TABLE_ROWS), lat, lon, recipe.hex.levels[0]
+            )
+        except pl.exceptions.PolarsError as e:
+            raise _scan_error(recipe, src, label, e) from None
+        tables = cells.tables(fine, sorted(res, reverse=True))
+        _TABLES.clear()  # one recipe's tables at a time
+        _TABLES[shared] = tables
     order = [e.meta.output_name() for e in select]
     plain = [e for e in select if e.meta.output_name() not in res.values()]
     # Raw coordinates suffice: an invalid row's finest cell is null, and so are its others.
@@ -461,6 +468,7 @@ def _keyed_rows(
 
 
 _LAT, _LON = "__scan_lat", "__scan_lon"
+_TABLES: dict[tuple[str, int, tuple[int, ...]], dict[int, pl.DataFrame]] = {}
 
 
 def _check_overflow(

@@ -11,6 +11,7 @@ pentagons, in cells spanning two icosahedron faces, on the antimeridian and at t
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Any
 
 import h3
 import numpy as np
@@ -274,6 +275,7 @@ def test_the_scan_uses_the_tables_on_large_sources_and_gets_the_same_partial(
         return real(*a, **kw)  # type: ignore[arg-type]
 
     monkeypatch.setattr(cells, "with_coarse", spy)
+    monkeypatch.setattr(aggregate, "_TABLES", {})
     monkeypatch.setattr(cells, "FAST_MIN_ROWS", 10**12)
     indexed = partial()
     assert not calls
@@ -283,3 +285,57 @@ def test_the_scan_uses_the_tables_on_large_sources_and_gets_the_same_partial(
     assert calls
     assert tabled.equals(indexed)
     assert [c for c in indexed.columns if c.startswith("__hex")] == ["__hex6", "__hex4"]
+
+
+def test_the_files_of_a_source_share_one_set_of_tables(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from reduce.pipeline import Reducer
+
+    pts = _points(12_000, 4)
+    (tmp_path / "ev").mkdir()
+    for i in range(3):
+        pts.slice(i * 4000, 4000).write_parquet(tmp_path / "ev" / f"part-{i}.parquet")
+    path = write_case(
+        tmp_path,
+        None,
+        source={"path": "ev/*.parquet", "lat": "lat", "lon": "lon"},
+        group={"hex": {"levels": [8, 6, 4]}, "category": {"column": "kind"}},
+        measures={"n": "count", "sx": {"sum": "x"}},
+    )
+    recipe = reduce.load_recipe(path)
+    built: list[int] = []
+    real = cells.tables
+
+    def spy(fine: pl.Series, resolutions: list[int]) -> dict[int, pl.DataFrame]:
+        built.append(1)
+        return real(fine, resolutions)
+
+    monkeypatch.setattr(cells, "tables", spy)
+    monkeypatch.setattr(aggregate, "_TABLES", {})
+
+    scans: list[int] = []
+    scan = aggregate.scan_partial
+
+    def counted(*a: Any, **kw: Any) -> Any:
+        scans.append(1)
+        return scan(*a, **kw)
+
+    monkeypatch.setattr(aggregate, "scan_partial", counted)
+
+    def finest(cache_dir: str) -> pl.DataFrame:
+        # With the cache, the source is scanned file by file (one partial per file).
+        monkeypatch.setenv("REDUCE_CACHE_DIR", str(tmp_path / cache_dir))
+        p = Reducer(recipe).finest()
+        assert isinstance(p, aggregate.Partial)
+        return p.table.sort(p.table.columns)
+
+    monkeypatch.setattr(cells, "FAST_MIN_ROWS", 10**12)
+    indexed = finest("c1")
+    assert not built
+    monkeypatch.setattr(cells, "FAST_MIN_ROWS", 0)
+    monkeypatch.setattr(cells, "TABLE_ROWS", 1_000)  # from the first file's first rows
+    scans.clear()
+    tabled = finest("c2")
+    assert len(scans) == 3 and built == [1]  # three files scanned, one set of tables
+    assert tabled.equals(indexed)
