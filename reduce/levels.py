@@ -319,18 +319,22 @@ class Store:
 
     def put_sample(self, level: Mapping[str, Any], figures: Mapping[str, int]) -> None:
         """Keep what a sample of a level showed, merged with what earlier samples showed."""
-        k = level_id(level)
-        new = {**self.samples.get(k, {}), **figures}
-        if self.samples.get(k) != new:
-            self.samples[k] = new
-            self.dirty = True
+        self._merge(self.samples, level, figures)
 
     def put_carried(self, level: Mapping[str, Any], figures: Mapping[str, int]) -> None:
         """Keep the earlier figures a level was judged by (see ``carried``)."""
+        self._merge(self.carried, level, figures)
+
+    def _merge(
+        self,
+        section: dict[str, dict[str, int]],
+        level: Mapping[str, Any],
+        figures: Mapping[str, int],
+    ) -> None:
         k = level_id(level)
-        new = {**self.carried.get(k, {}), **figures}
-        if self.carried.get(k) != new:
-            self.carried[k] = new
+        new = {**section.get(k, {}), **figures}
+        if section.get(k) != new:
+            section[k] = new
             self.dirty = True
 
     def ratio(self, on: str, default: float) -> float:

@@ -404,3 +404,31 @@ def write_payload(
     if manifest:
         write_manifest(path)
     return path
+
+
+# --------------------------------------------------------------------------------------------
+# Sampled levels on small tables
+# --------------------------------------------------------------------------------------------
+
+# A hex x time x category ladder whose small test tables take the row-count and sample paths
+# once the sample thresholds are lowered (see lower_sample_thresholds).
+SAMPLED_LADDER: dict[str, Any] = {
+    "group": {
+        "hex": {"levels": [8, 7, 6]},
+        "time": {"levels": ["1h", "1d", "1w"], "zone": "UTC"},
+        "category": {"column": "kind"},
+    },
+    "measures": {"n": "count", "sx": {"sum": "x"}},
+    "prune": {"top": {"k": [4, 2], "by": "n"}},
+    "budget": {"max": "60KB", "on": "gzip", "order": ["top", "time", "hex"]},
+}
+
+
+def lower_sample_thresholds(monkeypatch: Any) -> None:
+    """Sample levels of 2,000 rows or more (the defaults sample only levels of 100,000 rows
+    and more), so that small test tables are judged by samples of their cells."""
+    from reduce import tables
+
+    monkeypatch.setattr(tables, "SAMPLE_MIN_LEVEL_ROWS", 2000)
+    monkeypatch.setattr(tables, "SAMPLE_ROWS", 400)
+    monkeypatch.setattr(tables, "SAMPLE_MIN_KEYS", 20)

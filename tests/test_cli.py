@@ -8,7 +8,15 @@ from pathlib import Path
 import pytest
 
 from reduce.cli import main
-from tests._builders import HEX_RECIPE, REGION_RECIPE, events, invoke, project, write_recipe
+from tests._builders import (
+    HEX_RECIPE,
+    REGION_RECIPE,
+    events,
+    invoke,
+    lower_sample_thresholds,
+    project,
+    write_recipe,
+)
 
 
 @pytest.fixture(autouse=True)
@@ -245,18 +253,10 @@ def test_ladder_table_marks_chosen_and_json_lists_candidates(tmp_path: Path) -> 
         assert c["brotli"] is not None and not c["estimated"]
 
 
-def _sampling(monkeypatch: pytest.MonkeyPatch) -> None:
-    from reduce import tables
-
-    monkeypatch.setattr(tables, "SAMPLE_MIN_LEVEL_ROWS", 2000)
-    monkeypatch.setattr(tables, "SAMPLE_ROWS", 400)
-    monkeypatch.setattr(tables, "SAMPLE_MIN_KEYS", 20)
-
-
 def test_ladder_shows_the_searchs_estimates_marked_and_exact_measures_them(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    _sampling(monkeypatch)
+    lower_sample_thresholds(monkeypatch)
     recipe = project(tmp_path, df=events(20_000, seed=3))
     args = ("ladder", str(recipe), "--budget", "40KB", "--no-cache", "-q")
     code, out, err = invoke(*args, "--json")
@@ -292,7 +292,7 @@ def test_warm_ladder_after_a_run_prints_the_figures_without_measuring(
 ) -> None:
     from reduce import sizes
 
-    _sampling(monkeypatch)
+    lower_sample_thresholds(monkeypatch)
     recipe = project(tmp_path, df=events(20_000, seed=3))
     code, _, err = invoke("run", str(recipe), "--budget", "40KB", "-q", "--json")
     assert code == 0, err

@@ -26,28 +26,26 @@ from reduce import cache, tables
 from reduce.budget import level_key
 from reduce.measure import EARLIER_NOTE
 from reduce.pipeline import Reducer, RunResult
-from tests._builders import invoke, random_events, to_toml
+from tests._builders import (
+    SAMPLED_LADDER,
+    invoke,
+    lower_sample_thresholds,
+    random_events,
+    to_toml,
+)
 
 
 @pytest.fixture(autouse=True)
 def _sample_small_levels(monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setattr(tables, "SAMPLE_MIN_LEVEL_ROWS", 2000)
-    monkeypatch.setattr(tables, "SAMPLE_ROWS", 400)
-    monkeypatch.setattr(tables, "SAMPLE_MIN_KEYS", 20)
+    lower_sample_thresholds(monkeypatch)
 
 
 def _recipe(folder: Path, budget: str = "60KB") -> Path:
     doc = {
         "name": "ev",
         "source": {"path": "ev/*.parquet", "time": "t", "lat": "lat", "lon": "lon"},
-        "group": {
-            "hex": {"levels": [8, 7, 6]},
-            "time": {"levels": ["1h", "1d", "1w"], "zone": "UTC"},
-            "category": {"column": "kind"},
-        },
-        "measures": {"n": "count", "sx": {"sum": "x"}},
-        "prune": {"top": {"k": [4, 2], "by": "n"}},
-        "budget": {"max": budget, "on": "gzip", "order": ["top", "time", "hex"]},
+        **SAMPLED_LADDER,
+        "budget": {**SAMPLED_LADDER["budget"], "max": budget},
         "output": {"path": "out/ev.json"},
     }
     path = folder / "recipe.toml"

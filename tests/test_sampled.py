@@ -20,14 +20,12 @@ from reduce import levels, measure, pipeline, tables
 from reduce.budget import all_levels, level_key
 from reduce.levels import Level
 from reduce.sizes import gzip_bytes, parse_size
-from tests._builders import random_events, write_case
+from tests._builders import SAMPLED_LADDER, lower_sample_thresholds, random_events, write_case
 
 
 @pytest.fixture(autouse=True)
 def _sample_small_levels(monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setattr(tables, "SAMPLE_MIN_LEVEL_ROWS", 2000)
-    monkeypatch.setattr(tables, "SAMPLE_ROWS", 400)
-    monkeypatch.setattr(tables, "SAMPLE_MIN_KEYS", 20)
+    lower_sample_thresholds(monkeypatch)
 
 
 def _case(tmp: Path, **kw: object) -> Path:
@@ -35,14 +33,7 @@ def _case(tmp: Path, **kw: object) -> Path:
     events = random_events(rng, 30_000, span_days=60, lat=(10.0, 10.3), lon=(20.0, 20.3))
     spec: dict[str, object] = {
         "source": {"time": "t", "lat": "lat", "lon": "lon"},
-        "group": {
-            "hex": {"levels": [8, 7, 6]},
-            "time": {"levels": ["1h", "1d", "1w"], "zone": "UTC"},
-            "category": {"column": "kind"},
-        },
-        "measures": {"n": "count", "sx": {"sum": "x"}},
-        "prune": {"top": {"k": [4, 2], "by": "n"}},
-        "budget": {"max": "60KB", "on": "gzip", "order": ["top", "time", "hex"]},
+        **SAMPLED_LADDER,
     }
     spec.update(kw)
     return write_case(tmp, events, **spec)  # type: ignore[arg-type]
