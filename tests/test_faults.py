@@ -207,7 +207,13 @@ def test_sigterm_at_several_moments_leaves_no_debris_and_the_old_payload(tmp_pat
             ]
         data, doc = pair(out, "spilly.json")
         assert doc["sha256"] == sha(data)
-        assert (data, doc) in (old, fresh)  # nothing published is ever wrong
+        # Nothing published is ever wrong: the old pair or the fresh one, except that a run
+        # that found the finest partial cached (left by an earlier run of this loop) says
+        # so in its file counts.
+        if doc.get("files") != fresh[1].get("files") and data == fresh[0]:
+            assert doc["files"] == {"total": 1, "scanned": 0, "reused": 1}
+            doc = {**doc, "files": fresh[1]["files"]}
+        assert (data, doc) in (old, fresh)
         if proc.returncode == 143 and data != old[0]:
             # Only a signal after the payload's rename completes the new pair.
             assert doc != old[1]
