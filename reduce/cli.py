@@ -79,7 +79,25 @@ class Terminated(KeyboardInterrupt):
     like Ctrl-C: every ``finally`` and clean-up runs (temporary and spill files removed)."""
 
 
+# A SIGTERM that arrived inside polars' own Python code is raised a little later: that code
+# may be a callback of polars' native code, where an exception becomes a panic (a native
+# backtrace and exit 1) instead of unwinding.
+_RETRY_SECONDS = 0.05
+_retry: Any = None
+
+
 def _on_sigterm(signum: int, frame: Any) -> None:
+    global _retry
+    import os
+    import threading
+
+    where = frame.f_code.co_filename.replace("\\", "/") if frame is not None else ""
+    if "/polars/" in where:
+        if _retry is None or not _retry.is_alive():
+            _retry = threading.Timer(_RETRY_SECONDS, os.kill, (os.getpid(), signum))
+            _retry.daemon = True
+            _retry.start()
+        return
     raise Terminated
 
 
@@ -96,6 +114,8 @@ def _sigterm_unwinds() -> Iterator[None]:
     try:
         yield
     finally:
+        if _retry is not None:
+            _retry.cancel()
         signal.signal(signal.SIGTERM, previous)
 
 

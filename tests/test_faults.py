@@ -224,3 +224,27 @@ def test_sigterm_at_several_moments_leaves_no_debris_and_the_old_payload(tmp_pat
         (out / "spilly.json").write_bytes(old[0])
         manifest_path(out / "spilly.json").write_bytes(json.dumps(old[1]).encode())
     assert 143 in outcomes
+
+
+def test_sigterm_inside_polars_python_code_is_raised_a_little_later(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # Raised inside a polars callback of native code, the exception would become a native
+    # panic (backtrace, exit 1); so there the signal is sent again shortly, and raised
+    # where the main thread runs other code.
+    import types
+
+    from reduce import cli
+
+    sent: list[tuple[int, int]] = []
+    monkeypatch.setattr(os, "kill", lambda pid, sig: sent.append((pid, sig)))
+    monkeypatch.setattr(cli, "_RETRY_SECONDS", 0.01)
+
+    def frame(path: str) -> types.SimpleNamespace:
+        return types.SimpleNamespace(f_code=types.SimpleNamespace(co_filename=path))
+
+    cli._on_sigterm(signal.SIGTERM, frame("/x/site-packages/polars/datatypes/classes.py"))
+    cli._retry.join(timeout=5)
+    assert sent == [(os.getpid(), signal.SIGTERM)]
+    with pytest.raises(cli.Terminated):
+        cli._on_sigterm(signal.SIGTERM, frame("/x/reduce/aggregate.py"))
