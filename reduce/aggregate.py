@@ -20,6 +20,7 @@ import re
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
+from typing import Any
 
 import polars as pl
 
@@ -764,11 +765,16 @@ def _regrouped(
     )
     remap = np.empty(mapped.height, dtype=np.uint32)
     rows = grouped.get_column(ROW)
-    new_ids = np.repeat(np.arange(grouped.height, dtype=np.uint32), rows.list.len().to_numpy())
+    sizes = rows.list.len().to_numpy()
+    new_ids = np.repeat(np.arange(grouped.height, dtype=np.uint32), sizes)
     remap[rows.explode().to_numpy()] = new_ids
-    lookup = pl.Series(GROUP, remap)
+    # A new group made of one old row keeps that row's pairs, distinct already: only the
+    # pairs of merged groups are de-duplicated (a relabelling merges few groups).
+    merged = sizes > 1
     pairs = {
-        name: _unique_pairs(lookup.gather(pt.get_column(GROUP)), pt.get_column(PAIR))
+        name: _unique_pairs(
+            pl.Series(remap[pt.get_column(GROUP).to_numpy()]), pt.get_column(PAIR), merged
+        )
         for name, pt in p.pairs.items()
     }
     return Partial(
@@ -787,18 +793,29 @@ def _group_columns(p: Partial, keys: Sequence[str] | None) -> list[str]:
     return list(keys) if keys is not None else [*p.keys, *p.hidden]
 
 
-def _unique_pairs(groups: pl.Series, values: pl.Series) -> pl.DataFrame:
-    """Distinct (group, value id) pairs, both UInt32, de-duplicated as one packed UInt64."""
+def _unique_pairs(groups: pl.Series, values: pl.Series, merged: Any | None = None) -> pl.DataFrame:
+    """Distinct (group, value id) pairs, both UInt32, de-duplicated as one packed UInt64
+    (sorted: faster than hashing here). With ``merged`` (a boolean array by group), only
+    the pairs of groups it marks are de-duplicated; the others are distinct already."""
     import numpy as np  # only for distinct measures: keeps start-up light
 
-    packed = (groups.to_numpy().astype(np.uint64) << np.uint64(32)) | values.to_numpy().astype(
-        np.uint64
-    )
-    u = pl.Series(packed).unique().to_numpy()
+    g = groups.to_numpy().astype(np.uint32, copy=False)
+    v = values.to_numpy().astype(np.uint32, copy=False)
+    kept_g = kept_v = np.empty(0, dtype=np.uint32)
+    if merged is not None:
+        m = merged[g]
+        kept_g, kept_v = g[~m], v[~m]
+        g, v = g[m], v[m]
+    packed = (g.astype(np.uint64) << np.uint64(32)) | v.astype(np.uint64)
+    packed.sort()
+    first = np.empty(len(packed), dtype=bool)
+    first[:1] = True
+    np.not_equal(packed[1:], packed[:-1], out=first[1:])
+    u = packed[first]
     return pl.DataFrame(
         {
-            GROUP: (u >> np.uint64(32)).astype(np.uint32),
-            PAIR: (u & np.uint64(0xFFFFFFFF)).astype(np.uint32),
+            GROUP: np.concatenate([kept_g, (u >> np.uint64(32)).astype(np.uint32)]),
+            PAIR: np.concatenate([kept_v, (u & np.uint64(0xFFFFFFFF)).astype(np.uint32)]),
         }
     )
 

@@ -9,7 +9,7 @@ from typing import TYPE_CHECKING, Any
 from reduce.contract import MANIFEST_FORMAT
 from reduce.measure import QUICK_NOTE
 from reduce.publish import sha256
-from reduce.sizes import BROTLI_AUTO_MAX, Sizes, measure_all
+from reduce.sizes import Sizes, measure_all
 
 if TYPE_CHECKING:
     from reduce.pipeline import FitResult
@@ -20,9 +20,12 @@ def build_manifest(result: FitResult, path: Path) -> dict[str, Any]:
     assert result.payload is not None and result.chosen is not None
     data = result.payload
     c = result.chosen
-    if c.gzip is None or (c.brotli is None and len(data) <= BROTLI_AUTO_MAX):
-        s = measure_all(data)  # the chosen level is always measured exactly
-        c.gzip, c.brotli = s.gzip, s.brotli
+    on_brotli = result.budget is not None and result.budget.on == "brotli"
+    if c.gzip is None or (c.brotli is None and on_brotli):
+        s = measure_all(data, brotli=on_brotli)  # the chosen level is always measured exactly
+        c.gzip = s.gzip
+        if s.brotli is not None:
+            c.brotli = s.brotli
     sizes = Sizes(raw=len(data), gzip=int(c.gzip), brotli=c.brotli)
     red = result.reducer
     assert result.level is not None and red is not None
@@ -51,8 +54,10 @@ def build_manifest(result: FitResult, path: Path) -> dict[str, Any]:
         **(
             {
                 "notes": [
-                    f"brotli not measured: the payload is over {BROTLI_AUTO_MAX:,} raw bytes "
-                    "(brotli at quality 11 is slow); use a brotli budget to measure it"
+                    "brotli not measured: "
+                    + (f"the budget is on {result.budget.on}" if result.budget else "no budget")
+                    + " (brotli at quality 11 is slow); a brotli budget, "
+                    "[output] precompress = true or reduce ladder --exact measures it"
                 ]
             }
             if sizes.brotli is None

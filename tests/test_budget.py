@@ -159,14 +159,44 @@ def test_payload_level_and_manifest_record_the_choice(
     }
     assert manifest["bytes"]["gzip"] <= 15000
     data = out.path.read_bytes()  # type: ignore[union-attr]
-    # References: Python's gzip module (RFC 1952) and the brotli module (RFC 7932).
+    # Reference: Python's gzip module (RFC 1952). Brotli at quality 11 is not measured on a
+    # gzip budget, and the manifest says so.
     assert manifest["bytes"] == {
+        "raw": len(data),
+        "gzip": len(gzip.compress(data, compresslevel=9, mtime=0)),
+        "brotli": None,
+    }
+    assert manifest["notes"] == [
+        "brotli not measured: the budget is on gzip (brotli at quality 11 is slow); a brotli "
+        "budget, [output] precompress = true or reduce ladder --exact measures it"
+    ]
+    assert len(manifest["frontier"]) == len(out.fit.candidates)
+    assert sum(c["chosen"] for c in manifest["frontier"]) == 1
+
+
+def test_a_brotli_budget_measures_the_chosen_level_on_brotli_and_a_gzip_budget_never_does(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.chdir(tmp_path)
+    recipe = project(tmp_path)
+    out = reduce.run(recipe, budget="9KB", on="brotli", use_cache=False)
+    assert out.path is not None and out.manifest is not None
+    data = out.path.read_bytes()
+    # References: the brotli module (RFC 7932) and Python's gzip module (RFC 1952).
+    assert out.manifest["bytes"] == {
         "raw": len(data),
         "gzip": len(gzip.compress(data, compresslevel=9, mtime=0)),
         "brotli": len(brotli.compress(data, quality=11)),
     }
-    assert len(manifest["frontier"]) == len(out.fit.candidates)
-    assert sum(c["chosen"] for c in manifest["frontier"]) == 1
+    assert out.manifest["bytes"]["brotli"] <= 9000 and "notes" not in out.manifest
+
+    def no_brotli_11(data: bytes) -> bytes:
+        raise AssertionError("brotli quality 11 run on a gzip budget")
+
+    monkeypatch.setattr("reduce.sizes.brotli_bytes", no_brotli_11)
+    for budget in ("15KB", None):  # a gzip budget, and the recipe's own
+        gz = reduce.run(recipe, budget=budget, out_dir=tmp_path / "gz", use_cache=False)
+        assert gz.manifest is not None and gz.manifest["bytes"]["brotli"] is None
 
 
 def test_refit_with_another_budget_reuses_the_cached_partial(

@@ -132,15 +132,20 @@ def test_a_changed_denominators_file_is_not_served_from_the_store(tmp_path: Path
 def test_a_second_run_at_the_same_budget_compresses_nothing(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    # The chosen level's brotli length (taken for payloads up to 4 MB raw) is kept with its
-    # gzip length, so publishing it again measures nothing.
+    # The chosen level's exact lengths are kept, so publishing it again measures nothing: on
+    # a gzip budget its gzip length (brotli is not measured), on a brotli budget both.
     path = _case(tmp_path)
     first = reduce.run(path, out_dir=tmp_path / "a", budget="40KB")
-    assert first.fit.chosen is not None and first.fit.chosen.brotli is not None
+    assert first.fit.chosen is not None and first.fit.chosen.brotli is None
+    on_brotli = reduce.run(path, out_dir=tmp_path / "c", budget="30KB", on="brotli")
+    assert on_brotli.fit.chosen is not None and on_brotli.fit.chosen.brotli is not None
     _no_building(monkeypatch)
     again = reduce.run(path, out_dir=tmp_path / "b", budget="40KB")
     assert first.path is not None and again.path is not None
     assert again.path.read_bytes() == first.path.read_bytes()
+    brotli_again = reduce.run(path, out_dir=tmp_path / "d", budget="30KB", on="brotli")
+    assert on_brotli.path is not None and brotli_again.path is not None
+    assert brotli_again.path.read_bytes() == on_brotli.path.read_bytes()
 
 
 def test_the_same_recipe_by_a_relative_absolute_or_linked_path_shares_its_store(
