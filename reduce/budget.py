@@ -46,6 +46,8 @@ class Candidate:
     chosen: bool = False
     note: str = ""
     estimated: bool = False
+    # Its rows estimated from a sample of its cells (not counted): see Measurer.sampled.
+    rows_estimated: bool = False
     # A lower bound of the size on the budget's measure (the exact size when measured, or
     # what a fast compression implies): its bytes per row bound the rows-only estimates.
     floor: int | None = None

@@ -73,6 +73,7 @@ def build_manifest(result: FitResult, path: Path) -> dict[str, Any]:
                 "fits": c.fits,
                 "chosen": c.chosen,
                 **({"estimated": True} if c.estimated or c.note == QUICK_NOTE else {}),
+                **({"rows_estimated": True} if c.rows_estimated else {}),
             }
             for c in result.candidates
         ],

@@ -48,6 +48,10 @@ QUICK_NOTE = "judged by a fast compression"
 # (Measurer.prefetch) and taken if it fits. Brotli 11 against 5: about 0.85 (common practice).
 CLOSE_GUESS: dict[str, float] = {"raw": 1.0, "gzip": 1.0, "brotli": 0.85}
 
+# Rows assumed when choosing a pilot sample (see Measurer.sampled): more than any level has,
+# so the pilot is as thin as the level's cells allow.
+SAMPLE_PILOT_ROWS = 1 << 62
+
 # A sample's fast length, scaled to the level's rows, times the exact/fast ratio of the
 # measure is the estimate of a level's size; it settles a verdict only when at least this
 # fraction away from the limit (closer calls are measured in full).
@@ -557,27 +561,72 @@ class Measurer(LevelTables):
         return started.result() if started is not None else size_on(data, on)
 
     def sampled(
-        self, level: Mapping[str, Any], on: Measure, limit: int
+        self,
+        level: Mapping[str, Any],
+        on: Measure,
+        limit: int,
+        *,
+        count: bool = True,
+        at_least: int = 0,
     ) -> bsearch.Candidate | None:
         """A level judged by a sample of its cells (:meth:`LevelTables.sample_rows`): the
-        sample encoded and compressed at the fast setting, scaled by the level's rows, times
+        sample encoded and compressed at the fast setting, scaled to the whole level, times
         the exact/fast ratio (:data:`SAMPLE_RATIO`, then what this recipe's measured levels
         showed). Evidence that steers the search only: None when the level is too small to
-        sample or the estimate is within :data:`SAMPLE_MARGIN` of ``limit`` (measure it)."""
-        rows = self.row_count(level)
+        sample or the estimate is within :data:`SAMPLE_MARGIN` of ``limit`` (measure it).
+
+        With ``count`` the level's rows are counted exactly first and the sample is scaled by
+        them. Without, the level is sampled when a lower bound of its rows (its distinct
+        cells, or the rows of a coarser level counted before: ``at_least``) is large enough,
+        and the sample is scaled by the level's cells against the sample's (1 in ``every``
+        by a fixed hash, so about ``every``): its rows are estimated too, without a pass
+        over the partial to count them (the candidate says so: ``rows_estimated``)."""
         seen = self.store.sample(level)
+        if not count and (seen is None or on not in seen or "rows" not in seen):
+            seen = None
+        frame: pl.DataFrame | None = None
+        if count:
+            rows = self.row_count(level)
+        elif seen is not None:
+            rows = seen["rows"]
+        else:
+            # A pilot sample, as thin as the level's cells allow, estimates its rows; the
+            # sample taken is then as thin as those rows allow (the pilot's cells are among
+            # its cells: the same hash picks both), or the pilot itself.
+            rows = max(at_least, self.cells(level))
+            pilot = self.sample_every(level, max(rows, SAMPLE_PILOT_ROWS))
+            if pilot < 2:
+                return None
+            self.progress(
+                f"sampling 1 in {pilot} {_unit(self.recipe)} of {bsearch.describe_level(level)}"
+            )
+            frame = self.sample_rows(level, pilot)
+            rows = max(rows, int(frame.height / self.sampled_share(level, pilot)))
+            if self.sample_every(level, rows) != pilot:
+                frame = None
         if seen is None or on not in seen:
             every = self.sample_every(level, rows)
             if every < 2:
                 return None
-            self.progress(
-                f"sampling 1 in {every} {_unit(self.recipe)} of {bsearch.describe_level(level)}"
-            )
-            frame = self.sample_rows(level, every)
+            if frame is None:
+                self.progress(
+                    f"sampling 1 in {every} {_unit(self.recipe)} of {bsearch.describe_level(level)}"
+                )
+                frame = self.sample_rows(level, every)
             if not frame.height:
                 return None
             fast = fast_length(self._encode(level, frame, {}), on)
-            seen = {"every": every, "sample_rows": frame.height, on: fast * rows // frame.height}
+            if count:
+                scale = rows / frame.height
+            else:
+                scale = 1 / self.sampled_share(level, every)
+                rows = max(rows, int(frame.height * scale))
+            seen = {
+                "every": every,
+                "sample_rows": frame.height,
+                on: int(fast * scale),
+                **({} if count else {"rows": rows}),
+            }
             self.store.put_sample(level, seen)
         est = int(seen[on] * self.store.ratio(on, SAMPLE_RATIO[on]))
         if (1 - SAMPLE_MARGIN) * limit < est <= (1 + SAMPLE_MARGIN) * limit:
@@ -585,6 +634,7 @@ class Measurer(LevelTables):
         c = bsearch.Candidate(level=Level.of(level), rows=rows, elements=rows, raw=None)
         c.fits = est <= limit
         c.estimated = True
+        c.rows_estimated = not count
         c.guess = est
         c.note = (
             f"~{est:,} {on} bytes estimated from a sample of 1 in {seen['every']} "

@@ -218,20 +218,35 @@ def fit(
                 cands[k] = judged
                 return judged
             if red.known_count(level) is None:
-                red.progress(f"counting rows of {bsearch.describe_level(level)}")
-            rows = red.row_count(level)
-            counted.append((level, rows))
-            if per_row and rows * min(per_row) > margin * b.max:
-                c = red.estimate(level, b.on, min(per_row), b.max)
-                cands[k] = c
-                red.forget(level)
-                return c
-            # A sample of the level's cells: far enough from the limit, its estimate is the
-            # verdict (steering only: the chosen level is measured exactly below).
-            sampled = red.sampled(level, b.on, b.max)
-            if sampled is not None:
-                cands[k] = sampled
-                return sampled
+                # A level whose rows are known to be many (its cells, or a coarser level
+                # counted before) is judged by a sample of its cells alone, its rows
+                # estimated from the sample: counting them would cost a pass over the
+                # partial (spilled rows at scale) for evidence that only steers.
+                sampled = red.sampled(
+                    level, b.on, b.max, count=False, at_least=rows_at_least(level)
+                )
+                if sampled is not None:
+                    cands[k] = sampled
+                    return sampled
+            close_sample = red.known_count(level) is None and "rows" in (
+                red.store.sample(level) or {}
+            )
+            if not close_sample:  # a close sample's level is measured next: no count first
+                if red.known_count(level) is None:
+                    red.progress(f"counting rows of {bsearch.describe_level(level)}")
+                rows = red.row_count(level)
+                counted.append((level, rows))
+                if per_row and rows * min(per_row) > margin * b.max:
+                    c = red.estimate(level, b.on, min(per_row), b.max)
+                    cands[k] = c
+                    red.forget(level)
+                    return c
+                # A sample of the level's cells: far enough from the limit, its estimate is
+                # the verdict (steering only: the chosen level is measured exactly below).
+                sampled = red.sampled(level, b.on, b.max)
+                if sampled is not None:
+                    cands[k] = sampled
+                    return sampled
         red.progress(f"measuring {bsearch.describe_level(level)}")
         c = red.candidate(
             level,

@@ -127,8 +127,8 @@ def ladder_table(result: FitResult) -> str:
             [
                 "*" if c.chosen else "",
                 *[str(c.level[a]) for a in axes],
-                _num(c.rows),
-                _num(c.elements),
+                f"~{c.rows:,}" if c.rows_estimated else _num(c.rows),
+                f"~{c.elements:,}" if c.rows_estimated else _num(c.elements),
                 sizes["raw"],
                 sizes["gzip"],
                 sizes["brotli"],
@@ -185,6 +185,7 @@ def ladder_json(result: FitResult) -> bytes:
                 "fits": c.fits,
                 "chosen": c.chosen,
                 "estimated": c.estimated,
+                "rows_estimated": c.rows_estimated,
                 "guess": c.guess if c.estimated else None,
             }
             for c in result.candidates

@@ -106,7 +106,8 @@ class LevelTables:
         self._split: dict[int | None, pl.Series | None] = {}
         self._sample_partials: dict[tuple[Any, Any, int], Partial] = {}
         self._sample_ranks: dict[Any, pl.Series] = {}
-        self._cells: dict[int | None, int] = {}  # distinct cells per resolution
+        # Distinct cells per resolution (time bins per bin without hex): see _key_values.
+        self._cells: dict[Any, pl.Series] = {}
         n = recipe.normalize
         if n is not None and n.denominators is not None:
             self._den = normalize.load_denominators(n.denominators)
@@ -465,23 +466,51 @@ class LevelTables:
                 p = self._top_k(p, k, self._sample_ranks, (h, t, every))
         return self._finish(p, h).frame
 
+    def cells(self, level: Mapping[str, Any]) -> int:
+        """The level's distinct cells (time bins without hex): what its samples are drawn
+        from. Without ``min_count``, a lower bound of its rows (every cell has a row)."""
+        return self._distinct_keys(level)
+
+    def sampled_share(self, level: Mapping[str, Any], every: int) -> float:
+        """The share of the level's cells (time bins without hex) that a sample of 1 in
+        ``every`` picks: about 1 / ``every`` (a fixed hash of the cell), exactly this."""
+        values = self._key_values(level)
+        if not len(values):
+            return 1.0
+        col = values.name
+        picked = int(sample_mask(values.to_frame(), col, every).sum())
+        return max(picked, 1) / len(values)
+
     def _distinct_keys(self, level: Mapping[str, Any]) -> int:
         """Distinct cells of the level's resolution, from the finest partial's cell column
         (one column of it, not the level's roll-up); without hex, the level's time bins
         (from its roll-up, which a time-only sample is taken from anyway)."""
+        return len(self._key_values(level))
+
+    def _key_values(self, level: Mapping[str, Any]) -> pl.Series:
+        """The distinct cells (time bins without hex) behind :meth:`_distinct_keys`."""
         r = self.recipe
         h, t = level.get("hex"), level.get("time")
         if not r.hex or h is None:
-            return self._visible(h, t).table.get_column(TIME).n_unique()
+            k = ("time", t)
+            if k not in self._cells:
+                self._cells[k] = (
+                    self._visible(h, t).table.get_column(TIME).drop_nulls().unique().rename(TIME)
+                )
+            return self._cells[k]
         if h not in self._cells:
             finest = self.finest()
             col = HEX if h == finest.hex_res else hidden_hex(h)
             if isinstance(finest, Partial):
-                self._cells[h] = finest.table.get_column(col).n_unique()
+                values = finest.table.get_column(col).drop_nulls().unique()
             else:
-                self._cells[h] = int(
-                    finest.frame().select(pl.col(col).n_unique()).collect(engine="streaming").item()
+                values = (
+                    finest.frame()
+                    .select(pl.col(col).drop_nulls().unique())
+                    .collect(engine="streaming")
+                    .to_series()
                 )
+            self._cells[h] = values.rename(HEX)
         return self._cells[h]
 
     def _sampled_partial(self, h: int | None, t: str | None, every: int) -> Partial:

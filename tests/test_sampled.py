@@ -16,7 +16,7 @@ import polars as pl
 import pytest
 
 import reduce
-from reduce import levels, measure, pipeline, tables
+from reduce import levels, measure, pipeline, report, tables
 from reduce.budget import all_levels, level_key
 from reduce.levels import Level
 from reduce.sizes import gzip_bytes, parse_size
@@ -99,8 +99,10 @@ def test_a_sample_that_says_fits_wrongly_never_publishes_an_over_budget_level(
     exact = _exact_sizes(path)
     real = measure.Measurer.sampled
 
-    def optimist(self: measure.Measurer, level: object, on: str, limit: int) -> object:
-        c = real(self, level, on, limit)  # type: ignore[arg-type]
+    def optimist(
+        self: measure.Measurer, level: object, on: str, limit: int, **kw: object
+    ) -> object:
+        c = real(self, level, on, limit, **kw)  # type: ignore[arg-type]
         if c is not None:
             c.fits, c.guess = True, 1  # every sampled level claims to fit
         return c
@@ -171,3 +173,49 @@ def test_close_finer_neighbours_of_the_choice_are_measured_exactly(
             # A finer neighbour that fits can only be missed by evidence clearly over (the
             # search's estimates steer; the 10% rule bounds how far they can mislead).
             assert c.gzip is None and c.guess is not None and c.guess > 1.1 * limit, axis
+
+
+def test_a_large_level_is_sampled_without_counting_its_rows_and_says_so(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    path = _case(tmp_path)
+    recipe = reduce.load_recipe(path)
+    exact_rows = {
+        level_key(lv): pipeline.Reducer(recipe, use_cache=False).rows(Level.of(lv)).frame.height
+        for lv in all_levels(recipe.ladder())
+    }
+    counted: list[tuple[object, ...]] = []
+    real_count = tables.LevelTables._count_rows
+
+    def spy(self: tables.LevelTables, level: dict[str, object]) -> int:
+        counted.append(level_key(level))
+        return real_count(self, level)
+
+    monkeypatch.setattr(tables.LevelTables, "_count_rows", spy)
+    lines: list[str] = []
+    res = reduce.run(
+        path, out_dir=tmp_path / "out", budget="60KB", use_cache=False, progress=lines.append
+    )
+    uncounted = [c for c in res.fit.candidates if c.rows_estimated]
+    assert uncounted, "no level was judged by a sample alone"
+    for c in uncounted:
+        k = level_key(c.level)
+        assert k not in counted  # no pass over the partial counted its rows
+        assert c.estimated and "sample" in c.note and c.fits is not None
+        # The rows estimated from the sample: within 25% of the exact count on this table
+        # (the sample is a fixed share of the cells; their rows vary).
+        assert 0.75 <= c.rows / exact_rows[k] <= 1.25, (c.level, c.rows, exact_rows[k])
+    # A pilot sample as thin as the cells allow comes first, then (when the estimated rows
+    # allow no thinner one) the sample the verdict is taken from.
+    assert any(line.startswith("sampling 1 in ") for line in lines)
+    assert res.manifest is not None
+    marked = {level_key(f["level"]) for f in res.manifest["frontier"] if f.get("rows_estimated")}
+    assert marked == {level_key(c.level) for c in uncounted}
+    # The ladder marks those rows as estimates, and --exact counts them.
+    table = report.ladder_table(res.fit)
+    for c in uncounted:
+        assert f"~{c.rows:,}" in table
+    exact = reduce.ladder(path, budget="60KB", use_cache=False)
+    assert not any(c.rows_estimated for c in exact.candidates)
+    # The published level is the same as when every level is measured exactly.
+    assert res.fit.level == exact.level
