@@ -593,10 +593,10 @@ class Measurer(LevelTables):
             # A pilot sample, as thin as the level's cells allow, estimates its rows; the
             # sample taken is then as thin as those rows allow (the pilot's cells are among
             # its cells: the same hash picks both), or the pilot itself.
-            rows = max(at_least, self.cells(level))
-            pilot = self.sample_every(level, max(rows, SAMPLE_PILOT_ROWS))
-            if pilot < 2:
+            pilot = self.sample_every(level, SAMPLE_PILOT_ROWS)
+            if pilot < 2:  # too few cells to sample, or neither hex cells nor time bins
                 return None
+            rows = max(at_least, self.cells(level))
             self.progress(
                 f"sampling 1 in {pilot} {_unit(self.recipe)} of {bsearch.describe_level(level)}"
             )

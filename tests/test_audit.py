@@ -146,6 +146,21 @@ def test_valid_columns_payload_with_manifest(tmp_path: Path) -> None:
     assert not any("manifest" in n for n in f.notes)
 
 
+def test_a_run_on_a_gzip_budget_audits_clean_with_brotli_not_recorded(tmp_path: Path) -> None:
+    import reduce
+
+    recipe = builders.project(tmp_path)
+    out = reduce.run(recipe, budget="15KB", use_cache=False)
+    assert out.path is not None and out.manifest is not None
+    assert out.manifest["bytes"]["brotli"] is None  # a gzip budget does not measure brotli
+    f = audit_one(out.path, brotli=True)
+    assert f.problems == ()
+    name = out.path.name + ".manifest.json"
+    assert f"manifest {name}: bytes.brotli not recorded (the run did not measure it)" in f.notes
+    # The audit measures it itself: the brotli module, RFC 7932.
+    assert f.brotli == len(brotli.compress(out.path.read_bytes(), quality=11))
+
+
 def test_payload_without_manifest_is_audited_with_a_note(tmp_path: Path) -> None:
     path = write_payload(tmp_path / "x.json", manifest=False)
     f = audit_one(path)

@@ -75,6 +75,9 @@ def _check_manifest(
                 out.problems.append(f"{where} key 'bytes.{measure}' is missing")
             elif value is None:
                 out.notes.append(f"{where}: bytes.brotli not verified (brotli not measured)")
+            elif measure == "brotli" and sizes[measure] is None:
+                # reduce run leaves brotli unmeasured unless the budget is on brotli.
+                out.notes.append(f"{where}: bytes.brotli not recorded (the run did not measure it)")
             elif sizes[measure] != value:
                 out.problems.append(
                     f"{where} key 'bytes.{measure}': {_show(sizes[measure])}, "
