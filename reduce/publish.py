@@ -509,7 +509,7 @@ def _commit(
     # The payload's move stays first and the manifest's last (see _plan).
     moves = [(tmp_payload, path), *tmp_extras, (tmp_manifest, man)]
     renamed = 0
-    journalled = False
+    renaming = journalled = False
     try:
         _write_tmp(path, payload)
         for p, data in extras:
@@ -520,18 +520,24 @@ def _commit(
         os.replace(jtmp, journal)
         journalled = True
         _fsync_dir(folder)
-        for t, f in moves:
-            os.replace(t, f)
-            renamed += 1
+        renaming = True
+        with _signals_held():  # the renames are not cut short by a signal's exception
+            for t, f in moves:
+                os.replace(t, f)
+                renamed += 1
         _fsync_dir(folder)
         journal.unlink(missing_ok=True)
     except BaseException as e:
+        if renaming:
+            # What was renamed, from the files themselves: an exception can come between a
+            # rename and the count that follows it.
+            renamed = next((i for i, (t, _) in enumerate(moves) if t.exists()), len(moves))
         if 0 < renamed < len(moves):
             # The payload is in place: complete the commit rather than leave it mismatched.
-            with contextlib.suppress(OSError):
-                for t, f in moves[renamed:]:
+            for t, f in moves[renamed:]:
+                with contextlib.suppress(OSError):
                     os.replace(t, f)
-                    renamed += 1
+            renamed = next((i for i, (t, _) in enumerate(moves) if t.exists()), len(moves))
         if renamed == len(moves):  # the commit is complete: its journal has done its work
             with contextlib.suppress(OSError):
                 journal.unlink(missing_ok=True)
@@ -544,6 +550,36 @@ def _commit(
                 f"{folder}: cannot publish ({e.strerror or e}); check free space and permissions"
             ) from None
         raise
+
+
+@contextlib.contextmanager
+def _signals_held() -> Iterator[None]:
+    """SIGTERM and SIGINT held back until the block ends: their handlers then run (as if
+    the signal came then), after the renames of a commit, never between two of them.
+    Python runs signal handlers in the main thread only; elsewhere nothing is changed."""
+    import signal
+    import threading
+
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+    came: list[int] = []
+
+    def hold(signum: int, frame: object) -> None:
+        came.append(signum)
+
+    previous = {s: signal.signal(s, hold) for s in (signal.SIGTERM, signal.SIGINT)}
+    try:
+        yield
+    finally:
+        for s, h in previous.items():
+            signal.signal(s, h)
+        for num in dict.fromkeys(came):  # each signal once, in the order they came
+            h = previous[signal.Signals(num)]
+            if callable(h):
+                h(num, None)
+            elif h == signal.SIG_DFL:
+                os.kill(os.getpid(), num)
 
 
 def sha256(data: bytes) -> str:

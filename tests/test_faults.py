@@ -80,6 +80,76 @@ def test_disk_full_at_any_sync_leaves_old_pair_and_no_temporary_file(
     assert pair(out, "p.json") == (old, manifest("p.json", old))
 
 
+@pytest.mark.parametrize("after_rename", [1, 2])
+def test_an_exception_right_after_a_rename_still_completes_the_pair(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, after_rename: int
+) -> None:
+    # An exception (a signal's, say) between a rename and the count of renames that follows
+    # it: the commit is completed from what the files show, never left with the new payload
+    # beside the old manifest.
+    import reduce.publish as pub
+
+    out = tmp_path / "out"
+    old = b'{"format": "reduce.columns/1", "v": 1}'
+    publish(out / "p.json", old, manifest("p.json", old))
+    real = os.replace
+    calls = {"n": 0}
+
+    def replace(src: object, dst: object) -> None:
+        real(src, dst)  # type: ignore[arg-type]
+        if str(src).endswith(".tmp") or ".json" in str(dst):
+            calls["n"] += 1
+            if calls["n"] == 1 + after_rename:  # the journal's rename comes first
+                raise KeyboardInterrupt
+
+    monkeypatch.setattr(pub.os, "replace", replace)
+    new = b'{"format": "reduce.columns/1", "v": 2}'
+    with pytest.raises(KeyboardInterrupt):
+        publish(out / "p.json", new, manifest("p.json", new))
+    monkeypatch.setattr(pub.os, "replace", real)
+    assert pair(out, "p.json") == (new, manifest("p.json", new))
+    assert debris(out) == []
+
+
+def test_sigterm_during_the_renames_is_handled_after_them(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # SIGTERM is held back while a commit renames its files: its handler runs once they are
+    # all in place (the pair is whole), not between two of them.
+    import reduce.publish as pub
+
+    class Stop(Exception):
+        pass
+
+    def handler(signum: int, frame: object) -> None:
+        raise Stop
+
+    out = tmp_path / "out"
+    old = b'{"format": "reduce.columns/1", "v": 1}'
+    publish(out / "p.json", old, manifest("p.json", old))
+    real = os.replace
+    seen: list[str] = []
+
+    def replace(src: object, dst: object) -> None:
+        real(src, dst)  # type: ignore[arg-type]
+        seen.append(Path(str(dst)).name)
+        if Path(str(dst)).name == "p.json":  # the payload is in place: signal now
+            os.kill(os.getpid(), signal.SIGTERM)
+
+    previous = signal.signal(signal.SIGTERM, handler)
+    try:
+        monkeypatch.setattr(pub.os, "replace", replace)
+        new = b'{"format": "reduce.columns/1", "v": 2}'
+        with pytest.raises(Stop):
+            publish(out / "p.json", new, manifest("p.json", new))
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+        monkeypatch.setattr(pub.os, "replace", real)
+    assert "p.json.manifest.json" in seen  # the manifest's rename ran before the handler
+    assert pair(out, "p.json") == (new, manifest("p.json", new))
+    assert debris(out) == []
+
+
 def _tmpfs(folder: Path, size: str) -> bool:
     folder.mkdir(parents=True, exist_ok=True)
     done = subprocess.run(
@@ -185,19 +255,36 @@ def test_sigterm_at_several_moments_leaves_no_debris_and_the_old_payload(tmp_pat
     start = time.monotonic()
     subprocess.run(cmd("60KB", True), env=env, capture_output=True, check=True)
     whole = time.monotonic() - start  # spreads the kills over a run; never asserted
+    # Until the command's signal handler is in place a SIGTERM ends the process at once
+    # (-SIGTERM below); the kills are spread after that start-up, so that most land in the
+    # command's work however short the run is.
+    start = time.monotonic()
+    subprocess.run([sys.executable, "-m", "reduce", "--help"], env=env, capture_output=True)
+    startup = time.monotonic() - start
     fresh = pair(out, "spilly.json")  # what a whole --no-cache run publishes
     (out / "spilly.json").write_bytes(old[0])  # back to the first pair
     manifest_path(out / "spilly.json").write_bytes(json.dumps(old[1]).encode())
     rng = random.Random(12)
     outcomes = set()
-    for i in range(6):
+    # The window in which a kill lands in the command's work: a kill that came during
+    # start-up moves its lower end up, one after the run had finished its upper end down,
+    # so that a short run on a busy machine is still hit in the middle of its work.
+    lo, hi = startup, max(whole, startup + 0.5)
+    for i in range(12):
+        if i >= 6 and 143 in outcomes:
+            break
         proc = subprocess.Popen(
             cmd("60KB", i % 2 == 0), env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE
         )
-        time.sleep(rng.uniform(0.05, whole))
+        delay = rng.uniform(lo, hi)
+        time.sleep(delay)
         proc.send_signal(signal.SIGTERM)
         _, err = proc.communicate(timeout=120)
         outcomes.add(proc.returncode)
+        if proc.returncode == -signal.SIGTERM:
+            lo = delay
+        elif proc.returncode == 0:
+            hi = max(delay, lo + 0.05)
         # -SIGTERM: the signal came during start-up (imports), before the command began
         # and before it could write anything; the checks below hold for it too.
         assert proc.returncode in (0, 143, -signal.SIGTERM), err.decode()
