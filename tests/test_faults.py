@@ -210,7 +210,9 @@ def _spilling_case(tmp: Path) -> Path:
     rng = np.random.default_rng(99)
     return write_case(
         tmp,
-        random_events(rng, 6000, span_days=20),
+        # Enough events that a run's work outlasts its start-up (about 0.8 s of imports, when
+        # a SIGTERM still ends the process at once), so the kills below land in the work.
+        random_events(rng, 400_000, span_days=20),
         source={"time": "t", "lat": "lat", "lon": "lon"},
         group={
             "hex": {"levels": [10, 8, 6]},
@@ -249,11 +251,11 @@ def test_sigterm_at_several_moments_leaves_no_debris_and_the_old_payload(tmp_pat
             *(["--no-cache"] if no_cache else []),
         ]
 
-    first = subprocess.run(cmd("30KB", True), env=env, capture_output=True)
+    first = subprocess.run(cmd("100KB", True), env=env, capture_output=True)
     assert first.returncode == 0, first.stderr.decode()
     old = pair(out, "spilly.json")
     start = time.monotonic()
-    subprocess.run(cmd("60KB", True), env=env, capture_output=True, check=True)
+    subprocess.run(cmd("400KB", True), env=env, capture_output=True, check=True)
     whole = time.monotonic() - start  # spreads the kills over a run; never asserted
     # Until the command's signal handler is in place a SIGTERM ends the process at once
     # (-SIGTERM below); the kills are spread after that start-up, so that most land in the
@@ -274,7 +276,7 @@ def test_sigterm_at_several_moments_leaves_no_debris_and_the_old_payload(tmp_pat
         if i >= 6 and 143 in outcomes:
             break
         proc = subprocess.Popen(
-            cmd("60KB", i % 2 == 0), env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE
+            cmd("400KB", i % 2 == 0), env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE
         )
         delay = rng.uniform(lo, hi)
         time.sleep(delay)
