@@ -895,6 +895,25 @@ def visible(recipe: Recipe, p: Partial) -> Partial:
     return regroup(recipe, p, [], list(p.keys))
 
 
+def with_label_codes(recipe: Recipe, p: Partial) -> Partial:
+    """``p`` with its text category columns as integer codes in label order: a polars
+    ``Enum`` of the column's labels sorted by code point (as polars sorts strings), with the
+    top-k rest label among them. Grouping, ranking and sorting then work on the codes
+    (measured: a unique over hex, time and category of the demo's 1.9M finest groups took
+    0.16 s instead of 0.43 s; the cast 0.01 s), rows sort as by their labels, and the labels come back as text
+    only when a payload is encoded. Done in memory after the scan or the cache; partials
+    on disk keep text, so partials of files with other labels still merge."""
+    cats = [c for c in recipe.categories if p.table.schema.get(c) == pl.String]
+    if not cats or not p.table.height:
+        return p
+    rest = [recipe.top.rest] if recipe.top is not None else []
+    codes = []
+    for c in cats:
+        labels = p.table.get_column(c).drop_nulls().unique().to_list()
+        codes.append(pl.col(c).cast(pl.Enum(sorted({*labels, *rest}))))
+    return replace(p, table=p.table.with_columns(codes))
+
+
 def merge(recipe: Recipe, a: Partial, b: Partial) -> Partial:
     """Merge two partials of the same recipe and level (e.g. two input files or two nights)."""
     if a.keys != b.keys or a.hex_res != b.hex_res or a.time_bin != b.time_bin:

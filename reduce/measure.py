@@ -596,6 +596,9 @@ class Measurer(LevelTables):
             pilot = self.sample_every(level, SAMPLE_PILOT_ROWS)
             if pilot < 2:  # too few cells to sample, or neither hex cells nor time bins
                 return None
+            most = self.rows_at_most(level)
+            if most is not None and self.sample_every(level, most) < 2:
+                return None  # too few rows to sample, whatever a pilot would say
             rows = max(at_least, self.cells(level))
             self.progress(
                 f"sampling 1 in {pilot} {_unit(self.recipe)} of {bsearch.describe_level(level)}"

@@ -78,7 +78,11 @@ def check_rest_label(recipe: Recipe, p: Partial | pl.LazyFrame) -> None:
 def label_codes(s: pl.Series) -> pl.Series:
     """A text category column as UInt32 codes in label order (code-point order, as polars
     sorts strings; a null stays null), so that ordering rows by codes orders them as by the
-    labels, with integer comparisons only. Any other column is returned as it is."""
+    labels, with integer comparisons only. A column of codes in label order already (an
+    ``Enum`` of sorted labels: see ``aggregate.with_label_codes``) gives its codes; any
+    other column is returned as it is."""
+    if isinstance(s.dtype, pl.Enum) and s.dtype.categories.is_sorted():
+        return s.to_physical()
     if s.dtype != pl.String:
         return s
     labels = s.drop_nulls().unique().sort()
@@ -185,7 +189,9 @@ def top_k(recipe: Recipe, p: Partial, k: int, ranks: pl.Series | None = None) ->
             pl.all_horizontal([pl.lit(p.table.get_column(c)) == rest for c in cats])
         ).to_series()
     ).fill_null(fold)
-    changed = p.table.filter(moved).with_columns([pl.lit(rest).alias(c) for c in cats])
+    changed = p.table.filter(moved).with_columns(
+        [pl.lit(rest, dtype=p.table.schema[c]).alias(c) for c in cats]
+    )
     merged = relabel(recipe, replace(p, table=p.table.filter(moved)), changed)
     kept = p.table.filter(~moved)
     return replace(merged, table=pl.concat([kept, merged.table.select(kept.columns)]))

@@ -94,6 +94,7 @@ class LevelTables:
         self._rows_in_source: int | None = None
         self._partial: Partial | None = None
         self._finest: Partial | Spilled | None = None
+        self._coded = False  # the finest partial's categories are codes (with_label_codes)
         self._rollups: dict[tuple[Any, Any], Partial] = {}
         self._visibles: dict[tuple[Any, Any], Partial] = {}
         self._rows: dict[tuple[Any, ...], LevelRows] = {}
@@ -175,6 +176,9 @@ class LevelTables:
                         self._entry_stored(entry)
             prune.check_rest_label(self.recipe, p.frame() if isinstance(p, Spilled) else p)
             self._finest = p
+        if isinstance(self._finest, Partial) and not self._coded:
+            self._finest = aggregate.with_label_codes(self.recipe, self._finest)
+            self._coded = True
         return self._finest
 
     def entry(self) -> str:
@@ -470,6 +474,61 @@ class LevelTables:
         """The level's distinct cells (time bins without hex): what its samples are drawn
         from. Without ``min_count``, a lower bound of its rows (every cell has a row)."""
         return self._distinct_keys(level)
+
+    def rows_at_most(self, level: Mapping[str, Any]) -> int | None:
+        """An upper bound of the level's rows from its keys' distinct values alone: its
+        cells times its time bins times the values of each other key, with at most k + 1
+        categories per group under top-k (suppression only removes rows). None when the
+        finest partial is on disk (its distinct values would cost a pass)."""
+        finest = self.finest()
+        if not isinstance(finest, Partial):
+            return None
+        r = self.recipe
+        h, t = level.get("hex"), level.get("time")
+        cats = set(r.categories)
+        bound = 1
+        per_group = 1
+        for col in finest.keys:
+            if col == HEX:
+                bound *= len(self._key_values({"hex": h}))
+            elif col == TIME:
+                bound *= self._distinct_bins(t)
+            elif col in cats:
+                per_group *= self._distinct_values(col)
+            else:
+                bound *= self._distinct_values(col)
+        if r.top is not None and cats:
+            per_group = min(per_group, int(level["top"]) + 1)
+        return bound * per_group
+
+    def _distinct_values(self, col: str) -> int:
+        """Distinct non-null values of a key column of the finest partial (in memory)."""
+        k = ("values", col)
+        if k not in self._cells:
+            finest = self.finest()
+            assert isinstance(finest, Partial)
+            self._cells[k] = finest.table.get_column(col).drop_nulls().unique()
+        return len(self._cells[k])
+
+    def _distinct_bins(self, t: str | None) -> int:
+        """Distinct time bins of width ``t`` (None: the finest) in the finest partial (in
+        memory): its distinct bin starts, truncated."""
+        self._distinct_values(TIME)
+        starts = self._cells[("values", TIME)]
+        finest = self.finest()
+        if t is None or parse_time_bin(t) == finest.time_bin:
+            return len(starts)
+        k = ("bins", t)
+        if k not in self._cells:
+            mapping = coarsen(
+                self.recipe,
+                hex_res=None,
+                time_bin=parse_time_bin(t),
+                from_hex=None,
+                from_time=finest.time_bin,
+            )
+            self._cells[k] = starts.to_frame().with_columns(mapping).get_column(TIME).unique()
+        return len(self._cells[k])
 
     def sampled_share(self, level: Mapping[str, Any], every: int) -> float:
         """The share of the level's cells (time bins without hex) that a sample of 1 in

@@ -219,3 +219,74 @@ def test_a_large_level_is_sampled_without_counting_its_rows_and_says_so(
     assert not any(c.rows_estimated for c in exact.candidates)
     # The published level is the same as when every level is measured exactly.
     assert res.fit.level == exact.level
+
+
+@pytest.mark.parametrize(
+    "variant",
+    [
+        {},  # top-k within every non-category key
+        {"prune": {"top": {"k": [4, 2], "by": "n", "within": ["time"]}}},
+        {"prune": {"top": {"k": [4, 2], "by": "n"}, "min_count": {"min": 3, "fold": True}}},
+        {  # no top-k: every category of a group is a row
+            "prune": {},
+            "budget": {"max": "60KB", "on": "gzip", "order": ["time", "hex"]},
+        },
+        {
+            "group": {
+                "hex": {"levels": [8, 7, 6]},
+                "time": {"levels": ["1h", "1d", "1w"], "zone": "UTC"},
+                "region": {"column": "region"},
+                "category": {"column": "kind"},
+            }
+        },
+    ],
+    ids=["top", "top-within-time", "min-count", "no-top", "region"],
+)
+def test_rows_at_most_bounds_the_rows_of_every_level(tmp_path: Path, variant: dict) -> None:
+    """The bound from distinct keys alone (cells x bins x other keys x at most k + 1
+    categories) is never below a level's rows, built in full."""
+    path = _case(tmp_path, **variant)
+    recipe = reduce.load_recipe(path)
+    red = pipeline.Reducer(recipe, use_cache=False)
+    tight = 0
+    for lv in all_levels(recipe.ladder()):
+        level = Level.of(lv)
+        rows = red.rows(level).frame.height
+        most = red.rows_at_most(level)
+        assert most is not None and most >= rows, (lv, most, rows)
+        tight += most < 4 * rows
+    assert tight  # not vacuous: the bound is within 4x of the rows at some levels
+
+
+def test_a_level_too_small_to_sample_is_not_sampled(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A level whose rows are bounded under the sample threshold by its distinct keys is
+    built in full without a pilot sample first (the pilot would only say it is small)."""
+    path = _case(tmp_path)
+    piloted: list[Level] = []
+    real = tables.LevelTables.sample_rows
+
+    def spy(self: tables.LevelTables, level: Level, every: int) -> pl.DataFrame:
+        piloted.append(Level.of(level))
+        return real(self, level, every)
+
+    monkeypatch.setattr(tables.LevelTables, "sample_rows", spy)
+    bounds: dict[Level, int] = {}
+    real_bound = tables.LevelTables.rows_at_most
+
+    def note(self: tables.LevelTables, level: Level) -> int | None:
+        most = real_bound(self, level)
+        assert most is not None
+        bounds[Level.of(level)] = most
+        return most
+
+    monkeypatch.setattr(tables.LevelTables, "rows_at_most", note)
+    res = reduce.fit(path, budget="60KB", use_cache=False)
+    small = {lv for lv, most in bounds.items() if most < tables.SAMPLE_MIN_LEVEL_ROWS}
+    assert small, "no level evaluated had a bound under the sample threshold"
+    assert not small & set(piloted)
+    assert piloted, "no level was sampled at all"
+    evaluated = {c.level for c in res.candidates}
+    assert small <= evaluated
+    assert res.level == reduce.ladder(path, budget="60KB", use_cache=False).level
