@@ -31,6 +31,14 @@ def build_manifest(result: FitResult, path: Path) -> dict[str, Any]:
     assert result.level is not None and red is not None
     rec = red.record(result.level)
     src = result.source
+    notes = list(result.notes)
+    if sizes.brotli is None:
+        notes.append(
+            "brotli not measured: "
+            + (f"the budget is on {result.budget.on}" if result.budget else "no budget")
+            + " (brotli at quality 11 is slow); a brotli budget, "
+            "[output] precompress = true or reduce ladder --exact measures it"
+        )
     m: dict[str, Any] = {
         "format": MANIFEST_FORMAT,
         "payload": path.name,
@@ -51,18 +59,7 @@ def build_manifest(result: FitResult, path: Path) -> dict[str, Any]:
             if result.budget
             else None
         ),
-        **(
-            {
-                "notes": [
-                    "brotli not measured: "
-                    + (f"the budget is on {result.budget.on}" if result.budget else "no budget")
-                    + " (brotli at quality 11 is slow); a brotli budget, "
-                    "[output] precompress = true or reduce ladder --exact measures it"
-                ]
-            }
-            if sizes.brotli is None
-            else {}
-        ),
+        **({"notes": notes} if notes else {}),
         "frontier": [
             {
                 "level": dict(c.level),

@@ -35,6 +35,7 @@ from reduce.sizes import (
     quick_verdict,
     size_on,
 )
+from reduce.source import OpenSource
 from reduce.tables import LevelTables, Progress
 
 # The note of a verdict taken from a fast compression (an estimate, marked so in manifests).
@@ -142,9 +143,14 @@ class Measurer(LevelTables):
     """The levels of one recipe, encoded and measured (see the module docstring)."""
 
     def __init__(
-        self, recipe: Recipe, *, use_cache: bool = True, progress: Progress | None = None
+        self,
+        recipe: Recipe,
+        *,
+        use_cache: bool = True,
+        progress: Progress | None = None,
+        source: OpenSource | None = None,
     ) -> None:
-        super().__init__(recipe, use_cache=use_cache, progress=progress)
+        super().__init__(recipe, use_cache=use_cache, progress=progress, source=source)
         self._payloads: dict[tuple[Any, ...], bytes] = {}
         self._hex_geoms: dict[int, dict[str, Any]] = {}
         self._region_geoms: dict[tuple[float, int], dict[str, Any]] = {}

@@ -26,7 +26,7 @@ from typing import Any
 import polars as pl
 
 from reduce import budget as bsearch
-from reduce import levels
+from reduce import grain, levels
 from reduce.errors import BudgetError, RecipeError
 from reduce.levels import Level
 from reduce.manifest import build_manifest
@@ -60,6 +60,7 @@ class FitResult:
     accounting: dict[str, int] = field(default_factory=dict)
     reducer: Reducer | None = field(default=None, repr=False)
     record: levels.Record | None = None  # what the chosen level measured
+    notes: tuple[str, ...] = ()  # for the manifest's notes (e.g. hex levels not scanned)
 
 
 class Reducer(Measurer):
@@ -119,11 +120,29 @@ def fit(
     ``every_level`` evaluates every combination of levels instead of searching.
     """
     r = _with_budget(_as_recipe(recipe, overrides), budget, on, order)
-    red = (
-        reducer
-        if reducer is not None and _same_levels(reducer.recipe, r)
-        else Reducer(r, use_cache=use_cache, progress=progress)
-    )
+    # Hex resolutions the budget cannot afford, judged on the source's first rows, are not
+    # scanned by a run that keeps no partial (see reduce.grain); their levels are estimated
+    # over. Every other run scans every resolution of the ladder.
+    skipped: dict[int, grain.Skipped] = {}
+    if reducer is not None and _same_levels(reducer.recipe, r):
+        red = reducer
+    elif r.budget is not None and grain.eligible(
+        r, use_cache=use_cache, exact=exact, every_level=every_level
+    ):
+        red = Reducer(r, use_cache=use_cache, progress=progress)
+        red.entry()  # opens the source (schema checks), no scan
+        assert red.source is not None
+        skipped = {s.res: s for s in grain.judge(r, red.source, r.budget, red.progress)}
+        if skipped:
+            kept = grain.scanned(r, list(skipped.values()))
+            assert kept.hex is not None
+            red.progress(
+                f"scanning hex {', '.join(map(str, kept.hex.levels))} only: hex "
+                f"{', '.join(map(str, skipped))} cannot fit the budget (the first rows show)"
+            )
+            red = Reducer(kept, use_cache=use_cache, progress=progress, source=red.source)
+    else:
+        red = Reducer(r, use_cache=use_cache, progress=progress)
     ladder_axes = r.ladder()
     axes = list(ladder_axes)
     b = r.budget
@@ -200,6 +219,13 @@ def fit(
         k = bsearch.level_key(level)
         c = cands.get(k)
         if c is not None and settled(c, force_exact, verify):
+            return c
+        if level.get("hex") in skipped:
+            assert b is not None
+            # Never the search's target nor a close neighbour: its estimate is over MARGIN
+            # times the budget, and the hex levels scanned hold the answer.
+            c = grain.candidate(skipped[level["hex"]], level, b)
+            cands[k] = c
             return c
         if use_estimates and not (force_exact or verify) and b is not None:
             per_row = [
@@ -288,6 +314,13 @@ def fit(
                 [target, *_close_neighbours(ladder_axes, target, cands, b.on, b.max)], b.on
             )
             if evaluate(target, verify=True).fits and evaluate(target, force_exact=True).fits:
+                # Verdicts of "over" that steered the search on evidence that could still fit
+                # (a close fast compression judged by its guess, an estimate within 10% of
+                # the budget) are measured exactly, wherever they are on the ladder: one that
+                # fits after all changes the search, which runs again.
+                doubtful = [c.level for c in cands.values() if _doubtful_over(c, b.on, b.max)]
+                if any([evaluate(lv, verify=True).fits for lv in doubtful]):
+                    continue
                 chosen_level = target
                 break
         else:  # pragma: no cover - every round makes one verdict exact
@@ -321,6 +354,7 @@ def fit(
         partial_from_cache=red.partial_from_cache,
         accounting=red.accounting(chosen_level) if chosen_level else {},
         reducer=red,
+        notes=(grain.note(list(skipped.values()), b),) if skipped and b is not None else (),
     )
     return result
 
@@ -351,6 +385,17 @@ def _confirm_neighbours(
                 moved = True
                 break
     return current
+
+
+def _doubtful_over(c: bsearch.Candidate, on: Measure, limit: int) -> bool:
+    """Whether ``c`` was judged over the budget by cheap evidence that leaves room to fit:
+    a fast compression whose certain lower bound is within the budget, or a sample's or a
+    row count's guess within :data:`NEIGHBOUR_MARGIN` of it."""
+    if c.fits is not False or c.size(on) is not None or c.note.startswith(">"):
+        return False  # fits, or measured exactly (or stopped early over the limit)
+    if c.note == QUICK_NOTE:
+        return c.floor is None or c.floor <= limit
+    return c.guess is None or c.guess <= (1 + NEIGHBOUR_MARGIN) * limit
 
 
 def _close_neighbours(

@@ -81,12 +81,18 @@ class LevelTables:
     docstring)."""
 
     def __init__(
-        self, recipe: Recipe, *, use_cache: bool = True, progress: Progress | None = None
+        self,
+        recipe: Recipe,
+        *,
+        use_cache: bool = True,
+        progress: Progress | None = None,
+        source: OpenSource | None = None,
     ) -> None:
         self.recipe = recipe
         self.use_cache = use_cache
         self.progress = progress or (lambda _msg: None)
-        self.source: OpenSource | None = None
+        # the source opened already (for this recipe's columns), else opened by entry()
+        self.source: OpenSource | None = source
         self.partial_from_cache = False
         self._key: str | None = None
         self._file_keys: list[str] = []
@@ -181,13 +187,19 @@ class LevelTables:
             self._coded = True
         return self._finest
 
+    def use_partial(self, p: Partial) -> None:
+        """Take ``p`` as the finest partial instead of scanning (a slice of the source judged
+        before the scan: see :mod:`reduce.grain`)."""
+        self._finest = p
+
     def entry(self) -> str:
         """The cache key of this recipe over the source as it is now (opens the source:
         schema checks and fingerprint, no scan): the key of the merged partial of its files,
         from each file's key (path, size, modification time, content hash)."""
         if self._key is None:
-            self.progress("checking the source")
-            self.source = open_source(self.recipe)
+            if self.source is None:
+                self.progress("checking the source")
+                self.source = open_source(self.recipe)
             schema = str(self.source.frame.collect_schema())
             self._file_keys = [cache.file_key(self.recipe, s, schema) for s in self.source.states]
             self._key = cache.files_key(self.recipe, self._file_keys)

@@ -273,3 +273,38 @@ def test_quick_look_bounds_the_exact_size_and_never_contradicts_it(
     assert look.floor <= exact
     if look.fits is not None:
         assert look.fits == (exact <= limit)
+
+
+@pytest.mark.parametrize("guess", [0.8, 1.3])
+def test_wrong_close_calls_anywhere_on_the_ladder_never_change_the_choice(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, guess: float
+) -> None:
+    """A close call a fast compression cannot settle is judged by its guess for the search
+    (measure.CLOSE_GUESS); made too pessimistic (1.3: every such level looks 30% bigger) or
+    too optimistic (0.8), the search must still choose what measuring every level exactly
+    chooses: doubtful verdicts are measured exactly before a choice stands."""
+    import numpy as np
+
+    from reduce import measure
+    from tests._builders import random_events, write_case
+
+    rng = np.random.default_rng(3)
+    events = random_events(rng, 40_000, span_days=28, lat=(10.0, 11.5), lon=(20.0, 21.5))
+    path = write_case(
+        tmp_path,
+        events,
+        source={"time": "t", "lat": "lat", "lon": "lon"},
+        group={
+            "hex": {"levels": [9, 8, 6, 5]},
+            "time": {"levels": ["1d", "1w"], "zone": "UTC"},
+            "category": {"column": "kind"},
+        },
+        measures={"n": "count", "sx": {"sum": "x"}},
+        prune={"top": {"k": [3, 1], "by": "n"}},
+        budget={"max": "50KB", "on": "gzip", "order": ["top", "time", "hex"]},
+    )
+    monkeypatch.setitem(measure.CLOSE_GUESS, "gzip", guess)
+    for budget in ["30KB", "50KB", "95KB"]:
+        fit = reduce.fit(path, budget=budget, use_cache=False)
+        exact = reduce.ladder(path, budget=budget, use_cache=False)
+        assert fit.level == exact.level, budget
