@@ -123,7 +123,7 @@ def fit(
     # Hex resolutions the budget cannot afford, judged on the source's first rows, are not
     # scanned by a run that keeps no partial (see reduce.grain); their levels are estimated
     # over. Every other run scans every resolution of the ladder.
-    skipped: dict[int, grain.Skipped] = {}
+    skipped: dict[tuple[str, Any], grain.Skipped] = {}
     if reducer is not None and _same_levels(reducer.recipe, r):
         red = reducer
     elif r.budget is not None and grain.eligible(
@@ -132,13 +132,14 @@ def fit(
         red = Reducer(r, use_cache=use_cache, progress=progress)
         red.entry()  # opens the source (schema checks), no scan
         assert red.source is not None
-        skipped = {s.res: s for s in grain.judge(r, red.source, r.budget, red.progress)}
+        judged = grain.judge(r, red.source, r.budget, red.progress)
+        skipped = {(s.axis, s.value): s for s in judged}
         if skipped:
-            kept = grain.scanned(r, list(skipped.values()))
-            assert kept.hex is not None
+            kept = grain.scanned(r, judged)
             red.progress(
-                f"scanning hex {', '.join(map(str, kept.hex.levels))} only: hex "
-                f"{', '.join(map(str, skipped))} cannot fit the budget (the first rows show)"
+                f"not scanning {grain.describe(judged)}: they cannot fit the budget (the "
+                f"first rows show); scanning hex {', '.join(map(str, kept.ladder()['hex']))}"
+                + (f" and time {', '.join(kept.ladder()['time'])}" if kept.time else "")
             )
             red = Reducer(kept, use_cache=use_cache, progress=progress, source=red.source)
     else:
@@ -220,11 +221,12 @@ def fit(
         c = cands.get(k)
         if c is not None and settled(c, force_exact, verify):
             return c
-        if level.get("hex") in skipped:
+        skip = next((s for (a, v), s in skipped.items() if level.get(a) == v), None)
+        if skip is not None:
             assert b is not None
             # Never the search's target nor a close neighbour: its estimate is over MARGIN
-            # times the budget, and the hex levels scanned hold the answer.
-            c = grain.candidate(skipped[level["hex"]], level, b)
+            # times the budget, and the levels scanned hold the answer.
+            c = grain.candidate(skip, level, b)
             cands[k] = c
             return c
         if use_estimates and not (force_exact or verify) and b is not None:

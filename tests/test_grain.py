@@ -83,7 +83,7 @@ def test_unscanned_resolutions_change_no_published_byte(
         path, out_dir=tmp_path / "skip", budget=budget, use_cache=False, progress=lines.append
     )
     assert scans and scans[0][0] < 9, scans  # the finest resolution was not scanned
-    assert any(line.startswith("scanning hex ") and " only: hex 9" in line for line in lines)
+    assert any(line.startswith("not scanning hex 9") for line in lines), lines
     full = _full_scan_run(path, tmp_path / "full", budget)
     assert scans[-1] == (9, 8, 6, 5)  # the reference scanned every resolution
     assert res.path is not None and full.path is not None
@@ -114,7 +114,7 @@ def test_levels_not_scanned_are_estimated_over_and_the_manifest_says_why(
     assert frontier and all(f["estimated"] and f["rows_estimated"] for f in frontier)
     assert all(f["fits"] is False for f in frontier)
     notes = res.manifest["notes"]
-    assert any(n.startswith("hex 9, 8 not scanned") for n in notes), notes
+    assert any(n.startswith("hex 9, 8") and "not scanned" in n for n in notes), notes
     on_disk = json.loads(Path(str(res.path) + ".manifest.json").read_text())
     assert on_disk["notes"] == notes
 
@@ -153,3 +153,38 @@ def test_every_resolution_is_scanned_when_a_run_cannot_skip(
     else:
         reduce.run(path, out_dir=tmp_path / "out", use_cache=(why == "cache"))
     assert scans and all(s[0] == 9 for s in scans), scans
+
+
+def test_a_finest_time_bin_the_budget_cannot_afford_is_not_scanned(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Hourly bins are over the budget even at the coarsest resolution on the first rows:
+    the scan leaves them out (and the resolutions too fine), and publishes what scanning
+    everything publishes."""
+    path = _case(
+        tmp_path,
+        group={
+            "hex": {"levels": [9, 8, 6, 5]},
+            "time": {"levels": ["1h", "1d", "1w"], "zone": "UTC"},
+            "category": {"column": "kind"},
+        },
+    )
+    seen: list[tuple[str, ...]] = []
+    real = aggregate.scan_partial
+
+    def spy(recipe: Any, src: Any, **kw: Any) -> Any:
+        if kw.get("whole", True):
+            seen.append(tuple(t.text for t in recipe.time.levels))
+        return real(recipe, src, **kw)
+
+    monkeypatch.setattr(aggregate, "scan_partial", spy)
+    res = reduce.run(path, out_dir=tmp_path / "skip", use_cache=False)
+    assert seen and seen[0] == ("1d", "1w"), seen
+    assert res.manifest is not None and any("time 1h" in n for n in res.manifest["notes"])
+    hourly = [c for c in res.fit.candidates if c.level["time"] == "1h"]  # if the search asked
+    assert all(c.fits is False and "was not scanned" in c.note for c in hourly)
+    full = _full_scan_run(path, tmp_path / "full", "50KB")
+    assert seen[-1] == ("1h", "1d", "1w")
+    assert res.path is not None and full.path is not None
+    assert res.fit.level == full.fit.level
+    assert res.path.read_bytes() == full.path.read_bytes()
