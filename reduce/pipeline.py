@@ -287,8 +287,10 @@ def fit(
         )
         cands[k] = c
         counted.append((level, c.rows))
-        if c.fits is False and not every_level:
-            red.forget(level)  # bounded memory: over-budget levels are never published
+        if c.fits is False and not every_level and not (b and _doubtful_over(c, b.on, b.max)):
+            # Bounded memory: over-budget levels are never published (a doubtful verdict's
+            # level is kept, its payload about the budget's size: it is measured exactly).
+            red.forget(level)
         return c
 
     chosen_level: Level | None = None
@@ -312,15 +314,16 @@ def fit(
                 continue  # an estimate said over; it fits: search again
             # Exactly on the budget's measure, side by side with the finer neighbours that
             # will be checked exactly if it fits; then every measure exactly.
+            doubtful = [c.level for c in cands.values() if _doubtful_over(c, b.on, b.max)]
             red.prefetch(
-                [target, *_close_neighbours(ladder_axes, target, cands, b.on, b.max)], b.on
+                [target, *_close_neighbours(ladder_axes, target, cands, b.on, b.max), *doubtful],
+                b.on,
             )
             if evaluate(target, verify=True).fits and evaluate(target, force_exact=True).fits:
                 # Verdicts of "over" that steered the search on evidence that could still fit
                 # (a close fast compression judged by its guess, an estimate within 10% of
                 # the budget) are measured exactly, wherever they are on the ladder: one that
                 # fits after all changes the search, which runs again.
-                doubtful = [c.level for c in cands.values() if _doubtful_over(c, b.on, b.max)]
                 if any([evaluate(lv, verify=True).fits for lv in doubtful]):
                     continue
                 chosen_level = target
