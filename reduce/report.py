@@ -149,6 +149,7 @@ def ladder_table(result: FitResult) -> str:
             "~: not measured exactly (a sample of the level's cells, a fast compression or "
             "its rows times bytes per row); --exact measures every level shown"
         )
+    lines.extend(f"note: {n}" for n in result.notes)
     b = result.budget
     if b:
         lines.append(

@@ -188,3 +188,17 @@ def test_a_finest_time_bin_the_budget_cannot_afford_is_not_scanned(
     assert res.path is not None and full.path is not None
     assert res.fit.level == full.fit.level
     assert res.path.read_bytes() == full.path.read_bytes()
+
+
+def test_the_ladder_says_what_was_not_scanned(tmp_path: Path) -> None:
+    """``reduce ladder --no-cache`` shows the levels not scanned as estimates and names
+    them in a note line."""
+    from tests._builders import invoke
+
+    path = _case(tmp_path)
+    code, out, err = invoke("ladder", str(path), "--no-cache")
+    assert code == 0, err
+    note = next(line for line in out.splitlines() if line.startswith("note: "))
+    assert note.startswith("note: hex 9, 8") and "not scanned" in note
+    rows = [line.split() for line in out.splitlines() if line.lstrip("* ").startswith("8 ")]
+    assert rows and all(r[-1] == "~no" for r in rows), out
