@@ -39,7 +39,7 @@ from reduce.sizes import (
     Measure,
     parse_size,
 )
-from reduce.source import OpenSource
+from reduce.source import OpenSource, open_source
 from reduce.tables import LevelRows, Progress
 
 
@@ -120,7 +120,7 @@ def fit(
     ``every_level`` evaluates every combination of levels instead of searching.
     """
     r = _with_budget(_as_recipe(recipe, overrides), budget, on, order)
-    # Hex resolutions the budget cannot afford, judged on the source's first rows, are not
+    # Hex resolutions and time bins the budget cannot afford, judged on the first rows, are not
     # scanned by a run that keeps no partial (see reduce.grain); their levels are estimated
     # over. Every other run scans every resolution of the ladder.
     skipped: dict[tuple[str, Any], grain.Skipped] = {}
@@ -129,19 +129,23 @@ def fit(
     elif r.budget is not None and grain.eligible(
         r, use_cache=use_cache, exact=exact, every_level=every_level
     ):
-        red = Reducer(r, use_cache=use_cache, progress=progress)
-        red.entry()  # opens the source (schema checks), no scan
-        assert red.source is not None
-        judged = grain.judge(r, red.source, r.budget, red.progress)
+        say = progress or (lambda _msg: None)
+        say("checking the source")
+        src = open_source(r)  # schema checks, no scan; the Reducer below keeps it
+        judged = grain.judge(r, src, r.budget, say)
         skipped = {(s.axis, s.value): s for s in judged}
+        kept = grain.scanned(r, judged)
         if skipped:
-            kept = grain.scanned(r, judged)
-            red.progress(
+            say(
                 f"not scanning {grain.describe(judged)}: they cannot fit the budget (the "
-                f"first rows show); scanning hex {', '.join(map(str, kept.ladder()['hex']))}"
-                + (f" and time {', '.join(kept.ladder()['time'])}" if kept.time else "")
+                f"first rows show); scanning "
+                + " and ".join(
+                    f"{a} {', '.join(map(str, lv))}"
+                    for a, lv in kept.ladder().items()
+                    if a in ("hex", "time")
+                )
             )
-            red = Reducer(kept, use_cache=use_cache, progress=progress, source=red.source)
+        red = Reducer(kept, use_cache=use_cache, progress=progress, source=src)
     else:
         red = Reducer(r, use_cache=use_cache, progress=progress)
     ladder_axes = r.ladder()
@@ -392,15 +396,21 @@ def _confirm_neighbours(
     return current
 
 
-def _doubtful_over(c: bsearch.Candidate, on: Measure, limit: int) -> bool:
-    """Whether ``c`` was judged over the budget by cheap evidence that leaves room to fit:
-    a fast compression whose certain lower bound is within the budget, or a sample's or a
-    row count's guess within :data:`NEIGHBOUR_MARGIN` of it."""
-    if c.fits is not False or c.size(on) is not None or c.note.startswith(">"):
-        return False  # fits, or measured exactly (or stopped early over the limit)
+def _could_still_fit(c: bsearch.Candidate, on: Measure, limit: int) -> bool:
+    """Whether ``c`` was judged by cheap evidence that leaves room to fit: a fast
+    compression whose certain lower bound is within the budget, or a sample's or a row
+    count's guess within :data:`NEIGHBOUR_MARGIN` of it (or unknown). False for a verdict
+    from an exact compression (or one stopped early over the limit)."""
+    if c.size(on) is not None or c.note.startswith(">"):
+        return False
     if c.note == QUICK_NOTE:
         return c.floor is None or c.floor <= limit
     return c.guess is None or c.guess <= (1 + NEIGHBOUR_MARGIN) * limit
+
+
+def _doubtful_over(c: bsearch.Candidate, on: Measure, limit: int) -> bool:
+    """Whether ``c`` was judged over the budget by evidence that could still fit."""
+    return c.fits is False and _could_still_fit(c, on, limit)
 
 
 def _close_neighbours(
@@ -428,16 +438,8 @@ def _close_neighbours(
             if c.fits or c.estimated or c.note == QUICK_NOTE:
                 out.append(finer)
             continue
-        if c is None or c.size(on) is not None or c.note.startswith(">"):
-            continue  # not evaluated, or its verdict came from an exact compression
-        if c.note == QUICK_NOTE:
-            # A fast compression's verdict carries a certain lower bound: measure the
-            # neighbour exactly whenever that bound leaves room to fit.
-            if c.floor is not None and c.floor > limit:
-                continue
-        elif c.guess is not None and c.guess > (1 + NEIGHBOUR_MARGIN) * limit:
-            continue  # a sample or a row count far enough over
-        out.append(finer)
+        if c is not None and _could_still_fit(c, on, limit):
+            out.append(finer)
     return out
 
 

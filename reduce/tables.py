@@ -100,7 +100,6 @@ class LevelTables:
         self._rows_in_source: int | None = None
         self._partial: Partial | None = None
         self._finest: Partial | Spilled | None = None
-        self._coded = False  # the finest partial's categories are codes (with_label_codes)
         self._rollups: dict[tuple[Any, Any], Partial] = {}
         self._visibles: dict[tuple[Any, Any], Partial] = {}
         self._rows: dict[tuple[Any, ...], LevelRows] = {}
@@ -182,9 +181,8 @@ class LevelTables:
                         self._entry_stored(entry)
             prune.check_rest_label(self.recipe, p.frame() if isinstance(p, Spilled) else p)
             self._finest = p
-        if isinstance(self._finest, Partial) and not self._coded:
+        if isinstance(self._finest, Partial):  # (a no-op once its categories are codes)
             self._finest = aggregate.with_label_codes(self.recipe, self._finest)
-            self._coded = True
         return self._finest
 
     def use_partial(self, p: Partial) -> None:
@@ -513,20 +511,22 @@ class LevelTables:
             per_group = min(per_group, int(level["top"]) + 1)
         return bound * per_group
 
-    def _distinct_values(self, col: str) -> int:
-        """Distinct non-null values of a key column of the finest partial (in memory)."""
+    def _distinct(self, col: str) -> pl.Series:
+        """The distinct non-null values of a key column of the finest partial (in memory)."""
         k = ("values", col)
         if k not in self._cells:
             finest = self.finest()
             assert isinstance(finest, Partial)
             self._cells[k] = finest.table.get_column(col).drop_nulls().unique()
-        return len(self._cells[k])
+        return self._cells[k]
+
+    def _distinct_values(self, col: str) -> int:
+        return len(self._distinct(col))
 
     def _distinct_bins(self, t: str | None) -> int:
         """Distinct time bins of width ``t`` (None: the finest) in the finest partial (in
         memory): its distinct bin starts, truncated."""
-        self._distinct_values(TIME)
-        starts = self._cells[("values", TIME)]
+        starts = self._distinct(TIME)
         finest = self.finest()
         if t is None or parse_time_bin(t) == finest.time_bin:
             return len(starts)
